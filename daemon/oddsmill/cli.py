@@ -1,0 +1,303 @@
+"""The `oddsmill` command: `main(argv=None) -> int`. Parses, validates, builds, runs.
+
+Exit codes: 0 success; 2 bad usage or bad input file (one line naming it); 1 any other failure.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import math
+import sys
+import tomllib
+from dataclasses import fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import CheckpointError, ConfigError, InputFileError, OddsmillError
+from .reference import Z95, AliasedError
+
+log = logging.getLogger("oddsmill")
+
+LEARNER_FLAGS = {  # flag -> (setting, type)
+    "schedule": str, "eta0": float, "l2": float, "decay": float, "power": float,
+    "adagrad_delta": float, "average_start": int, "scaling": str, "scale_warmup": int,
+    "max_features": int,
+}
+
+
+class UsageError(OddsmillError):
+    pass
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # type: ignore[override]
+        raise UsageError(f"{self.prog}: {message}")
+
+
+def _learner_options(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("learner")
+    g.add_argument("--config", help="a TOML file of settings (its [learner] table); flags win")
+    g.add_argument("--schedule", choices=["constant", "inverse-time", "power", "adagrad"])
+    g.add_argument("--eta0", type=float, help="initial learning rate (default 0.5)")
+    g.add_argument("--l2", type=float, help="L2 penalty lambda on standardised coefficients (default 1e-4)")
+    g.add_argument("--decay", type=float, help="the power schedule's a (default 0.1)")
+    g.add_argument("--power", type=float, help="the power schedule's c (default 0.75)")
+    g.add_argument("--adagrad-delta", dest="adagrad_delta", type=float)
+    g.add_argument("--average", dest="average", action="store_true", default=None,
+                   help="Polyak-Ruppert averaging (default on)")
+    g.add_argument("--no-average", dest="average", action="store_false")
+    g.add_argument("--average-start", dest="average_start", type=int)
+    g.add_argument("--scaling", choices=["standardize", "none"])
+    g.add_argument("--scale-warmup", dest="scale_warmup", type=int)
+    g.add_argument("--max-features", dest="max_features", type=int)
+    g.add_argument("--window", type=int, default=None, help="events in the metrics window (default 10000)")
+
+
+def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
+    """(LearnerSettings, whether average_start was given, window) from --config and flags."""
+    from .settings import LearnerSettings
+
+    values: dict[str, Any] = {}
+    window = 10_000
+    if args.config:
+        try:
+            with open(args.config, "rb") as f:
+                doc = tomllib.load(f)
+        except OSError as e:
+            raise ConfigError(f"{args.config}: cannot read ({e.strerror})") from None
+        except tomllib.TOMLDecodeError as e:
+            raise ConfigError(f"{args.config}: not valid TOML ({e})") from None
+        table = doc.get("learner", {})
+        known = {f.name for f in fields(LearnerSettings)} | {"window"}
+        for key, value in table.items():
+            if key not in known:
+                raise ConfigError(f"{args.config}: unknown setting learner.{key}; "
+                                  f"known: {', '.join(sorted(known))}")
+            if key == "window":
+                window = value
+            else:
+                values[key] = value
+    for flag in list(LEARNER_FLAGS) + ["average"]:
+        v = getattr(args, flag, None)
+        if v is not None:
+            values[flag] = v
+    if args.window is not None:
+        window = args.window
+    if isinstance(window, bool) or not isinstance(window, int) or window < 1:
+        raise ConfigError(f"window must be an integer >= 1, got {window!r}")
+    return LearnerSettings(**values), "average_start" in values, window
+
+
+# -- replay ----------------------------------------------------------------------------------------
+def cmd_replay(args: argparse.Namespace) -> int:
+    from .offline import new_engine, replay
+    from .storage import write_checkpoint
+
+    if args.epochs < 1:
+        raise UsageError(f"--epochs must be >= 1, got {args.epochs}")
+    settings, given, window = learner_settings(args)
+    engine, tail = new_engine(settings, args.epochs, given, window=window)
+    report = replay(engine, args.logs, args.epochs, tail)
+    state = Path(args.state)
+    path = write_checkpoint(state, engine.learner.step, checkpoint_state(engine))
+    m = engine.metrics
+    rej = sum(engine.counters.rejected.values())
+    print(f"learned {engine.learner.step:,} events from {report.events:,} messages in "
+          f"{report.epochs} epoch(s), {report.seconds:.1f} s "
+          f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s)")
+    print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
+    if rej:
+        print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
+    print(f"checkpoint {path}")
+    return 0
+
+
+def checkpoint_state(engine: Any) -> dict[str, Any]:
+    import time
+
+    return {"kind": "oddsmill-state", "created": time.time(), "engine": engine.state_dict(),
+            "journal": None}
+
+
+def load_engine(target: str) -> Any:
+    from .engine import Engine
+    from .storage import load_newest, read_checkpoint
+
+    p = Path(target)
+    if p.is_dir():
+        found = load_newest(p)
+        if found is None:
+            raise CheckpointError(f"{target}: no checkpoint in this directory")
+        state, _ = found
+    elif p.exists():
+        state = read_checkpoint(p)
+    else:
+        raise CheckpointError(f"{target}: no such file or directory")
+    try:
+        return Engine.from_state_dict(state["engine"])
+    except (KeyError, TypeError, ValueError) as e:
+        raise CheckpointError(f"{target}: the checkpoint's content is not an oddsmill state ({e})") from None
+
+
+# -- fit -----------------------------------------------------------------------------------------
+def cmd_fit(args: argparse.Namespace) -> int:
+    from .offline import fit_logs
+    from .progressive import log_loss_from_logit
+
+    settings, _, _ = learner_settings(args)
+    res, design = fit_logs(args.logs, settings)
+    out: dict[str, Any] = res.as_json()
+    if args.against:
+        engine = load_engine(args.against)
+        c = engine.learner.coefficients()
+        theirs = c.as_dict()
+        mine = np.array([theirs.get(n, 0.0) for n in res.names])
+        # relative error in standardised units (raw coefficient x scale)
+        diff = np.linalg.norm((mine - res.coef[1:]) * design.scale)
+        ref = np.linalg.norm(res.coef[1:] * design.scale)
+        z = c.intercept + design.X @ mine
+        ll = float(np.sum(design.w * log_loss_from_logit(z, design.y)) / res.n)
+        out["against"] = {
+            "state": args.against, "step": engine.learner.step,
+            "relative_coef_error": float(diff / ref) if ref > 0 else float(diff),
+            "intercept_error": float(c.intercept - res.coef[0]),
+            "log_loss": ll, "log_loss_excess": ll - res.log_loss,
+            "missing_features": sorted(set(res.names) - set(theirs)),
+        }
+    if args.json:
+        print(json.dumps(out, indent=2, allow_nan=True))
+        return 0
+    print(f"Newton fit: n = {res.n:,}, {res.iterations} iterations, "
+          f"{'converged' if res.converged else 'NOT converged'}, mean log-loss {res.log_loss:.6f}, "
+          f"L2 = {settings.l2:g}")
+    head = f"{'feature':<28}{'coef':>11}{'std err':>10}{'z':>8}{'p-value':>10}  {'95% interval':<23}{'odds ratio':>11}"
+    print(head)
+    print("-" * len(head))
+    rows = [("(intercept)", out["intercept"], None)] + [(r["feature"], r, r["odds_ratio"]) for r in out["coefficients"]]
+    for name, r, odds in rows:
+        lo, hi = r["ci95"]
+        print(f"{name[:27]:<28}{r['coef']:>11.4f}{r['se']:>10.4f}{r['z']:>8.2f}{_pval(r['p_value']):>10}  "
+              f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>11.4g}':>11}")
+    print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
+    if args.against:
+        a = out["against"]
+        print(f"\nagainst {a['state']} (step {a['step']:,}): relative coefficient error "
+              f"{a['relative_coef_error']:.2e} (standardised units), mean log-loss {a['log_loss']:.6f} "
+              f"({a['log_loss_excess']:+.2e} from the optimum)")
+    return 0
+
+
+def _pval(p: float) -> str:
+    return "<1e-16" if p < 1e-16 else f"{p:.2g}" if p < 1e-3 else f"{p:.4f}"
+
+
+# -- inspect ---------------------------------------------------------------------------------------
+def inspect_json(engine: Any) -> dict[str, Any]:
+    lr = engine.learner
+    c = lr.coefficients()
+    order = np.argsort(-np.abs(c.coefs * lr.scales()[1]), kind="stable")
+    metrics = {k: v for k, v in engine.metrics.summary().items()}
+    cnt = engine.counters
+    metrics.update({
+        "events_train": cnt.train, "events_score": cnt.score, "events_outcome": cnt.outcome,
+        "events_lost": cnt.lost, "events_rejected": dict(cnt.rejected),
+        "pending_outcomes": len(engine.pending), "pending_expired": cnt.pending_expired,
+        "pending_evicted": cnt.pending_evicted, "features_ignored": lr.vocab.ignored,
+        "learning_rate": lr.learning_rate(),
+    })
+    return {
+        "step": lr.step,
+        "learner": lr.settings.to_dict(),
+        "intercept": {"coef": c.intercept},
+        "coefficients": [{"feature": c.names[j], "coef": float(c.coefs[j]),
+                          "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0))} for j in order],
+        "metrics": metrics,
+    }
+
+
+def cmd_inspect(args: argparse.Namespace) -> int:
+    engine = load_engine(args.state)
+    doc = inspect_json(engine)
+    if args.top is not None:
+        if args.top < 0:
+            raise UsageError(f"--top must be >= 0, got {args.top}")
+        doc["coefficients"] = doc["coefficients"][: args.top]
+    if args.json:
+        print(json.dumps(doc, indent=2))
+        return 0
+    s, m = doc["learner"], doc["metrics"]
+    print(f"step {doc['step']:,}   features {engine.learner.n_features:,}   "
+          f"learning rate {m['learning_rate']:.3g}   averaging {'on' if s['average'] else 'off'}")
+    print("settings: " + ", ".join(f"{k}={v}" for k, v in s.items()))
+    print(f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
+          f"window: log-loss {m['log_loss_window']:.5f}, Brier {m['brier_window']:.5f}, "
+          f"calibration error {m['calibration_error_window']:.4f}")
+    print(f"events: train {m['events_train']:,}, scored {m['events_score']:,}, outcomes {m['events_outcome']:,}, "
+          f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
+          f"pending outcomes {m['pending_outcomes']:,}")
+    print(f"\n{'feature':<32}{'coef (raw units)':>18}{'odds ratio':>12}")
+    print(f"{'(intercept)':<32}{doc['intercept']['coef']:>18.5g}")
+    for r in doc["coefficients"]:
+        print(f"{r['feature'][:31]:<32}{r['coef']:>18.5g}{r['odds_ratio']:>12.4g}")
+    return 0
+
+
+# -- demo ----------------------------------------------------------------------------------------
+def cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import run_demo
+
+    return run_demo(args)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="oddsmill", description="An online logistic-regression daemon and its tools.")
+    p.add_argument("-v", "--verbose", action="store_true")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    r = sub.add_parser("replay", help="learn offline from logs and write a checkpoint")
+    r.add_argument("logs", nargs="+", metavar="LOG")
+    r.add_argument("--state", required=True, metavar="DIR")
+    r.add_argument("--epochs", type=int, default=1)
+    _learner_options(r)
+    r.set_defaults(func=cmd_replay)
+
+    f = sub.add_parser("fit", help="the batch Newton reference fit, with standard errors")
+    f.add_argument("logs", nargs="+", metavar="LOG")
+    f.add_argument("--json", action="store_true")
+    f.add_argument("--against", metavar="STATE", help="compare a state's coefficients with the optimum")
+    _learner_options(f)
+    f.set_defaults(func=cmd_fit)
+
+    i = sub.add_parser("inspect", help="show a model: coefficients, odds ratios, settings, metrics")
+    i.add_argument("state", metavar="STATE-OR-CHECKPOINT")
+    i.add_argument("--json", action="store_true")
+    i.add_argument("--top", type=int, default=None, metavar="K")
+    i.set_defaults(func=cmd_inspect)
+
+    d = sub.add_parser("demo", help="the whole job on the parcel demo data, ending in a summary")
+    d.add_argument("--data", help="a demo log other than the bundled one")
+    d.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    logging.basicConfig(level=logging.INFO, format="oddsmill: %(message)s", stream=sys.stderr)
+    try:
+        args = build_parser().parse_args(argv)
+        return int(args.func(args))
+    except (UsageError, ConfigError, InputFileError, CheckpointError, AliasedError) as e:
+        print(f"oddsmill: {e}", file=sys.stderr)
+        return 2
+    except OddsmillError as e:
+        print(f"oddsmill: {e}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,142 @@
+"""Feature encoding (PROTOCOL 2): names to slots, and blocks of events to index/value arrays.
+
+A number v under name k is the numeric feature k with value v; a string s is the one-hot feature
+"k=s" with value 1; true/false are numeric 1/0; nil or a missing key is absent. A non-finite number
+is an error. The vocabulary is append-only: a name keeps its slot for the life of the state. When it
+holds `max_features` names, names not seen before are ignored (they add nothing to the logit and
+are not learned) and counted in `Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
+
+>>> v = Vocabulary(max_features=10)
+>>> encode_features({"route_km": 12.5, "depot": "harbour", "fragile": True, "note": None}, v)
+([0, 1, 2], [12.5, 1.0, 1.0], [True, False, True])
+>>> v.names
+['route_km', 'depot=harbour', 'fragile']
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import ProtocolError
+
+
+class Vocabulary:
+    """Feature names in slot order; append-only, capped."""
+
+    def __init__(self, max_features: int, names: list[str] | None = None) -> None:
+        self.max_features = max_features
+        self.names: list[str] = list(names or [])
+        self.index: dict[str, int] = {n: i for i, n in enumerate(self.names)}
+        self.ignored = 0
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def slot(self, name: str, grow: bool) -> int:
+        """The slot of `name`; a new slot if `grow` and there is room; -1 otherwise."""
+        j = self.index.get(name)
+        if j is not None:
+            return j
+        if not grow:
+            return -1
+        if len(self.names) >= self.max_features:
+            self.ignored += 1
+            return -1
+        j = len(self.names)
+        self.names.append(name)
+        self.index[name] = j
+        return j
+
+
+def encode_features(
+    x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
+) -> tuple[list[int], list[float], list[bool]]:
+    """Slots, values and numeric flags of the features of `x` (a map of str to number, str, bool
+    or nil). Raises ProtocolError (bad_features or non_finite) and then adds no name."""
+    if not isinstance(x, Mapping):
+        raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
+    pairs: list[tuple[str, float, bool]] = []
+    for key, value in x.items():
+        if not isinstance(key, str):
+            raise ProtocolError("bad_features", f"feature names must be strings, got {key!r}", event_id)
+        if value is None:
+            continue
+        if isinstance(value, bool):
+            pairs.append((key, 1.0 if value else 0.0, True))
+        elif isinstance(value, int | float):
+            v = float(value)
+            if not math.isfinite(v):
+                raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
+            pairs.append((key, v, True))
+        elif isinstance(value, str):
+            pairs.append((f"{key}={value}", 1.0, False))
+        else:
+            raise ProtocolError(
+                "bad_features",
+                f"feature {key!r} must be a number, string, bool or nil, got {type(value).__name__}",
+                event_id,
+            )
+    if len({p[0] for p in pairs}) != len(pairs):
+        raise ProtocolError("bad_features", "two features encode to the same name", event_id)
+    slots: list[int] = []
+    values: list[float] = []
+    numeric: list[bool] = []
+    for name, v, is_num in pairs:
+        j = vocab.slot(name, grow)
+        if j >= 0:
+            slots.append(j)
+            values.append(v)
+            numeric.append(is_num)
+    return slots, values, numeric
+
+
+@dataclass
+class Block:
+    """Events in CSR form for the kernel: event e has slots idx[ptr[e]:ptr[e+1]]."""
+
+    ptr: np.ndarray  # int64, n + 1
+    idx: np.ndarray  # int64
+    val: np.ndarray  # float64, raw values
+    op: np.ndarray  # int8, kernel.OP_*
+    y: np.ndarray  # float64
+    w: np.ndarray  # float64
+
+    def __len__(self) -> int:
+        return int(self.ptr.shape[0] - 1)
+
+
+class BlockBuilder:
+    """Collects encoded events, then hands the kernel one block."""
+
+    def __init__(self) -> None:
+        self.ptr: list[int] = [0]
+        self.idx: list[int] = []
+        self.val: list[float] = []
+        self.op: list[int] = []
+        self.y: list[float] = []
+        self.w: list[float] = []
+
+    def __len__(self) -> int:
+        return len(self.op)
+
+    def add(self, slots: list[int], values: list[float], op: int, y: float, w: float) -> None:
+        self.idx.extend(slots)
+        self.val.extend(values)
+        self.ptr.append(len(self.idx))
+        self.op.append(op)
+        self.y.append(y)
+        self.w.append(w)
+
+    def build(self) -> Block:
+        return Block(
+            ptr=np.asarray(self.ptr, dtype=np.int64),
+            idx=np.asarray(self.idx, dtype=np.int64),
+            val=np.asarray(self.val, dtype=np.float64),
+            op=np.asarray(self.op, dtype=np.int8),
+            y=np.asarray(self.y, dtype=np.float64),
+            w=np.asarray(self.w, dtype=np.float64),
+        )

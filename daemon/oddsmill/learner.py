@@ -1,0 +1,223 @@
+"""The online logistic learner (PROTOCOL 5): settings, state, and the calls the engine makes.
+
+The state is a few private arrays behind read-only properties; the compiled kernel
+(`oddsmill.kernel`) is the only code that changes them. Scoring never changes state.
+
+>>> lr = Learner(LearnerSettings(schedule="constant", eta0=0.1, average=False, scaling="none"))
+>>> round(lr.learn_one({"route_km": 1.0}, 1), 6)   # the score published before learning
+0.0
+>>> round(lr.predict_logit({"route_km": 1.0}), 6)
+0.1
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from . import kernel as K
+from .encoding import Block, BlockBuilder, Vocabulary, encode_features
+from .schedules import CODES, rate
+from .settings import LearnerSettings
+
+INITIAL_SLOTS = 64
+
+
+def settings_record(s: LearnerSettings) -> np.ndarray:
+    """The kernel's settings record."""
+    prm = np.zeros(K.N_PARAMS)
+    prm[K.P_SCHED] = CODES[s.schedule]
+    prm[K.P_ETA0] = s.eta0
+    prm[K.P_L2] = s.l2
+    prm[K.P_A] = s.decay_a
+    prm[K.P_C] = s.power
+    prm[K.P_DELTA] = s.adagrad_delta
+    prm[K.P_AVG] = 1.0 if s.average else 0.0
+    prm[K.P_AVG_START] = s.average_start
+    prm[K.P_SCALING] = 1.0 if s.scaling == "standardize" else 0.0
+    prm[K.P_WARMUP] = s.scale_warmup
+    return prm
+
+
+@dataclass(frozen=True)
+class Coefficients:
+    """The model in the units the features were sent: logit = intercept + sum of coef x value."""
+
+    intercept: float
+    names: list[str]
+    coefs: np.ndarray
+
+    def as_dict(self) -> dict[str, float]:
+        return dict(zip(self.names, self.coefs.tolist(), strict=True))
+
+
+class Learner:
+    """SGD on the log-likelihood with L2, one of four schedules and optional averaging."""
+
+    def __init__(self, settings: LearnerSettings | None = None) -> None:
+        self._settings = settings or LearnerSettings()
+        self._prm = settings_record(self._settings)
+        self.vocab = Vocabulary(self._settings.max_features)
+        self._sc = np.zeros(K.N_SCALARS)
+        self._sc[K.S_WS] = 1.0
+        self._sl = np.zeros((K.N_ROWS, 0))
+        self._fl = np.zeros(0, dtype=np.uint8)
+        self._cl = np.zeros(0, dtype=np.int64)
+        self._grow(INITIAL_SLOTS)
+
+    # -- read-only views -------------------------------------------------------------------------
+    @property
+    def settings(self) -> LearnerSettings:
+        return self._settings
+
+    @property
+    def step(self) -> int:
+        """Events learned so far."""
+        return int(self._sc[K.S_T])
+
+    @property
+    def n_features(self) -> int:
+        return len(self.vocab)
+
+    @property
+    def renormalisations(self) -> int:
+        return int(self._sc[K.S_RENORMS])
+
+    def set_average_start(self, step: int) -> None:
+        """Move the start of averaging; only before it has begun (used by multi-epoch replays)."""
+        if self._sc[K.S_NAVG] > 0 or step < self.step:
+            raise ValueError(f"averaging cannot start at {step}: it has begun or the step is past")
+        from dataclasses import replace
+        self._settings = replace(self._settings, average_start=step)
+        self._prm = settings_record(self._settings)
+
+    def learning_rate(self) -> float:
+        """eta_t for the next step (for AdaGrad, the intercept's rate)."""
+        if self._settings.schedule == "adagrad":
+            return rate(self._settings, self.step, float(self._sc[K.S_GB]))
+        return rate(self._settings, self.step)
+
+    # -- encoding ----------------------------------------------------------------------------------
+    def _grow(self, needed: int) -> None:
+        cap = self._sl.shape[1]
+        if needed <= cap:
+            return
+        new_cap = max(needed, 2 * cap, INITIAL_SLOTS)
+        sl = np.zeros((K.N_ROWS, new_cap))
+        sl[:, :cap] = self._sl
+        sl[K.R_SCALE, cap:] = 1.0
+        sl[K.R_LAST, cap:] = self._sc[K.S_T]
+        fl = np.zeros(new_cap, dtype=np.uint8)
+        fl[:cap] = self._fl
+        self._sl, self._fl = sl, fl
+
+    def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None
+               ) -> tuple[list[int], list[float]]:
+        """Slots and raw values of an event's features; new names get slots when `grow`."""
+        before = len(self.vocab)
+        slots, values, numeric = encode_features(x, self.vocab, grow, event_id)
+        if len(self.vocab) > before:
+            self._grow(len(self.vocab))
+            for j, is_num in zip(slots, numeric, strict=True):
+                if j >= before and is_num:
+                    self._fl[j] |= K.F_NUMERIC
+            self._sc[K.S_NSLOTS] = len(self.vocab)
+        return slots, values
+
+    # -- the kernel ------------------------------------------------------------------------------
+    def run(self, block: Block) -> np.ndarray:
+        """Score and learn a block in order (kernel.learn_block); returns the published logits."""
+        if self._sc[K.S_STARTED] == 0.0 and len(block.idx) > self._cl.shape[0]:
+            self._cl = np.zeros(len(block.idx), dtype=np.int64)
+        out = np.empty(len(block))
+        K.learn_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx,
+                      block.val, block.op, block.y, block.w, out)
+        return out
+
+    def score(self, block: Block) -> np.ndarray:
+        """Logits of a block's events with the current state; changes nothing."""
+        out = np.empty(len(block))
+        K.score_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx,
+                      block.val, out)
+        return out
+
+    # -- conveniences for one event ------------------------------------------------------------
+    def learn_one(self, x: Mapping[str, Any], y: float, w: float = 1.0) -> float:
+        """Score, then learn one event; returns the logit published before learning."""
+        b = BlockBuilder()
+        slots, values = self.encode(x)
+        b.add(slots, values, K.OP_TRAIN, float(y), float(w))
+        return float(self.run(b.build())[0])
+
+    def predict_logit(self, x: Mapping[str, Any]) -> float:
+        b = BlockBuilder()
+        slots, values = self.encode(x, grow=False)
+        b.add(slots, values, K.OP_SCORE, 0.0, 1.0)
+        return float(self.score(b.build())[0])
+
+    def predict_proba(self, x: Mapping[str, Any]) -> float:
+        return float(K.sigmoid(self.predict_logit(x)))
+
+    # -- the model in raw units ------------------------------------------------------------------
+    def uses_average(self) -> bool:
+        return self._settings.average and self._sc[K.S_NAVG] > 0
+
+    def standardised(self, averaged: bool | None = None) -> tuple[float, np.ndarray]:
+        """(intercept in centred coordinates, theta in standardised units), slot order."""
+        avg = self.uses_average() if averaged is None else averaged
+        n = len(self.vocab)
+        sl, sc = self._sl[:, :n], self._sc
+        if self._settings.schedule == "adagrad":
+            theta = np.array([K._ada_lag(self._prm, sc, self._sl, j)[1 if avg else 0]
+                              for j in range(n)])
+            if avg:
+                theta = theta / sc[K.S_NAVG]
+        elif avg:
+            theta = (sl[K.R_U] + sc[K.S_A] * sl[K.R_V]) / sc[K.S_NAVG]
+        else:
+            theta = sc[K.S_WS] * sl[K.R_V]
+        b = sc[K.S_SB] / sc[K.S_NAVG] if avg else sc[K.S_B]
+        return float(b), theta
+
+    def scales(self) -> tuple[np.ndarray, np.ndarray]:
+        """(centre, scale) of each slot: x_std = (x - centre) / scale."""
+        n = len(self.vocab)
+        centred = (self._fl[:n] & K.F_CENTERED) != 0
+        return np.where(centred, self._sl[K.R_MEAN, :n], 0.0), self._sl[K.R_SCALE, :n].copy()
+
+    def coefficients(self, averaged: bool | None = None) -> Coefficients:
+        """The model in the units the features were sent (the averaged weights when averaging)."""
+        b, theta = self.standardised(averaged)
+        centre, scale = self.scales()
+        coefs = theta / scale
+        return Coefficients(float(b - np.sum(coefs * centre)), list(self.vocab.names), coefs)
+
+    # -- state for checkpoints -------------------------------------------------------------------
+    def state_dict(self) -> dict[str, Any]:
+        n = len(self.vocab)
+        return {
+            "settings": self._settings.to_dict(),
+            "names": list(self.vocab.names),
+            "ignored": self.vocab.ignored,
+            "scalars": self._sc.copy(),
+            "slots": self._sl[:, :n].copy(),
+            "flags": self._fl[:n].copy(),
+            "centred_list": self._cl.copy(),
+        }
+
+    @classmethod
+    def from_state_dict(cls, d: dict[str, Any]) -> Learner:
+        lr = cls(LearnerSettings.from_dict(dict(d["settings"])))
+        names = list(d["names"])
+        lr.vocab = Vocabulary(lr._settings.max_features, names)
+        lr.vocab.ignored = int(d["ignored"])
+        lr._sc = np.array(d["scalars"], dtype=np.float64)
+        n = len(names)
+        lr._grow(n)
+        lr._sl[:, :n] = d["slots"]
+        lr._fl[:n] = d["flags"]
+        lr._cl = np.array(d["centred_list"], dtype=np.int64)
+        return lr

@@ -1,0 +1,190 @@
+"""Offline runs over logs: replay (learn, epoch after epoch) and the data for the reference fit.
+
+Both drive the same `Engine` the daemon uses, so an offline run learns exactly what the daemon
+would have learned from the same messages.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from collections.abc import Callable, Iterable, Iterator
+from dataclasses import dataclass, replace
+from typing import Any
+
+import numpy as np
+
+from . import kernel as K
+from .encoding import Block
+from .engine import Engine
+from .errors import InputFileError, ProtocolError
+from .learner import Learner
+from .logs import read_bodies
+from .protocol import Item, decode_body
+from .reference import FitResult, newton_fit
+from .settings import LearnerSettings
+
+BLOCK_ITEMS = 4096
+CACHE_ITEMS = 5_000_000  # decoded messages kept between epochs
+NEVER = 2**62  # an average_start no run reaches
+# Rejections that belong to the stream (an outcome whose request expired, a resent message), not
+# to a malformed file; a replay counts them instead of stopping.
+STREAM_REASONS = frozenset({"unknown_outcome", "duplicate"})
+
+
+@dataclass
+class ReplayReport:
+    epochs: int
+    events: int
+    seconds: float
+
+
+def read_items(paths: list[str]) -> Iterator[tuple[float, Item]]:
+    """Decoded items of every body of `paths`, in order. A malformed body raises InputFileError
+    naming its file and line."""
+    for arrival, body, where in read_bodies(paths):
+        for item in decode_body(body):
+            if isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
+                path, _, line = where.rpartition(":")
+                raise InputFileError(path or where, int(line) if line.isdigit() else None,
+                                     f"{item.reason}: {item.detail}")
+            yield arrival, item
+
+
+def run_logs(engine: Engine, items: Iterable[tuple[float, Item]],
+             progress: Callable[[int], None] | None = None) -> int:
+    """Feed items through `engine` in blocks; returns their number."""
+    batch: list[tuple[float, Any]] = []
+    count = 0
+
+    def flush() -> None:
+        nonlocal count
+        if batch:
+            engine.process(batch)
+            count += len(batch)
+            batch.clear()
+            if progress:
+                progress(count)
+
+    for pair in items:
+        batch.append(pair)
+        if len(batch) >= BLOCK_ITEMS:
+            flush()
+    flush()
+    return count
+
+
+class Progress:
+    """A one-line progress display on a terminal; silent otherwise."""
+
+    def __init__(self, engine: Engine, label: str, stream: Any = None) -> None:
+        self.engine = engine
+        self.label = label
+        self.stream = stream or sys.stderr
+        self.active = bool(getattr(self.stream, "isatty", lambda: False)())
+        self.start = time.monotonic()
+        self.last = 0.0
+
+    def __call__(self, items: int) -> None:
+        now = time.monotonic()
+        if not self.active or now - self.last < 0.25:
+            return
+        self.last = now
+        rate = self.engine.learner.step / max(now - self.start, 1e-9)
+        self.stream.write(f"\r{self.label}  {self.engine.learner.step:,} learned  {rate:,.0f} events/s"
+                          f"  log-loss {self.engine.metrics.log_loss:.4f}   ")
+        self.stream.flush()
+
+    def done(self) -> None:
+        if self.active:
+            self.stream.write("\n")
+
+
+def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) -> ReplayReport:
+    """Learn from `paths` `epochs` times. With `tail_average`, averaging starts at the first epoch
+    of the second half (the learner must have been built with average_start = NEVER)."""
+    t0 = time.monotonic()
+    items = 0
+    # Later epochs reuse the decoded messages of the first when they fit in memory.
+    cache: list[tuple[float, Item]] | None = [] if epochs > 1 else None
+    for epoch in range(1, epochs + 1):
+        bar = Progress(engine, f"epoch {epoch}/{epochs}")
+        if epoch == 1 or cache is None:
+            source: Iterable[tuple[float, Item]] = read_items(paths)
+            if cache is not None:
+                source = _caching(source, cache)
+        else:
+            source = cache
+        items += run_logs(engine, source, bar)
+        if cache is not None and len(cache) > CACHE_ITEMS:
+            cache = None
+        bar.done()
+        if epoch == 1 and tail_average:
+            per_epoch = engine.learner.step
+            engine.learner.set_average_start(per_epoch * (epochs // 2))
+    return ReplayReport(epochs, items, time.monotonic() - t0)
+
+
+def new_engine(settings: LearnerSettings, epochs: int, average_start_given: bool, **kw: Any
+               ) -> tuple[Engine, bool]:
+    """An engine for a replay; tail averaging when epochs > 1 and average_start was not given."""
+    tail = settings.average and epochs > 1 and not average_start_given
+    if tail:
+        settings = replace(settings, average_start=NEVER)
+    return Engine(Learner(settings), **kw), tail
+
+
+def _caching(source: Iterable[tuple[float, Item]], cache: list[tuple[float, Item]]
+             ) -> Iterator[tuple[float, Item]]:
+    for pair in source:
+        if len(cache) <= CACHE_ITEMS:
+            cache.append(pair)
+        yield pair
+
+
+@dataclass
+class Design:
+    """The labelled events of a log in learning order, as a dense raw design matrix."""
+
+    names: list[str]
+    X: np.ndarray
+    y: np.ndarray
+    w: np.ndarray
+    scale: np.ndarray
+    learner: Learner
+
+
+def design_from_logs(paths: list[str], settings: LearnerSettings) -> Design:
+    """Learn the logs once (one epoch) and record every learned event. The scales are those the
+    online learner settled on, so the fit standardises exactly as the learner does."""
+    engine = Engine(Learner(settings))
+    rows: list[tuple[np.ndarray, np.ndarray]] = []
+    ys: list[np.ndarray] = []
+    ws: list[np.ndarray] = []
+    original = engine.learner.run
+
+    def recording_run(block: Block) -> np.ndarray:
+        learned = np.nonzero(block.op != K.OP_SCORE)[0]
+        for e in learned:
+            lo, hi = block.ptr[e], block.ptr[e + 1]
+            rows.append((block.idx[lo:hi].copy(), block.val[lo:hi].copy()))
+        ys.append(block.y[learned])
+        ws.append(block.w[learned])
+        return original(block)
+
+    engine.learner.run = recording_run  # type: ignore[method-assign]
+    run_logs(engine, read_items(paths))
+    lr = engine.learner
+    d = lr.n_features
+    X = np.zeros((len(rows), d))
+    for i, (idx, val) in enumerate(rows):
+        X[i, idx] = val
+    _, scale = lr.scales()
+    y = np.concatenate(ys) if ys else np.zeros(0)
+    w = np.concatenate(ws) if ws else np.zeros(0)
+    return Design(list(lr.vocab.names), X, y, w, scale, lr)
+
+
+def fit_logs(paths: list[str], settings: LearnerSettings) -> tuple[FitResult, Design]:
+    design = design_from_logs(paths, settings)
+    return newton_fit(design.X, design.y, design.w, design.scale, settings.l2, design.names), design

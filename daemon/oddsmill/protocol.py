@@ -1,0 +1,198 @@
+"""The wire protocol (PROTOCOL 2): ingest bodies to frozen messages. Pure: no sockets, no state.
+
+`decode_body` takes an already unpacked body (from msgpack or a JSON line) and returns a list of
+items, one per event, each an `Event`, a `Columns` block or the `ProtocolError` that rejects it (a
+batch's bodies stand or fall one by one, exactly as if sent one by one).
+
+>>> decode_body({"id": "P-1", "x": {"route_km": 3.5}})
+[Event(id='P-1', x={'route_km': 3.5}, y=None, w=1.0, ts=None, src=None, seq=None)]
+>>> decode_body({"id": "P-1", "y": 2})[0].reason
+'bad_label'
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import msgpack
+import numpy as np
+
+from .errors import ProtocolError
+
+EVENT_KEYS = frozenset({"id", "x", "y", "w", "ts", "src", "seq"})
+COLUMN_KEYS = frozenset({"cols", "rows", "y", "id", "src", "seq", "ts"})
+NO_LABEL = 255  # the uint8 that means "no label" in a columnar block's y bin
+
+
+@dataclass(frozen=True)
+class Event:
+    """One event: a training event (x and y), a scoring request (x) or an outcome (id and y)."""
+
+    id: str | int | None
+    x: Mapping[str, Any] | None
+    y: int | None
+    w: float = 1.0
+    ts: float | None = None
+    src: str | None = None
+    seq: int | None = None
+
+
+@dataclass(frozen=True)
+class Columns:
+    """A columnar block of numeric features: n rows by len(cols)."""
+
+    cols: tuple[str, ...]
+    rows: np.ndarray  # float64, n x len(cols)
+    y: np.ndarray  # float64, NaN where there is no label
+    ids: tuple[Any, ...] | None
+    ts: float | None = None
+    src: str | None = None
+    seq: int | None = None
+
+
+Item = Event | Columns | ProtocolError
+
+
+def decode_body(body: object) -> list[Item]:
+    """The events of one ingest body, in order; a bad body is a one-item list of its error."""
+    if not isinstance(body, Mapping):
+        return [ProtocolError("not_a_map", f"a body must be a map, got {type(body).__name__}")]
+    if "batch" in body:
+        items = body["batch"]
+        if len(body) != 1 or not isinstance(items, list):
+            return [ProtocolError("not_a_map", "a batch is a map with the one key 'batch' holding a list")]
+        out: list[Item] = []
+        for item in items:
+            if isinstance(item, Mapping) and "batch" in item:
+                out.append(ProtocolError("not_a_map", "a batch may not hold another batch"))
+            else:
+                out.extend(decode_body(item))
+        return out
+    try:
+        if "cols" in body:
+            return [_columns(body)]
+        return [_event(body)]
+    except ProtocolError as e:
+        return [e]
+
+
+def unpack(raw: bytes) -> object:
+    """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack."""
+    try:
+        return msgpack.unpackb(raw, raw=False, strict_map_key=False, max_buffer_size=len(raw) + 1)
+    except Exception as e:  # msgpack raises several types for bad bytes
+        raise ProtocolError("undecodable", f"the body is not valid msgpack ({e})") from None
+
+
+def _read_id(body: Mapping[str, Any]) -> Any:
+    ident = body.get("id")
+    if ident is not None and (isinstance(ident, bool) or not isinstance(ident, str | int)):
+        raise ProtocolError("not_a_map", f"id must be a string or an integer, got {ident!r}")
+    return ident
+
+
+def _event(body: Mapping[str, Any]) -> Event:
+    ident = _read_id(body)
+    unknown = sorted(str(k) for k in body if k not in EVENT_KEYS)
+    if unknown:
+        raise ProtocolError(
+            "not_a_map", f"unknown key {unknown[0]!r}; an event has id, x, y, w, ts, src, seq", ident
+        )
+    x = body.get("x")
+    if x is not None and not isinstance(x, Mapping):
+        raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", ident)
+    y = _label(body.get("y"), ident) if "y" in body else None
+    w = _weight(body.get("w", 1.0), ident)
+    ts, src, seq = _envelope(body, ident)
+    if x is None:
+        if y is None or ident is None:
+            raise ProtocolError("bad_features", "an event needs x (features), or id and y (an outcome)", ident)
+    return Event(ident, x, y, w, ts, src, seq)
+
+
+def _label(y: Any, ident: Any) -> int:
+    if isinstance(y, bool):
+        return int(y)
+    if isinstance(y, int | float) and not isinstance(y, bool) and y in (0, 1):
+        return int(y)
+    raise ProtocolError("bad_label", f"y must be 0, 1, true or false, got {y!r}", ident)
+
+
+def _weight(w: Any, ident: Any) -> float:
+    if isinstance(w, bool) or not isinstance(w, int | float):
+        raise ProtocolError("bad_weight", f"w must be a number > 0, got {w!r}", ident)
+    if not math.isfinite(w):
+        raise ProtocolError("non_finite", f"w is {w!r}", ident)
+    if w <= 0:
+        raise ProtocolError("bad_weight", f"w must be > 0, got {w!r}", ident)
+    return float(w)
+
+
+def _envelope(body: Mapping[str, Any], ident: Any) -> tuple[float | None, str | None, int | None]:
+    ts = body.get("ts")
+    if ts is not None:
+        if isinstance(ts, bool) or not isinstance(ts, int | float):
+            raise ProtocolError("not_a_map", f"ts must be a number of seconds, got {ts!r}", ident)
+        if not math.isfinite(ts):
+            raise ProtocolError("non_finite", f"ts is {ts!r}", ident)
+    src = body.get("src")
+    if src is not None and not isinstance(src, str):
+        raise ProtocolError("not_a_map", f"src must be a string, got {src!r}", ident)
+    seq = body.get("seq")
+    if seq is not None and (isinstance(seq, bool) or not isinstance(seq, int) or seq < 0):
+        raise ProtocolError("not_a_map", f"seq must be an integer >= 0, got {seq!r}", ident)
+    return (None if ts is None else float(ts)), src, seq
+
+
+def _columns(body: Mapping[str, Any]) -> Columns:
+    unknown = sorted(str(k) for k in body if k not in COLUMN_KEYS)
+    if unknown:
+        raise ProtocolError("not_a_map", f"unknown key {unknown[0]!r} in a columnar block")
+    cols = body["cols"]
+    if not isinstance(cols, list) or not cols or not all(isinstance(c, str) for c in cols):
+        raise ProtocolError("bad_features", "cols must be a non-empty list of feature names")
+    if len(set(cols)) != len(cols):
+        raise ProtocolError("bad_features", "cols names a feature twice")
+    rows = body.get("rows")
+    d = len(cols)
+    if isinstance(rows, bytes | bytearray):
+        if len(rows) % (8 * d):
+            raise ProtocolError(
+                "bad_features", f"rows holds {len(rows)} bytes, not a multiple of 8 x {d} columns"
+            )
+        matrix = np.frombuffer(bytes(rows), dtype="<f8").reshape(-1, d).astype(np.float64)
+    elif isinstance(rows, list) and all(isinstance(r, list) and len(r) == d for r in rows):
+        # JSON Lines cannot carry bytes: there a block's rows are a list of lists.
+        try:
+            matrix = np.array(rows, dtype=np.float64).reshape(-1, d)
+        except (TypeError, ValueError):
+            raise ProtocolError("bad_features", "rows must hold numbers only") from None
+    else:
+        raise ProtocolError("bad_features", f"rows must be float64 bytes, n x {d}")
+    n = matrix.shape[0]
+    if not np.isfinite(matrix).all():
+        raise ProtocolError("non_finite", "rows holds a NaN or an infinity")
+    y = np.full(n, np.nan)
+    if "y" in body and body["y"] is not None:
+        yb = body["y"]
+        if isinstance(yb, bytes | bytearray):
+            u = np.frombuffer(bytes(yb), dtype=np.uint8)
+            if u.shape[0] != n or not np.isin(u, (0, 1, NO_LABEL)).all():
+                raise ProtocolError("bad_label", f"y must be {n} bytes of 0, 1 or 255")
+            y = np.where(u == NO_LABEL, np.nan, u.astype(np.float64))
+        elif isinstance(yb, list) and len(yb) == n:
+            y = np.array([np.nan if v is None else _label(v, None) for v in yb], dtype=np.float64)
+        else:
+            raise ProtocolError("bad_label", f"y must be a list or bytes of {n} labels")
+    ids = body.get("id")
+    if ids is not None:
+        if not isinstance(ids, list) or len(ids) != n:
+            raise ProtocolError("not_a_map", f"id must be a list of {n} ids")
+        for ident in ids:
+            _read_id({"id": ident})
+        ids = tuple(ids)
+    ts, src, seq = _envelope(body, None)
+    return Columns(tuple(cols), matrix, y, ids, ts, src, seq)

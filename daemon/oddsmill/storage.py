@@ -1,0 +1,235 @@
+"""Checkpoints and the journal (PROTOCOL 6). Parsed, never unpickled or evaluated.
+
+Checkpoint file `checkpoint-<step>.omc`:
+    MAGIC (20 bytes) | u32 LE format version | u64 LE payload length | SHA-256 of payload (32 bytes)
+    | payload: msgpack map; numpy arrays as ext type 1 = msgpack [dtype, shape, bytes] with dtype
+      one of <f8, <i8, |u1.
+Written atomically: a temporary file in the same directory, flush, fsync, rename, fsync of the
+directory. The newest KEEP are kept; `load_newest` falls back past a damaged one with a warning.
+
+Journal segment `journal-<first record number>.omj`:
+    JOURNAL_MAGIC (17 bytes) | u32 LE version | records
+    record: u32 LE payload length | u32 LE CRC-32 of payload | payload = msgpack [arrival_time, body]
+A torn or corrupt tail ends the readable part of a segment at the last good record.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import os
+import re
+import struct
+import zlib
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+
+from .errors import CheckpointError, JournalError
+
+log = logging.getLogger("oddsmill")
+
+MAGIC = b"oddsmill checkpoint\n"
+VERSION = 1
+KEEP = 3
+_HEADER = struct.Struct("<IQ32s")
+_ND_EXT = 1
+_DTYPES = {"<f8", "<i8", "|u1"}
+CHECKPOINT_RE = re.compile(r"^checkpoint-(\d+)\.omc$")
+
+JOURNAL_MAGIC = b"oddsmill journal\n"
+JOURNAL_VERSION = 1
+_RECORD = struct.Struct("<II")
+JOURNAL_RE = re.compile(r"^journal-(\d+)\.omj$")
+MAX_RECORD = 1 << 30  # a length field beyond this is damage, not a record
+
+
+# -- checkpoints ---------------------------------------------------------------------------------
+def _pack_default(obj: Any) -> Any:
+    if isinstance(obj, np.ndarray):
+        arr = np.ascontiguousarray(obj)
+        dt = arr.dtype.str
+        if dt not in _DTYPES:
+            raise TypeError(f"cannot store an array of dtype {dt}")
+        return msgpack.ExtType(_ND_EXT, msgpack.packb([dt, list(arr.shape), arr.tobytes()]))
+    if isinstance(obj, np.floating | np.integer):
+        return obj.item()
+    raise TypeError(f"cannot store {type(obj).__name__}")
+
+
+def _ext_hook(code: int, data: bytes) -> Any:
+    if code != _ND_EXT:
+        raise CheckpointError(f"unknown extension type {code} in the payload")
+    dt, shape, raw = msgpack.unpackb(data)
+    if dt not in _DTYPES:
+        raise CheckpointError(f"unknown array dtype {dt!r} in the payload")
+    return np.frombuffer(raw, dtype=dt).reshape(shape).copy()
+
+
+def encode_checkpoint(state: dict[str, Any]) -> bytes:
+    payload = msgpack.packb(state, default=_pack_default, use_bin_type=True)
+    return MAGIC + _HEADER.pack(VERSION, len(payload), hashlib.sha256(payload).digest()) + payload
+
+
+def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
+    if not data.startswith(MAGIC):
+        raise CheckpointError(f"{name}: not an oddsmill checkpoint (no magic string)")
+    head = data[len(MAGIC): len(MAGIC) + _HEADER.size]
+    if len(head) < _HEADER.size:
+        raise CheckpointError(f"{name}: truncated header")
+    version, length, digest = _HEADER.unpack(head)
+    if version != VERSION:
+        raise CheckpointError(f"{name}: format version {version}, this oddsmill reads {VERSION}")
+    payload = data[len(MAGIC) + _HEADER.size:]
+    if len(payload) != length:
+        raise CheckpointError(f"{name}: payload is {len(payload)} bytes, header says {length} (truncated?)")
+    if hashlib.sha256(payload).digest() != digest:
+        raise CheckpointError(f"{name}: checksum mismatch (the file is damaged)")
+    try:
+        state = msgpack.unpackb(payload, ext_hook=_ext_hook, raw=False, strict_map_key=False)
+    except CheckpointError:
+        raise
+    except Exception as e:
+        raise CheckpointError(f"{name}: payload does not parse ({e})") from None
+    if not isinstance(state, dict):
+        raise CheckpointError(f"{name}: payload is not a map")
+    return state
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def write_checkpoint(state_dir: Path, step: int, state: dict[str, Any], keep: int = KEEP) -> Path:
+    """Write atomically, then delete all but the newest `keep` checkpoints."""
+    state_dir.mkdir(parents=True, exist_ok=True)
+    data = encode_checkpoint(state)
+    final = state_dir / f"checkpoint-{step:012d}.omc"
+    tmp = state_dir / f".{final.name}.tmp"
+    with open(tmp, "wb") as f:
+        f.write(data)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, final)
+    _fsync_dir(state_dir)
+    for old in list_checkpoints(state_dir)[:-keep]:
+        old.unlink(missing_ok=True)
+    return final
+
+
+def list_checkpoints(state_dir: Path) -> list[Path]:
+    """Checkpoints oldest first (by step, then by modification order)."""
+    found = [p for p in state_dir.iterdir() if CHECKPOINT_RE.match(p.name)] if state_dir.is_dir() else []
+    return sorted(found, key=lambda p: int(CHECKPOINT_RE.match(p.name).group(1)))  # type: ignore[union-attr]
+
+
+def read_checkpoint(path: Path) -> dict[str, Any]:
+    try:
+        data = path.read_bytes()
+    except OSError as e:
+        raise CheckpointError(f"{path}: cannot read ({e.strerror})") from None
+    return decode_checkpoint(data, str(path))
+
+
+def load_newest(state_dir: Path) -> tuple[dict[str, Any], Path] | None:
+    """The newest readable checkpoint; a damaged one is skipped with a warning. None when there is
+    none at all; CheckpointError when there are some and none can be read."""
+    found = list_checkpoints(state_dir)
+    errors = []
+    for path in reversed(found):
+        try:
+            return read_checkpoint(path), path
+        except CheckpointError as e:
+            log.warning("skipping damaged checkpoint: %s", e)
+            errors.append(str(e))
+    if found:
+        raise CheckpointError("no readable checkpoint: " + "; ".join(errors))
+    return None
+
+
+# -- journal ---------------------------------------------------------------------------------------
+def journal_record(arrival: float, raw_body: bytes) -> bytes:
+    """One record; the body is spliced in as received (it is valid msgpack already)."""
+    payload = b"\x92" + msgpack.packb(float(arrival)) + raw_body
+    return _RECORD.pack(len(payload), zlib.crc32(payload)) + payload
+
+
+class JournalWriter:
+    """Appends records to a segment; `sync` flushes and fsyncs."""
+
+    def __init__(self, path: Path) -> None:
+        new = not path.exists() or path.stat().st_size == 0
+        self.path = path
+        self._f = open(path, "ab")
+        if new:
+            self._f.write(JOURNAL_MAGIC + struct.pack("<I", JOURNAL_VERSION))
+
+    def append(self, arrival: float, raw_body: bytes) -> None:
+        self._f.write(journal_record(arrival, raw_body))
+
+    def sync(self) -> None:
+        self._f.flush()
+        os.fsync(self._f.fileno())
+
+    def close(self) -> None:
+        self._f.close()
+
+    def __enter__(self) -> JournalWriter:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def read_journal(path: Path) -> Iterator[tuple[int, float, Any]]:
+    """(byte offset just past the record, arrival time, body) for each good record; stops at a torn
+    or corrupt tail after logging where. JournalError when the header is wrong."""
+    with open(path, "rb") as f:
+        data = f.read()
+    head = len(JOURNAL_MAGIC) + 4
+    if not data.startswith(JOURNAL_MAGIC) or len(data) < head:
+        raise JournalError(f"{path}: not an oddsmill journal segment (no magic string)")
+    (version,) = struct.unpack_from("<I", data, len(JOURNAL_MAGIC))
+    if version != JOURNAL_VERSION:
+        raise JournalError(f"{path}: journal version {version}, this oddsmill reads {JOURNAL_VERSION}")
+    pos = head
+    while pos < len(data):
+        if pos + _RECORD.size > len(data):
+            log.warning("%s: torn record header at byte %d; the tail is ignored", path, pos)
+            return
+        length, crc = _RECORD.unpack_from(data, pos)
+        end = pos + _RECORD.size + length
+        if length > MAX_RECORD or end > len(data):
+            log.warning("%s: torn record at byte %d; the tail is ignored", path, pos)
+            return
+        payload = data[pos + _RECORD.size: end]
+        if zlib.crc32(payload) != crc:
+            log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
+            return
+        try:
+            arrival, body = msgpack.unpackb(payload, raw=False, strict_map_key=False)
+        except Exception:
+            log.warning("%s: unreadable record at byte %d; the tail is ignored", path, pos)
+            return
+        yield end, float(arrival), body
+        pos = end
+
+
+def list_journal(state_dir: Path) -> list[Path]:
+    found = [p for p in state_dir.iterdir() if JOURNAL_RE.match(p.name)] if state_dir.is_dir() else []
+    return sorted(found, key=lambda p: int(JOURNAL_RE.match(p.name).group(1)))  # type: ignore[union-attr]
+
+
+def is_journal(path: Path) -> bool:
+    try:
+        with open(path, "rb") as f:
+            return f.read(len(JOURNAL_MAGIC)) == JOURNAL_MAGIC
+    except OSError:
+        return False

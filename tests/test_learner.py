@@ -1,0 +1,165 @@
+"""The online learner against river, the dense oracle, and its own exactness promises."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from oddsmill import kernel as K
+from oddsmill.encoding import BlockBuilder
+from oddsmill.learner import Learner
+from oddsmill.schedules import rate
+from oddsmill.settings import LearnerSettings
+from tests.conftest import sparse_stream
+from tests.oracle import Oracle
+
+
+def test_constant_rate_matches_river_step_for_step(phishing_data) -> None:  # type: ignore[no-untyped-def]
+    # Source: river's LogisticRegression with SGD(lr), the same rate for the intercept and the same
+    # L2, on river's bundled Phishing data. river's L2 touches only the features present in an event;
+    # every Phishing event carries all 9 features, so the two updates are the same.
+    from river import linear_model, optim
+
+    ours = Learner(LearnerSettings(schedule="constant", eta0=0.05, l2=1e-3, average=False, scaling="none"))
+    theirs = linear_model.LogisticRegression(optimizer=optim.SGD(0.05), l2=1e-3, intercept_lr=0.05)
+    worst = 0.0
+    for x, y in phishing_data:
+        z = ours.learn_one(x, y)
+        p_river = theirs.predict_proba_one(x)[True]
+        assert abs(1 / (1 + np.exp(-z)) - p_river) < 1e-9
+        theirs.learn_one(x, y)
+        c = ours.coefficients().as_dict()
+        worst = max(worst, max(abs(c[k] - v) for k, v in theirs.weights.items()))
+        worst = max(worst, abs(ours.coefficients().intercept - theirs.intercept))
+    assert worst < 1e-9
+
+
+SETTINGS = [
+    dict(schedule="constant", eta0=0.1, l2=1e-2),
+    dict(schedule="inverse-time", eta0=0.3, l2=1e-2),
+    dict(schedule="power", eta0=0.5, l2=1e-3, decay=0.1),
+    dict(schedule="adagrad", eta0=0.5, l2=1e-2),
+]
+
+
+def _oracle_for(s: LearnerSettings) -> Oracle:
+    return Oracle(s.schedule, s.eta0, s.l2, s.decay_a, s.power, s.adagrad_delta, s.average,
+                  s.average_start, s.scaling == "standardize", s.scale_warmup)
+
+
+def _numeric(x: dict) -> dict:  # type: ignore[type-arg]
+    """The oracle's view of an event: encoded names and float values."""
+    out = {}
+    for k, v in x.items():
+        if isinstance(v, str):
+            out[f"{k}={v}"] = 1.0
+        elif v is not None:
+            out[k] = float(v)
+    return out
+
+
+@pytest.mark.parametrize("average", [False, True])
+@pytest.mark.parametrize("kw", SETTINGS, ids=[s["schedule"] for s in SETTINGS])
+def test_lazy_updates_equal_the_dense_oracle(kw: dict, average: bool) -> None:  # type: ignore[type-arg]
+    """The scale factor / lazy catch-up L2, the u + A v averages and the centring equal a dense
+    step-by-step reference on sparse events, to 1e-12 relative."""
+    s = LearnerSettings(**kw, average=average, average_start=50, scale_warmup=200)
+    lr, orc = Learner(s), _oracle_for(s)
+    for i, (x, y) in enumerate(sparse_stream(1500, seed=3)):
+        xe = _numeric(x)
+        num = {k for k, v in x.items() if not isinstance(v, str)}
+        z = lr.learn_one(x, y)
+        assert z == pytest.approx(orc.logit(xe), rel=1e-12, abs=1e-12), i
+        orc.learn(xe, num, y)
+    b, coefs = orc.coefficients()
+    c = lr.coefficients()
+    assert c.intercept == pytest.approx(b, rel=1e-12, abs=1e-12)
+    for name, v in c.as_dict().items():
+        assert v == pytest.approx(coefs[name], rel=1e-10, abs=1e-12), name
+
+
+@pytest.mark.parametrize("kw", SETTINGS, ids=[s["schedule"] for s in SETTINGS])
+def test_blocks_of_any_size_are_bit_identical(kw: dict) -> None:  # type: ignore[type-arg]
+    events = sparse_stream(2000, seed=5)
+    results = []
+    for size in (1, 7, 256, 2000):
+        lr = Learner(LearnerSettings(**kw, average_start=100))
+        for lo in range(0, len(events), size):
+            b = BlockBuilder()
+            for x, y in events[lo: lo + size]:
+                slots, values = lr.encode(x)
+                b.add(slots, values, K.OP_TRAIN, float(y), 1.0)
+            lr.run(b.build())
+        sd = lr.state_dict()
+        results.append((sd["scalars"].tobytes(), sd["slots"].tobytes()))
+    assert all(r == results[0] for r in results)
+
+
+def test_renormalisation_of_the_weight_scale_keeps_the_model() -> None:
+    """With a strong L2 the scale falls under its floor many times; the model still equals the
+    dense oracle."""
+    s = LearnerSettings(schedule="constant", eta0=0.5, l2=0.5, average=True, scale_warmup=50)
+    lr, orc = Learner(s), _oracle_for(s)
+    for x, y in sparse_stream(600, seed=8):
+        xe = _numeric(x)
+        lr.learn_one(x, y)
+        orc.learn(xe, {k for k, v in x.items() if not isinstance(v, str)}, y)
+    assert lr.renormalisations > 5
+    b, coefs = orc.coefficients()
+    assert lr.coefficients().intercept == pytest.approx(b, rel=1e-9)
+    for name, v in lr.coefficients().as_dict().items():
+        assert v == pytest.approx(coefs[name], rel=1e-9, abs=1e-15)
+
+
+@pytest.mark.parametrize(
+    "schedule,t,expected",
+    [
+        # eta0 = 0.5, l2 = 0.01, a = 0.1, c = 0.75, delta = 1
+        ("constant", 0, 0.5),
+        ("constant", 10**6, 0.5),
+        ("inverse-time", 0, 0.5),
+        ("inverse-time", 400, 0.5 / 3.0),
+        ("power", 0, 0.5),
+        ("power", 300, 0.5 * 16.0 ** -0.75),
+    ],
+)
+def test_schedule_table(schedule: str, t: int, expected: float) -> None:
+    s = LearnerSettings(schedule=schedule, eta0=0.5, l2=0.01, decay=0.1, power=0.75)
+    assert rate(s, t) == pytest.approx(expected, rel=1e-15)
+    prm = np.zeros(K.N_PARAMS)
+    from oddsmill.learner import settings_record
+
+    prm = settings_record(s)
+    assert K._global_rate(prm, float(t)) == pytest.approx(expected, rel=1e-15)
+
+
+def test_adagrad_rate_formula() -> None:
+    s = LearnerSettings(schedule="adagrad", eta0=0.5, adagrad_delta=1.0)
+    assert rate(s, 0, 9.0) == pytest.approx(0.5 / 4.0)
+
+
+def test_settings_are_validated_with_field_and_value() -> None:
+    from oddsmill.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="eta0 must be > 0, got -1"):
+        LearnerSettings(eta0=-1)
+    with pytest.raises(ConfigError, match="schedule must be one of"):
+        LearnerSettings(schedule="cosine")
+    with pytest.raises(ConfigError, match="largest rate times l2"):
+        LearnerSettings(eta0=2.0, l2=0.6)
+
+
+def test_vocabulary_cap_ignores_new_names_and_counts_them() -> None:
+    lr = Learner(LearnerSettings(max_features=3))
+    lr.learn_one({"a": 1.0, "b": 2.0, "c": 3.0}, 1)
+    lr.learn_one({"a": 1.0, "d": 2.0, "e": "x"}, 0)
+    assert lr.vocab.names == ["a", "b", "c"]
+    assert lr.vocab.ignored == 2
+
+
+def test_vocabulary_grows_to_many_slots() -> None:
+    lr = Learner(LearnerSettings(schedule="constant", eta0=0.1))
+    for i in range(5000):
+        lr.learn_one({f"f{i}": 1.0, f"g{i % 7}": "on"}, i % 2)
+    assert lr.n_features == 5007
+    assert lr.state_dict()["slots"].shape[1] == 5007
