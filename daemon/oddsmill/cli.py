@@ -25,7 +25,7 @@ log = logging.getLogger("oddsmill")
 LEARNER_FLAGS = {  # flag -> (setting, type)
     "schedule": str, "eta0": float, "l2": float, "decay": float, "power": float,
     "adagrad_delta": float, "average_start": int, "scaling": str, "scale_warmup": int,
-    "max_features": int,
+    "max_features": int, "max_centred": int,
 }
 
 
@@ -44,7 +44,7 @@ def _learner_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--schedule", choices=["constant", "inverse-time", "power", "adagrad"])
     g.add_argument("--eta0", type=float, help="initial learning rate (default 0.5)")
     g.add_argument("--l2", type=float, help="L2 penalty lambda on standardised coefficients (default 1e-4)")
-    g.add_argument("--decay", type=float, help="the power schedule's a (default 0.1)")
+    g.add_argument("--decay", type=float, help="the power schedule's a (default 0.03)")
     g.add_argument("--power", type=float, help="the power schedule's c (default 0.75)")
     g.add_argument("--adagrad-delta", dest="adagrad_delta", type=float)
     g.add_argument("--average", dest="average", action="store_true", default=None,
@@ -54,6 +54,7 @@ def _learner_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--scaling", choices=["standardize", "none"])
     g.add_argument("--scale-warmup", dest="scale_warmup", type=int)
     g.add_argument("--max-features", dest="max_features", type=int)
+    g.add_argument("--max-centred", dest="max_centred", type=int)
     g.add_argument("--window", type=int, default=None, help="events in the metrics window (default 10000)")
 
 

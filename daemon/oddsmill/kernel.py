@@ -10,13 +10,20 @@ The state lives in three arrays so that the kernel's signature stays short:
 - `sc`, the scalar state (indices S_*): step, weight scale, intercept, averaging sums, ...;
 - `sl`, per-slot rows (R_*, one column per vocabulary slot) and `fl`, per-slot flags (F_*).
 
-Coordinates. A coefficient theta_j is kept in standardised units, x_std = (x - c_j) / s_j, where s_j
-is the feature's standard deviation over its warm-up and c_j its mean while the feature is "centred"
-(present in every learned event so far; the first event without it folds c_j into the intercept,
-which is an exact change of coordinates). The model itself is always
-logit = b + sum over present j of theta_j x_j / s_j, with absent features contributing nothing; the
-centring only conditions the optimisation. While a feature's statistics are warming up they change,
-and each change rewrites theta_j and the intercept so that every prediction is preserved exactly.
+Coordinates. The model is always logit = b + sum over present j of theta_j x_j / s_j: an absent
+feature contributes nothing. theta_j is in standardised units: s_j comes from the feature's first
+P_WARMUP present values (see `_scale`: their standard deviation, tempered while they are few; 1 for
+a one-hot). While these statistics warm up they
+change, and each change rewrites theta_j so that every prediction is preserved exactly.
+The optimisation runs in centred coordinates, which is what makes it converge on features whose mean
+is far from 0 (an uncentred feature is nearly collinear with the intercept): when a feature's
+warm-up window (P_WARMUP learned events from its first) ends and it was present in at least
+CENTRE_MIN_SHARE of them, it joins the centred set; from then on its centre c_j follows its mean
+over every learned event since its first (absent counted as 0), so that a feature first seen in an
+unusual week is not centred on that week for ever. Every move of c_j is absorbed by the intercept
+(b += theta_j dc / s_j), an exact change of coordinates; the intercept is not penalised, so the
+objective and its optimum do not depend on the centres at all. Members of the centred set (at most P_MAX_CENTRED) are "dense": absent, their value is
+0, so (0 - c_j) / s_j, and they are updated at every step. A step costs O(centred + present).
 
 L2 without touching absent features. For the global schedules theta = ws * v with one scale ws for
 all slots (Bottou's SGD code); the Polyak-Ruppert sum of the iterates is kept as u + A v (the scheme
@@ -34,17 +41,19 @@ import numpy as np
 from numba import njit
 
 # settings record
-P_SCHED, P_ETA0, P_L2, P_A, P_C, P_DELTA, P_AVG, P_AVG_START, P_SCALING, P_WARMUP = range(10)
-N_PARAMS = 10
+(P_SCHED, P_ETA0, P_L2, P_A, P_C, P_DELTA, P_AVG, P_AVG_START, P_SCALING, P_WARMUP,
+ P_MAX_CENTRED) = range(11)
+N_PARAMS = 11
 # scalar state
-S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_STARTED, S_NCLIST, S_NSLOTS, S_RENORMS = range(12)
+S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS = range(12)
 N_SCALARS = 12
 # per-slot rows
-R_V, R_U, R_G, R_LAST, R_MEAN, R_M2, R_COUNT, R_SCALE = range(8)
-N_ROWS = 8
+R_V, R_U, R_G, R_LAST, R_MEAN, R_M2, R_COUNT, R_SCALE, R_FIRST, R_DPOS, R_SUM = range(11)
+N_ROWS = 11
 # per-slot flags
 F_NUMERIC = np.uint8(1)
 F_CENTERED = np.uint8(2)
+F_SEEN = np.uint8(4)  # learned at least once (its warm-up window has begun)
 # operations
 OP_SCORE, OP_TRAIN, OP_LEARN = 0, 1, 2
 # schedule codes (as in schedules.CODES)
@@ -52,7 +61,8 @@ SCH_CONSTANT, SCH_INVERSE, SCH_POWER, SCH_ADAGRAD = 0, 1, 2, 3
 
 # Guards, one named constant each.
 WS_FLOOR = 1e-3  # fold the scale in: the u + A v sums then lose at most ~3 digits to cancellation
-CONSTANT_RTOL = 1e-9  # a feature whose sd is below this fraction of its mean is treated as constant
+CONSTANT_RTOL = 1e-9  # a feature whose sd is below this fraction of its mean is constant so far
+CENTRE_MIN_SHARE = 0.01  # centred only if present in at least this share of its warm-up window
 
 
 @njit(cache=True, inline="always")
@@ -125,60 +135,84 @@ def _xstd(sl: np.ndarray, fl: np.ndarray, j: int, x: float) -> float:
     return x / sl[R_SCALE, j]
 
 
+@njit(cache=True, inline="always")
+def _xstd(sl: np.ndarray, fl: np.ndarray, j: int, x: float) -> float:
+    if fl[j] & F_CENTERED:
+        return (x - sl[R_MEAN, j]) / sl[R_SCALE, j]
+    return x / sl[R_SCALE, j]
+
+
 @njit(cache=True)
-def _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, averaged):  # type: ignore[no-untyped-def]
-    """The model's logit for one event, reading the state only."""
-    z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
-    ncent = 0
+def _gather(sl, fl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
+    """Put the values of the present centred features into dx (by position in the centred set)."""
     for k in range(lo, hi):
         j = idx[k]
         if fl[j] & F_CENTERED:
-            ncent += 1
-        z += _coef(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, val[k])
-    if ncent < sc[S_NCENT]:
-        # a centred feature is absent: its share of the intercept does not apply
-        for m in range(int(sc[S_NCLIST])):
-            j = cl[m]
-            if not (fl[j] & F_CENTERED) or _present(idx, lo, hi, j):
-                continue
-            z -= _coef(prm, sc, sl, j, averaged) * sl[R_MEAN, j] / sl[R_SCALE, j]
-    return z
+            dx[int(sl[R_DPOS, j])] = val[k]
 
 
-@njit(cache=True, inline="always")
-def _present(idx: np.ndarray, lo: int, hi: int, j: int) -> bool:
+@njit(cache=True)
+def _clear(sl, fl, idx, lo, hi, dx):  # type: ignore[no-untyped-def]
     for k in range(lo, hi):
-        if idx[k] == j:
-            return True
-    return False
+        j = idx[k]
+        if fl[j] & F_CENTERED:
+            dx[int(sl[R_DPOS, j])] = 0.0
+
+
+@njit(cache=True)
+def _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+    """The model's logit for one event, reading the state only. `dx` holds the values of the
+    centred features (0 where absent)."""
+    z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
+    for m in range(int(sc[S_NCENT])):
+        j = cl[m]
+        z += _coef(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, dx[m])
+    for k in range(lo, hi):
+        j = idx[k]
+        if not (fl[j] & F_CENTERED):
+            z += _coef(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, val[k])
+    return z
 
 
 @njit(cache=True)
 def score_block(prm, sc, sl, fl, cl, ptr, idx, val, out):  # type: ignore[no-untyped-def]
     """Logits of every event of a block with the state as it is (scoring never changes state)."""
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
+    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     for e in range(ptr.shape[0] - 1):
-        out[e] = _logit(prm, sc, sl, fl, cl, idx, val, ptr[e], ptr[e + 1], averaged)
+        lo, hi = ptr[e], ptr[e + 1]
+        _gather(sl, fl, idx, val, lo, hi, dx)
+        out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+        _clear(sl, fl, idx, lo, hi, dx)
+
+
+@njit(cache=True, inline="always")
+def _scale(mean: float, m2: float, n: float) -> float:
+    """A feature's scale from n present values: sqrt(sd^2 + mean^2 / n). For the first value it is
+    |x| (so x / s = 1), and it tends to the standard deviation as n grows; an estimate from a few
+    nearly equal values cannot blow x / s up (|x / s| stays near sqrt(n) at most). A feature constant
+    so far has scale |mean| (1 when it is 0)."""
+    var = m2 / n
+    if var <= (CONSTANT_RTOL * mean) ** 2:  # constant so far (a one-hot is always 1)
+        return abs(mean) if mean != 0.0 else 1.0
+    return math.sqrt(var + mean * mean / n)
 
 
 @njit(cache=True)
 def _reparam(prm, sc, sl, fl, j, new_center, new_scale):  # type: ignore[no-untyped-def]
     """Change feature j's centre and scale, rewriting theta_j and the intercept so that every
-    prediction (of the iterate and of the average) is unchanged."""
+    prediction (of the iterate and of the average) is unchanged. AdaGrad's lag must be caught up."""
     old_center = sl[R_MEAN, j] if fl[j] & F_CENTERED else 0.0
     old_scale = sl[R_SCALE, j]
     shift = (new_center - old_center) / old_scale
     ratio = new_scale / old_scale
     theta = _coef(prm, sc, sl, j, False)
     if prm[P_SCHED] == SCH_ADAGRAD:
-        # the lag was caught up by the caller, so R_U is the iterate sum
         tsum = sl[R_U, j]
-        sl[R_V, j] *= ratio
-        sl[R_U, j] *= ratio
     else:
         tsum = sl[R_U, j] + sc[S_A] * sl[R_V, j]
-        sl[R_V, j] *= ratio
-        sl[R_U, j] *= ratio
+    sl[R_V, j] *= ratio
+    sl[R_U, j] *= ratio
     sc[S_B] += theta * shift
     sc[S_SB] += tsum * shift
     sl[R_SCALE, j] = new_scale
@@ -193,73 +227,86 @@ def _catch_up(prm, sc, sl, j):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True)
-def _learn_one(prm, sc, sl, fl, cl, idx, val, lo, hi, y, w):  # type: ignore[no-untyped-def]
+def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
+    """Features whose warm-up window (P_WARMUP learned events from their first) ends at this step:
+    centre the frequent ones, with their mean over the window (absent counted as 0)."""
+    t = sc[S_T]
+    window = prm[P_WARMUP]
+    while sc[S_QHEAD] < sc[S_QLEN]:
+        j = wq[int(sc[S_QHEAD])]
+        if sl[R_FIRST, j] + window > t:
+            break
+        sc[S_QHEAD] += 1.0
+        if sl[R_COUNT, j] < CENTRE_MIN_SHARE * window or sc[S_NCENT] >= prm[P_MAX_CENTRED]:
+            continue
+        if prm[P_SCHED] == SCH_ADAGRAD:
+            _catch_up(prm, sc, sl, j)
+        centre = sl[R_SUM, j] / (t - sl[R_FIRST, j])
+        _reparam(prm, sc, sl, fl, j, centre, sl[R_SCALE, j])
+        fl[j] |= F_CENTERED
+        sl[R_MEAN, j] = centre
+        m = int(sc[S_NCENT])
+        cl[m] = j
+        sl[R_DPOS, j] = m
+        sc[S_NCENT] = m + 1.0
+
+
+@njit(cache=True)
+def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ignore[no-untyped-def]
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    scaling = prm[P_SCALING] != 0.0
     t = sc[S_T]
     if ada:
         for k in range(lo, hi):
             _catch_up(prm, sc, sl, idx[k])
-    # The centred set is fixed at the first learned event and only shrinks.
-    if sc[S_STARTED] == 0.0:
-        sc[S_STARTED] = 1.0
-        if scaling:
-            n = 0
-            for k in range(lo, hi):
-                j = idx[k]
-                if fl[j] & F_NUMERIC:
-                    fl[j] |= F_CENTERED
-                    sl[R_MEAN, j] = 0.0  # centre starts at 0 and follows the warm-up mean
-                    cl[n] = j
-                    n += 1
-            sc[S_NCLIST] = n
-            sc[S_NCENT] = n
-    if sc[S_NCENT] > 0.0:
-        ncent = 0
-        for k in range(lo, hi):
-            if fl[idx[k]] & F_CENTERED:
-                ncent += 1
-        if ncent < sc[S_NCENT]:
-            for m in range(int(sc[S_NCLIST])):
-                j = cl[m]
-                if (fl[j] & F_CENTERED) and not _present(idx, lo, hi, j):
-                    if ada:
-                        _catch_up(prm, sc, sl, j)
-                    _reparam(prm, sc, sl, fl, j, 0.0, sl[R_SCALE, j])
-                    fl[j] &= ~F_CENTERED
-                    sc[S_NCENT] -= 1.0
-    # Warm-up of the scaling statistics (Welford), preserving predictions.
-    if scaling:
+    if prm[P_SCALING] != 0.0:
+        _end_warmups(prm, sc, sl, fl, cl, wq)
+        # a centred feature's centre is its mean over every learned event since its first
+        for m in range(int(sc[S_NCENT])):
+            j = cl[m]
+            centre = sl[R_SUM, j] / (t - sl[R_FIRST, j])
+            if centre != sl[R_MEAN, j]:
+                if ada:
+                    _catch_up(prm, sc, sl, j)
+                _reparam(prm, sc, sl, fl, j, centre, sl[R_SCALE, j])
+                sl[R_MEAN, j] = centre
         for k in range(lo, hi):
             j = idx[k]
-            if not (fl[j] & F_NUMERIC) or sl[R_COUNT, j] >= prm[P_WARMUP]:
+            if not (fl[j] & F_SEEN):
+                fl[j] |= F_SEEN
+                sl[R_FIRST, j] = t
+                wq[int(sc[S_QLEN])] = j
+                sc[S_QLEN] += 1.0
+            sl[R_SUM, j] += val[k]
+            if (fl[j] & F_CENTERED) or sl[R_COUNT, j] >= prm[P_WARMUP]:
                 continue
+            # Welford's running mean and variance of the feature's present values
             x = val[k]
             cnt = sl[R_COUNT, j] + 1.0
             delta = x - sl[R_MEAN, j]
             mean = sl[R_MEAN, j] + delta / cnt
             m2 = sl[R_M2, j] + delta * (x - mean)
-            sd = math.sqrt(m2 / cnt)
-            if sd > CONSTANT_RTOL * abs(mean):
-                scale = sd
-            elif mean != 0.0:
-                scale = abs(mean)
-            else:
-                scale = 1.0
-            new_center = mean if fl[j] & F_CENTERED else 0.0
-            _reparam(prm, sc, sl, fl, j, new_center, scale)
+            scale = _scale(mean, m2, cnt)
+            _reparam(prm, sc, sl, fl, j, 0.0, scale)
             sl[R_MEAN, j] = mean
             sl[R_M2, j] = m2
             sl[R_COUNT, j] = cnt
-    # The gradient step on the current iterate.
-    z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, False)
+    _gather(sl, fl, idx, val, lo, hi, dx)
+    z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, False)
     g = w * (y - sigmoid(z))
     l2 = prm[P_L2]
     averaging = prm[P_AVG] != 0.0 and t >= prm[P_AVG_START]
+    ncent = int(sc[S_NCENT])
     if ada:
-        for k in range(lo, hi):
-            j = idx[k]
-            gj = g * _xstd(sl, fl, j, val[k])
+        for m in range(ncent + (hi - lo)):
+            if m < ncent:
+                j = cl[m]
+                x = dx[m]
+            else:
+                j = idx[lo + m - ncent]
+                if fl[j] & F_CENTERED:
+                    continue
+                x = val[lo + m - ncent]
+            gj = g * _xstd(sl, fl, j, x)
             sl[R_G, j] += gj * gj
             eta_j = _ada_rate(prm, sl[R_G, j])
             sl[R_V, j] += eta_j * (gj - l2 * sl[R_V, j])
@@ -273,9 +320,16 @@ def _learn_one(prm, sc, sl, fl, cl, idx, val, lo, hi, y, w):  # type: ignore[no-
         sc[S_WS] *= 1.0 - eta * l2
         ws = sc[S_WS]
         a_sum = sc[S_A]
-        for k in range(lo, hi):
-            j = idx[k]
-            d = eta * g * _xstd(sl, fl, j, val[k]) / ws
+        for m in range(ncent + (hi - lo)):
+            if m < ncent:
+                j = cl[m]
+                x = dx[m]
+            else:
+                j = idx[lo + m - ncent]
+                if fl[j] & F_CENTERED:
+                    continue
+                x = val[lo + m - ncent]
+            d = eta * g * _xstd(sl, fl, j, x) / ws
             sl[R_V, j] += d
             sl[R_U, j] -= a_sum * d
         sc[S_B] += eta * g
@@ -289,6 +343,7 @@ def _learn_one(prm, sc, sl, fl, cl, idx, val, lo, hi, y, w):  # type: ignore[no-
             sc[S_A] = 0.0
             sc[S_WS] = 1.0
             sc[S_RENORMS] += 1.0
+    _clear(sl, fl, idx, lo, hi, dx)
     if averaging:
         sc[S_SB] += sc[S_B]
         sc[S_NAVG] += 1.0
@@ -296,16 +351,19 @@ def _learn_one(prm, sc, sl, fl, cl, idx, val, lo, hi, y, w):  # type: ignore[no-
 
 
 @njit(cache=True)
-def learn_block(prm, sc, sl, fl, cl, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
+def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
     """Run a block in order. `out[e]` gets the published logit of SCORE and TRAIN events (scored
     with the state before the event is learned: progressive validation) and NaN for LEARN ones."""
+    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     for e in range(ptr.shape[0] - 1):
         lo = ptr[e]
         hi = ptr[e + 1]
         if op[e] != OP_LEARN:
             averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
-            out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, averaged)
+            _gather(sl, fl, idx, val, lo, hi, dx)
+            out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+            _clear(sl, fl, idx, lo, hi, dx)
         else:
             out[e] = np.nan
         if op[e] != OP_SCORE:
-            _learn_one(prm, sc, sl, fl, cl, idx, val, lo, hi, y[e], w[e])
+            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx)

@@ -39,6 +39,7 @@ def settings_record(s: LearnerSettings) -> np.ndarray:
     prm[K.P_AVG_START] = s.average_start
     prm[K.P_SCALING] = 1.0 if s.scaling == "standardize" else 0.0
     prm[K.P_WARMUP] = s.scale_warmup
+    prm[K.P_MAX_CENTRED] = s.max_centred if s.scaling == "standardize" else 0
     return prm
 
 
@@ -65,7 +66,8 @@ class Learner:
         self._sc[K.S_WS] = 1.0
         self._sl = np.zeros((K.N_ROWS, 0))
         self._fl = np.zeros(0, dtype=np.uint8)
-        self._cl = np.zeros(0, dtype=np.int64)
+        self._cl = np.zeros(self._settings.max_centred, dtype=np.int64)
+        self._wq = np.zeros(0, dtype=np.int64)
         self._grow(INITIAL_SLOTS)
 
     # -- read-only views -------------------------------------------------------------------------
@@ -110,9 +112,12 @@ class Learner:
         sl[:, :cap] = self._sl
         sl[K.R_SCALE, cap:] = 1.0
         sl[K.R_LAST, cap:] = self._sc[K.S_T]
+        sl[K.R_DPOS, cap:] = -1.0
         fl = np.zeros(new_cap, dtype=np.uint8)
         fl[:cap] = self._fl
-        self._sl, self._fl = sl, fl
+        wq = np.zeros(new_cap, dtype=np.int64)
+        wq[:cap] = self._wq
+        self._sl, self._fl, self._wq = sl, fl, wq
 
     def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None
                ) -> tuple[list[int], list[float]]:
@@ -130,10 +135,8 @@ class Learner:
     # -- the kernel ------------------------------------------------------------------------------
     def run(self, block: Block) -> np.ndarray:
         """Score and learn a block in order (kernel.learn_block); returns the published logits."""
-        if self._sc[K.S_STARTED] == 0.0 and len(block.idx) > self._cl.shape[0]:
-            self._cl = np.zeros(len(block.idx), dtype=np.int64)
         out = np.empty(len(block))
-        K.learn_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx,
+        K.learn_block(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, block.ptr, block.idx,
                       block.val, block.op, block.y, block.w, out)
         return out
 
@@ -206,6 +209,7 @@ class Learner:
             "slots": self._sl[:, :n].copy(),
             "flags": self._fl[:n].copy(),
             "centred_list": self._cl.copy(),
+            "warmup_queue": self._wq[: int(self._sc[K.S_QLEN])].copy(),
         }
 
     @classmethod
@@ -220,4 +224,6 @@ class Learner:
         lr._sl[:, :n] = d["slots"]
         lr._fl[:n] = d["flags"]
         lr._cl = np.array(d["centred_list"], dtype=np.int64)
+        queue = np.asarray(d["warmup_queue"], dtype=np.int64)
+        lr._wq[: queue.shape[0]] = queue
         return lr

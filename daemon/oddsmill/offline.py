@@ -20,12 +20,13 @@ from .engine import Engine
 from .errors import InputFileError, ProtocolError
 from .learner import Learner
 from .logs import read_bodies
+from .progressive import ProgressiveMetrics
 from .protocol import Item, decode_body
 from .reference import FitResult, newton_fit
 from .settings import LearnerSettings
 
 BLOCK_ITEMS = 4096
-CACHE_ITEMS = 5_000_000  # decoded messages kept between epochs
+CACHE_ENTRIES = 50_000_000  # encoded features kept between epochs (16 bytes each)
 NEVER = 2**62  # an average_start no run reaches
 # Rejections that belong to the stream (an outcome whose request expired, a resent message), not
 # to a malformed file; a replay counts them instead of stopping.
@@ -102,26 +103,49 @@ class Progress:
 
 def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) -> ReplayReport:
     """Learn from `paths` `epochs` times. With `tail_average`, averaging starts at the first epoch
-    of the second half (the learner must have been built with average_start = NEVER)."""
+    of the second half (the learner must have been built with average_start = NEVER).
+
+    The first pass goes through the engine: scores, joins, counters and progressive metrics, exactly
+    as the daemon would have seen the stream. Later passes learn the same events in the same order
+    again; their scores would be in-sample, so they do not enter the progressive metrics. They rerun
+    the first pass's encoded blocks through the kernel when these fit in memory."""
     t0 = time.monotonic()
-    items = 0
-    # Later epochs reuse the decoded messages of the first when they fit in memory.
-    cache: list[tuple[float, Item]] | None = [] if epochs > 1 else None
-    for epoch in range(1, epochs + 1):
+    lr = engine.learner
+    blocks: list[Block] | None = []
+    kept = 0
+    plain_run = lr.run
+
+    def recording_run(block: Block) -> np.ndarray:
+        nonlocal blocks, kept
+        if blocks is not None:
+            kept += int(block.idx.shape[0]) + len(block)
+            blocks = None if kept > CACHE_ENTRIES else blocks + [block]
+        return plain_run(block)
+
+    lr.run = recording_run  # type: ignore[method-assign]
+    bar = Progress(engine, f"epoch 1/{epochs}")
+    try:
+        first = run_logs(engine, read_items(paths), bar)
+    finally:
+        lr.run = plain_run  # type: ignore[method-assign]
+    bar.done()
+    items = first
+    if tail_average:
+        lr.set_average_start(lr.step * (epochs // 2))
+    for epoch in range(2, epochs + 1):
         bar = Progress(engine, f"epoch {epoch}/{epochs}")
-        if epoch == 1 or cache is None:
-            source: Iterable[tuple[float, Item]] = read_items(paths)
-            if cache is not None:
-                source = _caching(source, cache)
+        if blocks is not None:
+            for block in blocks:
+                plain_run(block)
         else:
-            source = cache
-        items += run_logs(engine, source, bar)
-        if cache is not None and len(cache) > CACHE_ITEMS:
-            cache = None
+            # too large to keep: decode again, with the metrics and counters of the first pass kept
+            saved = engine.state_dict()
+            run_logs(engine, read_items(paths), bar)
+            engine.metrics = ProgressiveMetrics.from_state_dict(saved["metrics"])
+            engine.counters = Engine.from_state_dict({**saved, "learner": lr.state_dict()}).counters
+        items += first
+        bar(0)
         bar.done()
-        if epoch == 1 and tail_average:
-            per_epoch = engine.learner.step
-            engine.learner.set_average_start(per_epoch * (epochs // 2))
     return ReplayReport(epochs, items, time.monotonic() - t0)
 
 
@@ -132,14 +156,6 @@ def new_engine(settings: LearnerSettings, epochs: int, average_start_given: bool
     if tail:
         settings = replace(settings, average_start=NEVER)
     return Engine(Learner(settings), **kw), tail
-
-
-def _caching(source: Iterable[tuple[float, Item]], cache: list[tuple[float, Item]]
-             ) -> Iterator[tuple[float, Item]]:
-    for pair in source:
-        if len(cache) <= CACHE_ITEMS:
-            cache.append(pair)
-        yield pair
 
 
 @dataclass

@@ -1,7 +1,7 @@
 """The learner's settings: immutable, validated once, at construction.
 
 Defaults were chosen from measurements (DEVELOPERS.md, "Choosing the defaults"): the power schedule
-with c = 0.75 and a = 0.1 in standardised units, eta0 = 0.5, Polyak-Ruppert averaging, L2 = 1e-4,
+with c = 0.75 and a = 0.03 in standardised units, eta0 = 0.5, Polyak-Ruppert averaging, L2 = 1e-4,
 and numeric features standardised over their first 1,000 learned values.
 
 >>> LearnerSettings().schedule
@@ -32,20 +32,22 @@ class LearnerSettings:
     - `schedule`, `eta0`: the learning-rate schedule (PROTOCOL 5) and its initial rate.
     - `l2`: lambda, the L2 penalty on the coefficients in standardised units; the intercept is free.
     - `decay` (a) and `power` (c): the power schedule's eta0 (1 + a eta0 t)^(-c); `decay=None`
-      means a = l2 as in PROTOCOL 5. Our default is a = 0.1, because the default l2 is far below the
+      means a = l2 as in PROTOCOL 5. Our default is a = 0.03, because the default l2 is far below the
       smallest eigenvalue of the Hessian, which is where Xu (2011) puts a.
     - `adagrad_delta`: AdaGrad's delta in eta0 / (delta + sqrt(sum of squared gradients)).
     - `average`, `average_start`: Polyak-Ruppert averaging of the iterates from that step on.
     - `scaling`: "standardize" divides each numeric feature by its standard deviation over its first
-      `scale_warmup` learned values (then frozen) and centres it while it has been present in every
-      learned event; "none" learns on the raw values.
+      `scale_warmup` learned values (then frozen) and lets the optimiser centre frequent features;
+      "none" learns on the raw values exactly as PROTOCOL 5 writes the update.
     - `max_features`: the vocabulary cap; names first seen after it is full are ignored and counted.
+    - `max_centred`: how many frequent features the optimiser may centre (each costs a little on
+      every step; see oddsmill.kernel).
     """
 
     schedule: str = "power"
     eta0: float = 0.5
     l2: float = 1e-4
-    decay: float | None = 0.1
+    decay: float | None = 0.03
     power: float = 0.75
     adagrad_delta: float = 1.0
     average: bool = True
@@ -53,6 +55,7 @@ class LearnerSettings:
     scaling: str = "standardize"
     scale_warmup: int = 1000
     max_features: int = 1_000_000
+    max_centred: int = 64
 
     def __post_init__(self) -> None:
         if self.schedule not in SCHEDULES:
@@ -67,13 +70,14 @@ class LearnerSettings:
         if self.power > 1.0:
             raise ConfigError(f"power must be in (0, 1], got {self.power!r}")
         _positive("adagrad_delta", self.adagrad_delta)
-        for name in ("average_start", "scale_warmup", "max_features"):
+        for name in ("average_start", "scale_warmup", "max_features", "max_centred"):
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, int):
                 raise ConfigError(f"{name} must be an integer, got {value!r}")
         _at_least("average_start", self.average_start, 0)
         _at_least("scale_warmup", self.scale_warmup, 1)
         _at_least("max_features", self.max_features, 1)
+        _at_least("max_centred", self.max_centred, 0)
         if not isinstance(self.average, bool):
             raise ConfigError(f"average must be true or false, got {self.average!r}")
         # The L2 step multiplies the coefficients by (1 - eta lambda); at or past 1 it flips their sign.

@@ -1,0 +1,105 @@
+"""Checkpoints and the journal: exact round trips, damage detected, no pickle."""
+
+from __future__ import annotations
+
+import logging
+import pickle
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from oddsmill.engine import Engine
+from oddsmill.errors import CheckpointError
+from oddsmill.learner import Learner
+from oddsmill.protocol import decode_body
+from oddsmill.settings import LearnerSettings
+from oddsmill.storage import (
+    JournalWriter,
+    decode_checkpoint,
+    encode_checkpoint,
+    load_newest,
+    read_journal,
+    write_checkpoint,
+)
+from tests.conftest import sparse_stream
+
+
+def _items(events, start):  # type: ignore[no-untyped-def]
+    out = []
+    for i, (x, y) in enumerate(events):
+        ident = f"P{start + i}"
+        out.extend((float(start + i), it) for it in decode_body({"id": ident, "x": x}))
+        if i >= 3:  # outcomes arrive a few events later
+            out.extend((float(start + i), it) for it in decode_body({"id": f"P{start + i - 3}", "y": events[i - 3][1]}))
+    return out
+
+
+@pytest.mark.parametrize("schedule", ["constant", "inverse-time", "power", "adagrad"])
+def test_save_load_continue_equals_an_uninterrupted_run(tmp_path: Path, schedule: str) -> None:
+    events = sparse_stream(1200, seed=11)
+    first, second = _items(events[:600], 0), _items(events[600:], 600)
+    s = LearnerSettings(schedule=schedule, average_start=200, scale_warmup=300)
+    straight = Engine(Learner(s), window=100)
+    for chunk in (first, second):
+        straight.process(chunk)
+    resumed = Engine(Learner(s), window=100)
+    resumed.process(first)
+    write_checkpoint(tmp_path, resumed.learner.step, {"engine": resumed.state_dict()})
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    again = Engine.from_state_dict(state["engine"])
+    again.process(second)
+    a, b = straight.state_dict(), again.state_dict()
+    assert a["learner"]["scalars"].tobytes() == b["learner"]["scalars"].tobytes()
+    assert a["learner"]["slots"].tobytes() == b["learner"]["slots"].tobytes()
+    assert a["metrics"]["sum"] == b["metrics"]["sum"]
+    assert a["pending"] == b["pending"]
+
+
+def test_flipped_byte_and_truncation_are_detected_and_fall_back(tmp_path: Path, caplog) -> None:  # type: ignore[no-untyped-def]
+    eng = Engine(Learner())
+    eng.process(_items(sparse_stream(50, seed=1), 0))
+    older = write_checkpoint(tmp_path, 1, {"engine": eng.state_dict(), "mark": "older"})
+    newer = write_checkpoint(tmp_path, 2, {"engine": eng.state_dict(), "mark": "newer"})
+    data = bytearray(newer.read_bytes())
+    data[len(data) // 2] ^= 0x40
+    newer.write_bytes(bytes(data))
+    with pytest.raises(CheckpointError, match="checksum"):
+        decode_checkpoint(bytes(data))
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        state, path = load_newest(tmp_path)  # type: ignore[misc]
+    assert path == older and state["mark"] == "older"
+    assert "damaged" in caplog.text
+    with pytest.raises(CheckpointError, match="truncated"):
+        decode_checkpoint(older.read_bytes()[:-10])
+
+
+def test_a_pickle_is_refused(tmp_path: Path) -> None:
+    bad = tmp_path / "checkpoint-000000000001.omc"
+    bad.write_bytes(pickle.dumps({"engine": "x"}))
+    with pytest.raises(CheckpointError, match="not an oddsmill checkpoint"):
+        load_newest(tmp_path)
+
+
+def test_only_known_array_types_are_parsed() -> None:
+    with pytest.raises(TypeError):
+        encode_checkpoint({"a": np.array(["text"])})
+
+
+def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # type: ignore[no-untyped-def]
+    import msgpack
+
+    seg = tmp_path / "journal-000000000000.omj"
+    bodies = [{"id": i, "x": {"route_km": float(i)}} for i in range(5)]
+    with JournalWriter(seg) as j:
+        for i, body in enumerate(bodies):
+            j.append(100.0 + i, msgpack.packb(body))
+        j.sync()
+    got = list(read_journal(seg))
+    assert [b for _, _, b in got] == bodies
+    assert [t for _, t, _ in got] == [100.0, 101.0, 102.0, 103.0, 104.0]
+    seg.write_bytes(seg.read_bytes()[:-3])  # a torn last record
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        torn = list(read_journal(seg))
+    assert [b for _, _, b in torn] == bodies[:4]
+    assert "torn record" in caplog.text
