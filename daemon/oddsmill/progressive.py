@@ -112,16 +112,18 @@ class ProgressiveMetrics:
         }
 
     def state_dict(self) -> dict[str, Any]:
-        order = (self._head - self._filled + np.arange(self._filled)) % self.window
-        return {"window": self.window, "sum": self.sum, "count": self.count,
-                "z": self._z[order].copy(), "y": self._y[order].copy()}
+        """The ring buffer as it lies (not reordered), so that a restored window sums its values in
+        the same order and gives bit-identical figures."""
+        return {"window": self.window, "sum": self.sum, "count": self.count, "head": self._head,
+                "filled": self._filled, "z": self._z[: self._filled].copy(),
+                "y": self._y[: self._filled].copy()}
 
     @classmethod
     def from_state_dict(cls, d: dict[str, Any]) -> ProgressiveMetrics:
         m = cls(int(d["window"]))
-        z, y = np.asarray(d["z"], dtype=np.float64), np.asarray(d["y"], dtype=np.float64)
-        n = z.shape[0]
-        m._z[:n], m._y[:n] = z, y
-        m._filled, m._head = n, n % m.window
+        n = int(d["filled"])
+        m._z[:n] = np.asarray(d["z"], dtype=np.float64)
+        m._y[:n] = np.asarray(d["y"], dtype=np.float64)
+        m._filled, m._head = n, int(d["head"])
         m.sum, m.count = float(d["sum"]), int(d["count"])
         return m

@@ -25,6 +25,10 @@ from .errors import ProtocolError
 EVENT_KEYS = frozenset({"id", "x", "y", "w", "ts", "src", "seq"})
 COLUMN_KEYS = frozenset({"cols", "rows", "y", "id", "src", "seq", "ts"})
 NO_LABEL = 255  # the uint8 that means "no label" in a columnar block's y bin
+# explicit msgpack limits: no string, bytes, array or map in a body may be larger
+MAX_STR = 1 << 16
+MAX_BIN = 1 << 28
+MAX_ITEMS = 1 << 20
 
 
 @dataclass(frozen=True)
@@ -82,7 +86,9 @@ def decode_body(body: object) -> list[Item]:
 def unpack(raw: bytes) -> object:
     """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack."""
     try:
-        return msgpack.unpackb(raw, raw=False, strict_map_key=False, max_buffer_size=len(raw) + 1)
+        return msgpack.unpackb(raw, raw=False, strict_map_key=False, max_str_len=MAX_STR,
+                               max_bin_len=MAX_BIN, max_array_len=MAX_ITEMS, max_map_len=MAX_ITEMS,
+                               max_ext_len=0)
     except Exception as e:  # msgpack raises several types for bad bytes
         raise ProtocolError("undecodable", f"the body is not valid msgpack ({e})") from None
 

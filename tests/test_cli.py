@@ -1,0 +1,131 @@
+"""The command line: JSON shapes of PROTOCOL 7, exit codes, messages naming file and line."""
+
+from __future__ import annotations
+
+import io
+import json
+from contextlib import redirect_stdout
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from oddsmill.cli import main
+from tests.conftest import DEMO
+
+
+def run(argv: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
+    code = main(argv)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_replay_then_inspect_json_has_the_protocol_shape(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    code, out, _ = run(["replay", str(DEMO), "--state", str(tmp_path / "s")], capsys)
+    assert code == 0 and "checkpoint" in out
+    code, out, _ = run(["inspect", str(tmp_path / "s"), "--json", "--top", "3"], capsys)
+    assert code == 0
+    doc = json.loads(out)
+    assert doc["step"] == 28_000
+    assert set(doc) >= {"step", "learner", "intercept", "coefficients", "metrics"}
+    assert set(doc["intercept"]) == {"coef"}
+    assert len(doc["coefficients"]) == 3
+    for row in doc["coefficients"]:
+        assert set(row) == {"feature", "coef", "odds_ratio"}
+        assert row["odds_ratio"] == pytest.approx(np.exp(row["coef"]))
+    assert doc["learner"]["schedule"] == "power"
+    assert doc["metrics"]["log_loss_count"] == 28_000
+    code, out, _ = run(["inspect", str(tmp_path / "s")], capsys)
+    assert code == 0 and "odds ratio" in out
+
+
+def test_fit_json_shape_and_against(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    run(["replay", str(DEMO), "--state", str(tmp_path / "s"), "--epochs", "3"], capsys)
+    code, out, _ = run(["fit", str(DEMO), "--json", "--against", str(tmp_path / "s")], capsys)
+    assert code == 0
+    doc = json.loads(out)
+    assert doc["n"] == 28_000 and doc["converged"] is True and doc["iterations"] > 1
+    assert set(doc["intercept"]) == {"coef", "se", "z", "p_value", "ci95"}
+    for row in doc["coefficients"]:
+        assert set(row) == {"feature", "coef", "se", "z", "p_value", "ci95", "odds_ratio"}
+        lo, hi = row["ci95"]
+        assert lo < row["coef"] < hi
+    assert 0 < doc["against"]["relative_coef_error"] < 1
+    assert doc["against"]["log_loss"] >= doc["log_loss"] - 1e-12  # nothing beats the optimum
+    code, out, _ = run(["fit", str(DEMO)], capsys)
+    assert code == 0 and "std err" in out and "95% interval" in out
+
+
+def test_bad_input_names_file_and_line_and_exits_2(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    log = tmp_path / "bad.jsonl"
+    log.write_text('{"x": {"route_km": 1.5}, "y": 1}\n{"x": {"route_km": 2}, "y": 3}\n')
+    code, _, err = run(["replay", str(log), "--state", str(tmp_path / "s")], capsys)
+    assert code == 2
+    assert f"{log}:2" in err and "bad_label" in err
+    assert not (tmp_path / "s").exists()  # nothing written
+    log.write_text('{"x": {"route_km": 1.5}, "y": 1}\n{not json\n')
+    code, _, err = run(["fit", str(log)], capsys)
+    assert code == 2 and f"{log}:2" in err and "not JSON" in err
+
+
+@pytest.mark.parametrize(
+    "argv,needle",
+    [
+        (["replay", "nowhere.jsonl", "--state", "x"], "no such file"),
+        (["replay", "x.jsonl", "--state", "s", "--l2", "-1"], "l2 must be >= 0, got -1"),
+        (["replay", "x.jsonl", "--state", "s", "--epochs", "0"], "--epochs must be >= 1"),
+        (["inspect", "no-such-state"], "no such file or directory"),
+        (["fit"], "the following arguments are required"),
+        (["frobnicate"], "invalid choice"),
+    ],
+)
+def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys) -> None:  # type: ignore[no-untyped-def]
+    code, _, err = run(argv, capsys)
+    assert code == 2
+    assert needle in err
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_config_file_and_flags(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    cfg = tmp_path / "oddsmill.toml"
+    cfg.write_text('[learner]\nschedule = "adagrad"\neta0 = 0.2\nwindow = 500\n')
+    code, _, _ = run(["replay", str(DEMO), "--state", str(tmp_path / "s"), "--config", str(cfg), "--eta0", "0.3"], capsys)
+    assert code == 0
+    doc = json.loads(run(["inspect", str(tmp_path / "s"), "--json"], capsys)[1])
+    assert doc["learner"]["schedule"] == "adagrad" and doc["learner"]["eta0"] == 0.3
+    cfg.write_text('[learner]\nshedule = "adagrad"\n')
+    code, _, err = run(["fit", str(DEMO), "--config", str(cfg)], capsys)
+    assert code == 2 and "unknown setting learner.shedule" in err
+
+
+def test_aliased_fit_is_refused_with_the_names(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    log = tmp_path / "aliased.jsonl"
+    rng = np.random.default_rng(0)
+    with open(log, "w") as f:
+        for _ in range(300):
+            f.write(json.dumps({"x": {"service": str(rng.choice(["standard", "express"])),
+                                      "route_km": float(rng.gamma(3, 10))}, "y": int(rng.random() < 0.3)}) + "\n")
+    code, _, err = run(["fit", str(log), "--l2", "0"], capsys)
+    assert code == 2 and "aliased" in err and "service=" in err
+    code, _, _ = run(["fit", str(log), "--l2", "1e-6"], capsys)
+    assert code == 0
+
+
+def test_demo_summary_agrees_with_the_fit(capsys) -> None:  # type: ignore[no-untyped-def]
+    import argparse
+
+    from oddsmill.demo import run_demo
+    from oddsmill.offline import fit_logs
+    from oddsmill.settings import LearnerSettings
+
+    buf = io.StringIO()
+    with redirect_stdout(buf):
+        assert run_demo(argparse.Namespace(data=None), out=buf) == 0
+    text = buf.getvalue()
+    res, _ = fit_logs([str(DEMO)], LearnerSettings())
+    assert f"log-loss {res.log_loss:.4f}" in text
+    assert "a week of snow" in text
+    snow = [line for line in text.splitlines() if "a week of snow" in line][0]
+    others = [float(line.split()[-1]) for line in text.splitlines()
+              if line[:4].strip().isdigit() and "snow" not in line and "after" not in line][1:]
+    assert float(snow.split()[3]) > max(others)  # the drift shows in the scores

@@ -1,0 +1,40 @@
+"""Progressive metrics against scikit-learn's log_loss and brier_score_loss."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from oddsmill.progressive import ProgressiveMetrics, sigmoid
+
+
+def test_metrics_match_scikit_learn_and_survive_a_round_trip() -> None:
+    # Source: scikit-learn's sklearn.metrics.log_loss and brier_score_loss.
+    from sklearn.metrics import brier_score_loss, log_loss
+
+    rng = np.random.default_rng(4)
+    z = rng.normal(0, 2, 2500)
+    y = (rng.random(2500) < sigmoid(z)).astype(float)
+    m = ProgressiveMetrics(window=1000)
+    for lo in range(0, 2500, 333):
+        m.update(z[lo: lo + 333], y[lo: lo + 333])
+    assert m.log_loss == pytest.approx(log_loss(y, sigmoid(z)), rel=1e-12)
+    assert m.log_loss_window == pytest.approx(log_loss(y[-1000:], sigmoid(z[-1000:])), rel=1e-12)
+    assert m.brier_window == pytest.approx(brier_score_loss(y[-1000:], sigmoid(z[-1000:])), rel=1e-12)
+    back = ProgressiveMetrics.from_state_dict(m.state_dict())
+    assert back.log_loss_window == m.log_loss_window and back.count == m.count
+    back.update(z[:10], y[:10])
+    m.update(z[:10], y[:10])
+    assert back.log_loss_window == m.log_loss_window
+
+
+def test_calibration_error_is_zero_for_exact_probabilities_in_the_limit() -> None:
+    rng = np.random.default_rng(5)
+    z = rng.normal(0, 1.5, 200_000)
+    y = (rng.random(z.size) < sigmoid(z)).astype(float)
+    m = ProgressiveMetrics(window=200_000)
+    m.update(z, y)
+    assert m.calibration_error_window < 0.01
+    m2 = ProgressiveMetrics(window=200_000)
+    m2.update(z + 1.0, y)  # scores shifted: miscalibrated
+    assert m2.calibration_error_window > 0.1
