@@ -3,7 +3,8 @@
 Dense dictionaries, the L2 step applied to every coefficient at every step, averages as a running
 sum of every iterate. It follows PROTOCOL 5 and the coordinates described in oddsmill.kernel
 (warm-up statistics with predictions preserved; frequent features centred at the end of their
-warm-up window and then updated at every step) without any of the kernel's tricks (scale factor, lazy catch-up, u + A v sums).
+warm-up window and then updated at every step) without any of the kernel's tricks (scale factor,
+lazy catch-up, u + A v sums).
 """
 
 from __future__ import annotations
@@ -16,11 +17,34 @@ def sigmoid(z: float) -> float:
 
 
 class Oracle:
-    def __init__(self, schedule: str, eta0: float, l2: float, a: float = 0.0, c: float = 0.75,
-                 delta: float = 1.0, average: bool = False, average_start: int = 0,
-                 scaling: bool = False, warmup: int = 1000, max_centred: int = 64) -> None:
-        self.schedule, self.eta0, self.l2, self.a, self.c, self.delta = schedule, eta0, l2, a, c, delta
-        self.average, self.average_start, self.scaling, self.warmup = average, average_start, scaling, warmup
+    def __init__(
+        self,
+        schedule: str,
+        eta0: float,
+        l2: float,
+        a: float = 0.0,
+        c: float = 0.75,
+        delta: float = 1.0,
+        average: bool = False,
+        average_start: int = 0,
+        scaling: bool = False,
+        warmup: int = 1000,
+        max_centred: int = 64,
+    ) -> None:
+        self.schedule, self.eta0, self.l2, self.a, self.c, self.delta = (
+            schedule,
+            eta0,
+            l2,
+            a,
+            c,
+            delta,
+        )
+        self.average, self.average_start, self.scaling, self.warmup = (
+            average,
+            average_start,
+            scaling,
+            warmup,
+        )
         self.max_centred = max_centred if scaling else 0
         self.theta: dict[str, float] = {}
         self.b = 0.0
@@ -83,8 +107,10 @@ class Oracle:
                     continue
                 self.decided.add(k)
                 if self.count[k] >= 0.01 * self.warmup and len(self.centre) < self.max_centred:
-                    self.centre[k] = 0.0
-            for k in self.centre:  # centres follow the running mean, absent counted as 0
+                    c = self.total[k] / (self.t - self.first[k])  # the window's mean
+                    self._reparam(k, c, self.scale[k])
+                    self.centre[k] = c
+            for k in self.centre if self.t % 1024 == 0 else ():  # centres follow the running mean
                 c = self.total[k] / (self.t - self.first[k])
                 self._reparam(k, c, self.scale[k])
                 self.centre[k] = c

@@ -9,8 +9,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from oddsmill.cli import main
+
 from tests.conftest import DEMO
 
 
@@ -89,7 +89,19 @@ def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys)
 def test_config_file_and_flags(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     cfg = tmp_path / "oddsmill.toml"
     cfg.write_text('[learner]\nschedule = "adagrad"\neta0 = 0.2\nwindow = 500\n')
-    code, _, _ = run(["replay", str(DEMO), "--state", str(tmp_path / "s"), "--config", str(cfg), "--eta0", "0.3"], capsys)
+    code, _, _ = run(
+        [
+            "replay",
+            str(DEMO),
+            "--state",
+            str(tmp_path / "s"),
+            "--config",
+            str(cfg),
+            "--eta0",
+            "0.3",
+        ],
+        capsys,
+    )
     assert code == 0
     doc = json.loads(run(["inspect", str(tmp_path / "s"), "--json"], capsys)[1])
     assert doc["learner"]["schedule"] == "adagrad" and doc["learner"]["eta0"] == 0.3
@@ -103,8 +115,18 @@ def test_aliased_fit_is_refused_with_the_names(tmp_path: Path, capsys) -> None: 
     rng = np.random.default_rng(0)
     with open(log, "w") as f:
         for _ in range(300):
-            f.write(json.dumps({"x": {"service": str(rng.choice(["standard", "express"])),
-                                      "route_km": float(rng.gamma(3, 10))}, "y": int(rng.random() < 0.3)}) + "\n")
+            f.write(
+                json.dumps(
+                    {
+                        "x": {
+                            "service": str(rng.choice(["standard", "express"])),
+                            "route_km": float(rng.gamma(3, 10)),
+                        },
+                        "y": int(rng.random() < 0.3),
+                    }
+                )
+                + "\n"
+            )
     code, _, err = run(["fit", str(log), "--l2", "0"], capsys)
     assert code == 2 and "aliased" in err and "service=" in err
     code, _, _ = run(["fit", str(log), "--l2", "1e-6"], capsys)
@@ -126,6 +148,9 @@ def test_demo_summary_agrees_with_the_fit(capsys) -> None:  # type: ignore[no-un
     assert f"log-loss {res.log_loss:.4f}" in text
     assert "a week of snow" in text
     snow = [line for line in text.splitlines() if "a week of snow" in line][0]
-    others = [float(line.split()[-1]) for line in text.splitlines()
-              if line[:4].strip().isdigit() and "snow" not in line and "after" not in line][1:]
+    others = [
+        float(line.split()[-1])
+        for line in text.splitlines()
+        if line[:4].strip().isdigit() and "snow" not in line and "after" not in line
+    ][1:]
     assert float(snow.split()[3]) > max(others)  # the drift shows in the scores

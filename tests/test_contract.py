@@ -5,9 +5,9 @@ from __future__ import annotations
 import random
 
 import pytest
-
 from oddsmill.learner import Learner
 from oddsmill.settings import LearnerSettings
+
 from tests.conftest import sparse_stream
 
 SETTINGS = [

@@ -12,9 +12,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from oddsmill.offline import fit_logs, new_engine, replay
 from oddsmill.settings import LearnerSettings
+
 from tests.conftest import DEMO, phishing
 
 
@@ -55,21 +55,34 @@ CASES = [
 
 
 @pytest.mark.parametrize(
-    "data,settings,epochs", CASES,
-    ids=["phishing-defaults", "phishing-l2-0", "demo-defaults", "demo-l2-0", "phishing-constant",
-         "phishing-inverse-time", "phishing-adagrad"],
+    "data,settings,epochs",
+    CASES,
+    ids=[
+        "phishing-defaults",
+        "phishing-l2-0",
+        "demo-defaults",
+        "demo-l2-0",
+        "phishing-constant",
+        "phishing-inverse-time",
+        "phishing-adagrad",
+    ],
 )
-def test_replay_reaches_the_newton_optimum(data: str, settings: LearnerSettings, epochs: int,
-                                           phishing_log: str) -> None:
+def test_replay_reaches_the_newton_optimum(
+    data: str, settings: LearnerSettings, epochs: int, phishing_log: str
+) -> None:
     log = phishing_log if data == "phishing" else str(DEMO)
     err, excess = distance_to_optimum(log, settings, epochs)
-    print(f"\n{data} {settings.schedule} l2={settings.l2:g} eta0={settings.eta0:g} epochs={epochs}: "
-          f"relative coefficient error {err:.2e}, log-loss above the optimum {excess:.2e}")
+    print(
+        f"\n{data} {settings.schedule} l2={settings.l2:g} eta0={settings.eta0:g} epochs={epochs}: "
+        f"relative coefficient error {err:.2e}, log-loss above the optimum {excess:.2e}"
+    )
     assert err < 1e-3
     assert abs(excess) < 1e-5
 
 
-def test_a_feature_scaled_by_ten_thousand_gives_the_same_converged_predictions(tmp_path: Path) -> None:
+def test_a_feature_scaled_by_ten_thousand_gives_the_same_converged_predictions(
+    tmp_path: Path,
+) -> None:
     """Standardisation makes the learner indifferent to units: grams or tonnes, the same model."""
     events = phishing()
     logs = []

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from oddsmill.demo_data import generate, to_jsonl_gz
+
 from tests.conftest import DEMO
 
 

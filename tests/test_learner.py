@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from oddsmill import kernel as K
 from oddsmill.encoding import BlockBuilder
 from oddsmill.learner import Learner
 from oddsmill.schedules import rate
 from oddsmill.settings import LearnerSettings
+
 from tests.conftest import sparse_stream
 from tests.oracle import Oracle
 
@@ -43,8 +43,19 @@ SETTINGS = [
 
 
 def _oracle_for(s: LearnerSettings) -> Oracle:
-    return Oracle(s.schedule, s.eta0, s.l2, s.decay_a, s.power, s.adagrad_delta, s.average,
-                  s.average_start, s.scaling == "standardize", s.scale_warmup, s.max_centred)
+    return Oracle(
+        s.schedule,
+        s.eta0,
+        s.l2,
+        s.decay_a,
+        s.power,
+        s.adagrad_delta,
+        s.average,
+        s.average_start,
+        s.scaling == "standardize",
+        s.scale_warmup,
+        s.max_centred,
+    )
 
 
 def _numeric(x: dict) -> dict:  # type: ignore[type-arg]
@@ -85,7 +96,7 @@ def test_blocks_of_any_size_are_bit_identical(kw: dict) -> None:  # type: ignore
         lr = Learner(LearnerSettings(**kw, average_start=100))
         for lo in range(0, len(events), size):
             b = BlockBuilder()
-            for x, y in events[lo: lo + size]:
+            for x, y in events[lo : lo + size]:
                 slots, values = lr.encode(x)
                 b.add(slots, values, K.OP_TRAIN, float(y), 1.0)
             lr.run(b.build())
@@ -119,7 +130,7 @@ def test_renormalisation_of_the_weight_scale_keeps_the_model() -> None:
         ("inverse-time", 0, 0.5),
         ("inverse-time", 400, 0.5 / 3.0),
         ("power", 0, 0.5),
-        ("power", 300, 0.5 * 16.0 ** -0.75),
+        ("power", 300, 0.5 * 16.0**-0.75),
     ],
 )
 def test_schedule_table(schedule: str, t: int, expected: float) -> None:

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from oddsmill.progressive import ProgressiveMetrics, sigmoid
 
 
@@ -17,7 +16,7 @@ def test_metrics_match_scikit_learn_and_survive_a_round_trip() -> None:
     y = (rng.random(2500) < sigmoid(z)).astype(float)
     m = ProgressiveMetrics(window=1000)
     for lo in range(0, 2500, 333):
-        m.update(z[lo: lo + 333], y[lo: lo + 333])
+        m.update(z[lo : lo + 333], y[lo : lo + 333])
     assert m.log_loss == pytest.approx(log_loss(y, sigmoid(z)), rel=1e-12)
     assert m.log_loss_window == pytest.approx(log_loss(y[-1000:], sigmoid(z[-1000:])), rel=1e-12)
     assert m.brier_window == pytest.approx(brier_score_loss(y[-1000:], sigmoid(z[-1000:])), rel=1e-12)

@@ -5,7 +5,6 @@ from __future__ import annotations
 import msgpack
 import numpy as np
 import pytest
-
 from oddsmill.errors import ProtocolError
 from oddsmill.protocol import Columns, Event, decode_body, unpack
 
@@ -50,8 +49,14 @@ def test_a_batch_is_its_bodies_one_by_one() -> None:
 
 def test_columnar_block() -> None:
     rows = np.array([[1.0, 2.0], [3.0, 4.0], [5.0, 6.0]])
-    (block,) = decode_body({"cols": ["a", "b"], "rows": rows.astype("<f8").tobytes(),
-                            "y": bytes([1, 255, 0]), "id": ["x", "y", "z"]})
+    (block,) = decode_body(
+        {
+            "cols": ["a", "b"],
+            "rows": rows.astype("<f8").tobytes(),
+            "y": bytes([1, 255, 0]),
+            "id": ["x", "y", "z"],
+        }
+    )
     assert isinstance(block, Columns)
     np.testing.assert_array_equal(block.rows, rows)
     assert np.isnan(block.y[1]) and block.y[0] == 1.0 and block.y[2] == 0.0

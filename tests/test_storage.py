@@ -8,7 +8,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from oddsmill.engine import Engine
 from oddsmill.errors import CheckpointError
 from oddsmill.learner import Learner
@@ -22,12 +21,13 @@ from oddsmill.storage import (
     read_journal,
     write_checkpoint,
 )
+
 from tests.conftest import sparse_stream
 
 
 def _items(events, start):  # type: ignore[no-untyped-def]
     out = []
-    for i, (x, y) in enumerate(events):
+    for i, (x, _) in enumerate(events):
         ident = f"P{start + i}"
         out.extend((float(start + i), it) for it in decode_body({"id": ident, "x": x}))
         if i >= 3:  # outcomes arrive a few events later

@@ -23,9 +23,17 @@ from .reference import Z95, AliasedError
 log = logging.getLogger("oddsmill")
 
 LEARNER_FLAGS = {  # flag -> (setting, type)
-    "schedule": str, "eta0": float, "l2": float, "decay": float, "power": float,
-    "adagrad_delta": float, "average_start": int, "scaling": str, "scale_warmup": int,
-    "max_features": int, "max_centred": int,
+    "schedule": str,
+    "eta0": float,
+    "l2": float,
+    "decay": float,
+    "power": float,
+    "adagrad_delta": float,
+    "average_start": int,
+    "scaling": str,
+    "scale_warmup": int,
+    "max_features": int,
+    "max_centred": int,
 }
 
 
@@ -47,8 +55,13 @@ def _learner_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--decay", type=float, help="the power schedule's a (default 0.03)")
     g.add_argument("--power", type=float, help="the power schedule's c (default 0.75)")
     g.add_argument("--adagrad-delta", dest="adagrad_delta", type=float)
-    g.add_argument("--average", dest="average", action="store_true", default=None,
-                   help="Polyak-Ruppert averaging (default on)")
+    g.add_argument(
+        "--average",
+        dest="average",
+        action="store_true",
+        default=None,
+        help="Polyak-Ruppert averaging (default on)",
+    )
     g.add_argument("--no-average", dest="average", action="store_false")
     g.add_argument("--average-start", dest="average_start", type=int)
     g.add_argument("--scaling", choices=["standardize", "none"])
@@ -76,8 +89,7 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
         known = {f.name for f in fields(LearnerSettings)} | {"window"}
         for key, value in table.items():
             if key not in known:
-                raise ConfigError(f"{args.config}: unknown setting learner.{key}; "
-                                  f"known: {', '.join(sorted(known))}")
+                raise ConfigError(f"{args.config}: unknown setting learner.{key}; known: {', '.join(sorted(known))}")
             if key == "window":
                 window = value
             else:
@@ -107,9 +119,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
     path = write_checkpoint(state, engine.learner.step, checkpoint_state(engine))
     m = engine.metrics
     rej = sum(engine.counters.rejected.values())
-    print(f"learned {engine.learner.step:,} events from {report.events:,} messages in "
-          f"{report.epochs} epoch(s), {report.seconds:.1f} s "
-          f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s)")
+    print(
+        f"learned {engine.learner.step:,} events from {report.events:,} messages in "
+        f"{report.epochs} epoch(s), {report.seconds:.1f} s "
+        f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s)"
+    )
     print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
@@ -120,8 +134,12 @@ def cmd_replay(args: argparse.Namespace) -> int:
 def checkpoint_state(engine: Any) -> dict[str, Any]:
     import time
 
-    return {"kind": "oddsmill-state", "created": time.time(), "engine": engine.state_dict(),
-            "journal": None}
+    return {
+        "kind": "oddsmill-state",
+        "created": time.time(),
+        "engine": engine.state_dict(),
+        "journal": None,
+    }
 
 
 def load_engine(target: str) -> Any:
@@ -163,32 +181,40 @@ def cmd_fit(args: argparse.Namespace) -> int:
         z = c.intercept + design.X @ mine
         ll = float(np.sum(design.w * log_loss_from_logit(z, design.y)) / res.n)
         out["against"] = {
-            "state": args.against, "step": engine.learner.step,
+            "state": args.against,
+            "step": engine.learner.step,
             "relative_coef_error": float(diff / ref) if ref > 0 else float(diff),
             "intercept_error": float(c.intercept - res.coef[0]),
-            "log_loss": ll, "log_loss_excess": ll - res.log_loss,
+            "log_loss": ll,
+            "log_loss_excess": ll - res.log_loss,
             "missing_features": sorted(set(res.names) - set(theirs)),
         }
     if args.json:
         print(json.dumps(out, indent=2, allow_nan=True))
         return 0
-    print(f"Newton fit: n = {res.n:,}, {res.iterations} iterations, "
-          f"{'converged' if res.converged else 'NOT converged'}, mean log-loss {res.log_loss:.6f}, "
-          f"L2 = {settings.l2:g}")
+    print(
+        f"Newton fit: n = {res.n:,}, {res.iterations} iterations, "
+        f"{'converged' if res.converged else 'NOT converged'}, mean log-loss {res.log_loss:.6f}, "
+        f"L2 = {settings.l2:g}"
+    )
     head = f"{'feature':<28}{'coef':>11}{'std err':>10}{'z':>8}{'p-value':>10}  {'95% interval':<23}{'odds ratio':>11}"
     print(head)
     print("-" * len(head))
     rows = [("(intercept)", out["intercept"], None)] + [(r["feature"], r, r["odds_ratio"]) for r in out["coefficients"]]
     for name, r, odds in rows:
         lo, hi = r["ci95"]
-        print(f"{name[:27]:<28}{r['coef']:>11.4f}{r['se']:>10.4f}{r['z']:>8.2f}{_pval(r['p_value']):>10}  "
-              f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>11.4g}':>11}")
+        print(
+            f"{name[:27]:<28}{r['coef']:>11.4f}{r['se']:>10.4f}{r['z']:>8.2f}{_pval(r['p_value']):>10}  "
+            f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>11.4g}':>11}"
+        )
     print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
     if args.against:
         a = out["against"]
-        print(f"\nagainst {a['state']} (step {a['step']:,}): relative coefficient error "
-              f"{a['relative_coef_error']:.2e} (standardised units), mean log-loss {a['log_loss']:.6f} "
-              f"({a['log_loss_excess']:+.2e} from the optimum)")
+        print(
+            f"\nagainst {a['state']} (step {a['step']:,}): relative coefficient error "
+            f"{a['relative_coef_error']:.2e} (standardised units), mean log-loss {a['log_loss']:.6f} "
+            f"({a['log_loss_excess']:+.2e} from the optimum)"
+        )
     return 0
 
 
@@ -203,19 +229,33 @@ def inspect_json(engine: Any) -> dict[str, Any]:
     order = np.argsort(-np.abs(c.coefs * lr.scales()[1]), kind="stable")
     metrics = {k: v for k, v in engine.metrics.summary().items()}
     cnt = engine.counters
-    metrics.update({
-        "events_train": cnt.train, "events_score": cnt.score, "events_outcome": cnt.outcome,
-        "events_lost": cnt.lost, "events_rejected": dict(cnt.rejected),
-        "pending_outcomes": len(engine.pending), "pending_expired": cnt.pending_expired,
-        "pending_evicted": cnt.pending_evicted, "features_ignored": lr.vocab.ignored,
-        "learning_rate": lr.learning_rate(),
-    })
+    metrics.update(
+        {
+            "events_train": cnt.train,
+            "events_score": cnt.score,
+            "events_outcome": cnt.outcome,
+            "events_lost": cnt.lost,
+            "events_rejected": dict(cnt.rejected),
+            "pending_outcomes": len(engine.pending),
+            "pending_expired": cnt.pending_expired,
+            "pending_evicted": cnt.pending_evicted,
+            "features_ignored": lr.vocab.ignored,
+            "learning_rate": lr.learning_rate(),
+            "calibration_bins": engine.metrics.calibration_bins(),
+        }
+    )
     return {
         "step": lr.step,
         "learner": lr.settings.to_dict(),
         "intercept": {"coef": c.intercept},
-        "coefficients": [{"feature": c.names[j], "coef": float(c.coefs[j]),
-                          "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0))} for j in order],
+        "coefficients": [
+            {
+                "feature": c.names[j],
+                "coef": float(c.coefs[j]),
+                "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0)),
+            }
+            for j in order
+        ],
         "metrics": metrics,
     }
 
@@ -231,15 +271,31 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         print(json.dumps(doc, indent=2))
         return 0
     s, m = doc["learner"], doc["metrics"]
-    print(f"step {doc['step']:,}   features {engine.learner.n_features:,}   "
-          f"learning rate {m['learning_rate']:.3g}   averaging {'on' if s['average'] else 'off'}")
+    print(
+        f"step {doc['step']:,}   features {engine.learner.n_features:,}   "
+        f"learning rate {m['learning_rate']:.3g}   averaging {'on' if s['average'] else 'off'}"
+    )
     print("settings: " + ", ".join(f"{k}={v}" for k, v in s.items()))
-    print(f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
-          f"window: log-loss {m['log_loss_window']:.5f}, Brier {m['brier_window']:.5f}, "
-          f"calibration error {m['calibration_error_window']:.4f}")
-    print(f"events: train {m['events_train']:,}, scored {m['events_score']:,}, outcomes {m['events_outcome']:,}, "
-          f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
-          f"pending outcomes {m['pending_outcomes']:,}")
+    print(
+        f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
+        f"window: log-loss {m['log_loss_window']:.5f}, Brier {m['brier_window']:.5f}, "
+        f"calibration error {m['calibration_error_window']:.4f}"
+    )
+    bins = [b for b in m["calibration_bins"] if b["count"]]
+    if bins:
+        print(
+            "reliability (window): "
+            + "  ".join(
+                f"{b['low']:.1f}-{b['high']:.1f}: predicted {b['mean_predicted']:.2f} observed "
+                f"{b['observed_rate']:.2f} (n={b['count']})"
+                for b in bins
+            )
+        )
+    print(
+        f"events: train {m['events_train']:,}, scored {m['events_score']:,}, outcomes {m['events_outcome']:,}, "
+        f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
+        f"pending outcomes {m['pending_outcomes']:,}"
+    )
     print(f"\n{'feature':<32}{'coef (raw units)':>18}{'odds ratio':>12}")
     print(f"{'(intercept)':<32}{doc['intercept']['coef']:>18.5g}")
     for r in doc["coefficients"]:

@@ -40,8 +40,11 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
     log = Path(args.data) if args.data else demo_log(work)
     settings = LearnerSettings()
     engine = Engine(Learner(settings))
-    print(f"oddsmill demo: a parcel courier scores each dispatch for the chance it misses its "
-          f"delivery window;\nthe outcome arrives hours later. Log: {log}", file=out)
+    print(
+        f"oddsmill demo: a parcel courier scores each dispatch for the chance it misses its "
+        f"delivery window;\nthe outcome arrives hours later. Log: {log}",
+        file=out,
+    )
     bar = Progress(engine, "streaming")
     t0 = time.monotonic()
     weeks: dict[int, list[float]] = {}  # week -> [log-loss sum, count, sum of y]
@@ -72,25 +75,45 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
     bar.done()
     seconds = time.monotonic() - t0
     state = work / "state"
-    ckpt = write_checkpoint(state, engine.learner.step, {"kind": "oddsmill-state", "created": time.time(),
-                                                          "engine": engine.state_dict(), "journal": None})
+    ckpt = write_checkpoint(
+        state,
+        engine.learner.step,
+        {
+            "kind": "oddsmill-state",
+            "created": time.time(),
+            "engine": engine.state_dict(),
+            "journal": None,
+        },
+    )
     res, _ = fit_logs([str(log)], settings)
     m = engine.metrics
-    print(f"\nlearned {engine.learner.step:,} parcels ({engine.counters.score:,} dispatches scored) "
-          f"in {seconds:.1f} s", file=out)
+    print(
+        f"\nlearned {engine.learner.step:,} parcels ({engine.counters.score:,} dispatches scored) in {seconds:.1f} s",
+        file=out,
+    )
     print("\nweek  parcels delivered  late share  log-loss of the scores", file=out)
     snow_week = SNOW_DAYS[0] // 7 + 1
     for week, (s, n, late) in sorted(weeks.items()):
         if n:
-            mark = "  <- a week of snow: late deliveries jump, the scores lag" if week == snow_week else (
-                "  (outcomes after the last dispatch day)" if week > max(weeks) - 1 and n < 1000 else "")
+            mark = (
+                "  <- a week of snow: late deliveries jump, the scores lag"
+                if week == snow_week
+                else ("  (outcomes after the last dispatch day)" if week > max(weeks) - 1 and n < 1000 else "")
+            )
             print(f"{week:>4}  {int(n):>17,}  {late / n:>10.1%}  {s / n:>10.4f}{mark}", file=out)
-    print(f"\nprogressive log-loss (every parcel scored before its outcome was learned): {m.log_loss:.4f}",
-          file=out)
-    print(f"last {min(m.count, m.window):,} parcels: log-loss {m.log_loss_window:.4f}, "
-          f"Brier {m.brier_window:.4f}, calibration error {m.calibration_error_window:.4f}", file=out)
-    print(f"batch optimum on the same parcels (Newton fit, in-sample): log-loss {res.log_loss:.4f}",
-          file=out)
+    print(
+        f"\nprogressive log-loss (every parcel scored before its outcome was learned): {m.log_loss:.4f}",
+        file=out,
+    )
+    print(
+        f"last {min(m.count, m.window):,} parcels: log-loss {m.log_loss_window:.4f}, "
+        f"Brier {m.brier_window:.4f}, calibration error {m.calibration_error_window:.4f}",
+        file=out,
+    )
+    print(
+        f"batch optimum on the same parcels (Newton fit, in-sample): log-loss {res.log_loss:.4f}",
+        file=out,
+    )
     c = engine.learner.coefficients()
     _, scale = engine.learner.scales()
     order = sorted(range(len(c.names)), key=lambda j: -abs(c.coefs[j] * scale[j]))[:6]

@@ -87,7 +87,7 @@ def generate() -> list[dict[str, object]]:
                     continue
                 if isinstance(v, str):
                     z += TRUE.get(f"{k}={v}", 0.0)
-                else:
+                elif isinstance(v, int | float):
                     z += TRUE.get(k, 0.0) * float(v)
             late = int(rng.random() < 1.0 / (1.0 + math.exp(-z)))
             ident = f"P{n:06d}"

@@ -60,8 +60,13 @@ class Counters:
 class Engine:
     """Learner + pending outcomes + sequence checks + progressive metrics."""
 
-    def __init__(self, learner: Learner, window: int = 10_000, pending_limit: int = 1_000_000,
-                 pending_ttl: float = 7 * 24 * 3600.0) -> None:
+    def __init__(
+        self,
+        learner: Learner,
+        window: int = 10_000,
+        pending_limit: int = 1_000_000,
+        pending_ttl: float = 7 * 24 * 3600.0,
+    ) -> None:
         self.learner = learner
         self.metrics = ProgressiveMetrics(window)
         self.pending: OrderedDict[Any, PendingEntry] = OrderedDict()
@@ -85,8 +90,13 @@ class Engine:
                 results.append(self._reject(item.event_id, item.reason, item.detail))
                 continue
             if not self._sequence_ok(item):
-                results.append(self._reject(getattr(item, "id", None), "duplicate",
-                                            f"seq {item.seq} from {item.src!r} was seen already"))
+                results.append(
+                    self._reject(
+                        getattr(item, "id", None),
+                        "duplicate",
+                        f"seq {item.seq} from {item.src!r} was seen already",
+                    )
+                )
                 continue
             for ev in _events(item):
                 clock = ev.ts if ev.ts is not None else arrival
@@ -94,8 +104,13 @@ class Engine:
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
                     if held is None:
-                        results.append(self._reject(ev.id, "unknown_outcome",
-                                                    f"no scoring request with id {ev.id!r} is held"))
+                        results.append(
+                            self._reject(
+                                ev.id,
+                                "unknown_outcome",
+                                f"no scoring request with id {ev.id!r} is held",
+                            )
+                        )
                         continue
                     assert ev.y is not None
                     b.add(held.slots, held.values, K.OP_LEARN, float(ev.y), held.w)
@@ -187,23 +202,40 @@ class Engine:
             "pending": [[k, e.slots, e.values, e.w, e.logit, e.clock] for k, e in self.pending.items()],
             "pending_limit": self.pending_limit,
             "pending_ttl": self.pending_ttl,
-            "counters": {"train": c.train, "score": c.score, "outcome": c.outcome, "lost": c.lost,
-                         "rejected": dict(c.rejected), "pending_expired": c.pending_expired,
-                         "pending_evicted": c.pending_evicted},
+            "counters": {
+                "train": c.train,
+                "score": c.score,
+                "outcome": c.outcome,
+                "lost": c.lost,
+                "rejected": dict(c.rejected),
+                "pending_expired": c.pending_expired,
+                "pending_evicted": c.pending_evicted,
+            },
             "last_seq": dict(self.last_seq),
         }
 
     @classmethod
     def from_state_dict(cls, d: dict[str, Any]) -> Engine:
         m = ProgressiveMetrics.from_state_dict(d["metrics"])
-        eng = cls(Learner.from_state_dict(d["learner"]), m.window, int(d["pending_limit"]),
-                  float(d["pending_ttl"]))
+        eng = cls(
+            Learner.from_state_dict(d["learner"]),
+            m.window,
+            int(d["pending_limit"]),
+            float(d["pending_ttl"]),
+        )
         eng.metrics = m
         for k, slots, values, w, logit, clock in d["pending"]:
             eng.pending[k] = PendingEntry(list(slots), list(values), w, logit, clock)
         c = d["counters"]
-        eng.counters = Counters(c["train"], c["score"], c["outcome"], c["lost"], dict(c["rejected"]),
-                                c["pending_expired"], c["pending_evicted"])
+        eng.counters = Counters(
+            c["train"],
+            c["score"],
+            c["outcome"],
+            c["lost"],
+            dict(c["rejected"]),
+            c["pending_expired"],
+            c["pending_evicted"],
+        )
         eng.last_seq = dict(d["last_seq"])
         return eng
 
@@ -216,6 +248,13 @@ def _events(item: Event | Columns) -> list[Event]:
     for r in range(item.rows.shape[0]):
         y = item.y[r]
         ident = item.ids[r] if item.ids is not None else None
-        out.append(Event(ident, dict(zip(item.cols, item.rows[r].tolist(), strict=True)),
-                         None if np.isnan(y) else int(y), 1.0, item.ts))
+        out.append(
+            Event(
+                ident,
+                dict(zip(item.cols, item.rows[r].tolist(), strict=True)),
+                None if np.isnan(y) else int(y),
+                1.0,
+                item.ts,
+            )
+        )
     return out

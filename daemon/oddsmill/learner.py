@@ -93,6 +93,7 @@ class Learner:
         if self._sc[K.S_NAVG] > 0 or step < self.step:
             raise ValueError(f"averaging cannot start at {step}: it has begun or the step is past")
         from dataclasses import replace
+
         self._settings = replace(self._settings, average_start=step)
         self._prm = settings_record(self._settings)
 
@@ -119,8 +120,7 @@ class Learner:
         wq[:cap] = self._wq
         self._sl, self._fl, self._wq = sl, fl, wq
 
-    def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None
-               ) -> tuple[list[int], list[float]]:
+    def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None) -> tuple[list[int], list[float]]:
         """Slots and raw values of an event's features; new names get slots when `grow`."""
         before = len(self.vocab)
         slots, values, numeric = encode_features(x, self.vocab, grow, event_id)
@@ -136,15 +136,27 @@ class Learner:
     def run(self, block: Block) -> np.ndarray:
         """Score and learn a block in order (kernel.learn_block); returns the published logits."""
         out = np.empty(len(block))
-        K.learn_block(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, block.ptr, block.idx,
-                      block.val, block.op, block.y, block.w, out)
+        K.learn_block(
+            self._prm,
+            self._sc,
+            self._sl,
+            self._fl,
+            self._cl,
+            self._wq,
+            block.ptr,
+            block.idx,
+            block.val,
+            block.op,
+            block.y,
+            block.w,
+            out,
+        )
         return out
 
     def score(self, block: Block) -> np.ndarray:
         """Logits of a block's events with the current state; changes nothing."""
         out = np.empty(len(block))
-        K.score_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx,
-                      block.val, out)
+        K.score_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx, block.val, out)
         return out
 
     # -- conveniences for one event ------------------------------------------------------------
@@ -174,8 +186,7 @@ class Learner:
         n = len(self.vocab)
         sl, sc = self._sl[:, :n], self._sc
         if self._settings.schedule == "adagrad":
-            theta = np.array([K._ada_lag(self._prm, sc, self._sl, j)[1 if avg else 0]
-                              for j in range(n)])
+            theta = np.array([K._ada_lag(self._prm, sc, self._sl, j)[1 if avg else 0] for j in range(n)])
             if avg:
                 theta = theta / sc[K.S_NAVG]
         elif avg:

@@ -41,7 +41,7 @@ def _jsonl(path: Path) -> Iterator[tuple[float, Any, str]]:
     opener = gzip.open if path.name.endswith(".gz") else open
     now = time.time()
     try:
-        with opener(path, "rt", encoding="utf-8") as f:  # type: ignore[operator]
+        with opener(path, "rt", encoding="utf-8") as f:
             for lineno, line in enumerate(f, 1):
                 if not line.strip():
                     continue

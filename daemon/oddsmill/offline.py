@@ -47,13 +47,19 @@ def read_items(paths: list[str]) -> Iterator[tuple[float, Item]]:
         for item in decode_body(body):
             if isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
                 path, _, line = where.rpartition(":")
-                raise InputFileError(path or where, int(line) if line.isdigit() else None,
-                                     f"{item.reason}: {item.detail}")
+                raise InputFileError(
+                    path or where,
+                    int(line) if line.isdigit() else None,
+                    f"{item.reason}: {item.detail}",
+                )
             yield arrival, item
 
 
-def run_logs(engine: Engine, items: Iterable[tuple[float, Item]],
-             progress: Callable[[int], None] | None = None) -> int:
+def run_logs(
+    engine: Engine,
+    items: Iterable[tuple[float, Item]],
+    progress: Callable[[int], None] | None = None,
+) -> int:
     """Feed items through `engine` in blocks; returns their number."""
     batch: list[tuple[float, Any]] = []
     count = 0
@@ -92,8 +98,10 @@ class Progress:
             return
         self.last = now
         rate = self.engine.learner.step / max(now - self.start, 1e-9)
-        self.stream.write(f"\r{self.label}  {self.engine.learner.step:,} learned  {rate:,.0f} events/s"
-                          f"  log-loss {self.engine.metrics.log_loss:.4f}   ")
+        self.stream.write(
+            f"\r{self.label}  {self.engine.learner.step:,} learned  {rate:,.0f} events/s"
+            f"  log-loss {self.engine.metrics.log_loss:.4f}   "
+        )
         self.stream.flush()
 
     def done(self) -> None:
@@ -149,8 +157,7 @@ def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) ->
     return ReplayReport(epochs, items, time.monotonic() - t0)
 
 
-def new_engine(settings: LearnerSettings, epochs: int, average_start_given: bool, **kw: Any
-               ) -> tuple[Engine, bool]:
+def new_engine(settings: LearnerSettings, epochs: int, average_start_given: bool, **kw: Any) -> tuple[Engine, bool]:
     """An engine for a replay; tail averaging when epochs > 1 and average_start was not given."""
     tail = settings.average and epochs > 1 and not average_start_given
     if tail:

@@ -20,11 +20,13 @@ CALIBRATION_BINS = 10
 
 def log_loss_from_logit(z: np.ndarray, y: np.ndarray) -> np.ndarray:
     """-[y log p + (1 - y) log(1 - p)] with p = sigmoid(z), computed stably from z."""
-    return np.logaddexp(0.0, z) - y * z
+    out: np.ndarray = np.logaddexp(0.0, z) - y * z
+    return out
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
-    return np.exp(-np.logaddexp(0.0, -z))
+    out: np.ndarray = np.exp(-np.logaddexp(0.0, -z))
+    return out
 
 
 class ProgressiveMetrics:
@@ -47,7 +49,7 @@ class ProgressiveMetrics:
         self.sum += float(np.sum(log_loss_from_logit(z, y)))
         self.count += int(z.shape[0])
         if z.shape[0] >= self.window:
-            z, y = z[-self.window:], y[-self.window:]
+            z, y = z[-self.window :], y[-self.window :]
         n = z.shape[0]
         pos = (self._head + np.arange(n)) % self.window
         self._z[pos] = z
@@ -82,13 +84,15 @@ class ProgressiveMetrics:
         for k in range(CALIBRATION_BINS):
             sel = b == k
             n = int(sel.sum())
-            out.append({
-                "low": k / CALIBRATION_BINS,
-                "high": (k + 1) / CALIBRATION_BINS,
-                "count": n,
-                "mean_predicted": float(p[sel].mean()) if n else float("nan"),
-                "observed_rate": float(y[sel].mean()) if n else float("nan"),
-            })
+            out.append(
+                {
+                    "low": k / CALIBRATION_BINS,
+                    "high": (k + 1) / CALIBRATION_BINS,
+                    "count": n,
+                    "mean_predicted": float(p[sel].mean()) if n else float("nan"),
+                    "observed_rate": float(y[sel].mean()) if n else float("nan"),
+                }
+            )
         return out
 
     @property
@@ -97,10 +101,13 @@ class ProgressiveMetrics:
         total = self._filled
         if not total:
             return float("nan")
-        return float(sum(
-            b["count"] / total * abs(b["observed_rate"] - b["mean_predicted"])
-            for b in self.calibration_bins() if b["count"]
-        ))
+        return float(
+            sum(
+                b["count"] / total * abs(b["observed_rate"] - b["mean_predicted"])
+                for b in self.calibration_bins()
+                if b["count"]
+            )
+        )
 
     def summary(self) -> dict[str, float]:
         return {
@@ -114,9 +121,15 @@ class ProgressiveMetrics:
     def state_dict(self) -> dict[str, Any]:
         """The ring buffer as it lies (not reordered), so that a restored window sums its values in
         the same order and gives bit-identical figures."""
-        return {"window": self.window, "sum": self.sum, "count": self.count, "head": self._head,
-                "filled": self._filled, "z": self._z[: self._filled].copy(),
-                "y": self._y[: self._filled].copy()}
+        return {
+            "window": self.window,
+            "sum": self.sum,
+            "count": self.count,
+            "head": self._head,
+            "filled": self._filled,
+            "z": self._z[: self._filled].copy(),
+            "y": self._y[: self._filled].copy(),
+        }
 
     @classmethod
     def from_state_dict(cls, d: dict[str, Any]) -> ProgressiveMetrics:

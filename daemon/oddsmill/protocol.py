@@ -86,9 +86,16 @@ def decode_body(body: object) -> list[Item]:
 def unpack(raw: bytes) -> object:
     """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack."""
     try:
-        return msgpack.unpackb(raw, raw=False, strict_map_key=False, max_str_len=MAX_STR,
-                               max_bin_len=MAX_BIN, max_array_len=MAX_ITEMS, max_map_len=MAX_ITEMS,
-                               max_ext_len=0)
+        return msgpack.unpackb(
+            raw,
+            raw=False,
+            strict_map_key=False,
+            max_str_len=MAX_STR,
+            max_bin_len=MAX_BIN,
+            max_array_len=MAX_ITEMS,
+            max_map_len=MAX_ITEMS,
+            max_ext_len=0,
+        )
     except Exception as e:  # msgpack raises several types for bad bytes
         raise ProtocolError("undecodable", f"the body is not valid msgpack ({e})") from None
 
@@ -105,7 +112,9 @@ def _event(body: Mapping[str, Any]) -> Event:
     unknown = sorted(str(k) for k in body if k not in EVENT_KEYS)
     if unknown:
         raise ProtocolError(
-            "not_a_map", f"unknown key {unknown[0]!r}; an event has id, x, y, w, ts, src, seq", ident
+            "not_a_map",
+            f"unknown key {unknown[0]!r}; an event has id, x, y, w, ts, src, seq",
+            ident,
         )
     x = body.get("x")
     if x is not None and not isinstance(x, Mapping):
@@ -166,9 +175,7 @@ def _columns(body: Mapping[str, Any]) -> Columns:
     d = len(cols)
     if isinstance(rows, bytes | bytearray):
         if len(rows) % (8 * d):
-            raise ProtocolError(
-                "bad_features", f"rows holds {len(rows)} bytes, not a multiple of 8 x {d} columns"
-            )
+            raise ProtocolError("bad_features", f"rows holds {len(rows)} bytes, not a multiple of 8 x {d} columns")
         matrix = np.frombuffer(bytes(rows), dtype="<f8").reshape(-1, d).astype(np.float64)
     elif isinstance(rows, list) and all(isinstance(r, list) and len(r) == d for r in rows):
         # JSON Lines cannot carry bytes: there a block's rows are a list of lists.

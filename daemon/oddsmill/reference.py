@@ -47,7 +47,8 @@ class FitResult:
     objective: float
 
     def z(self) -> np.ndarray:
-        return self.coef / self.se
+        out: np.ndarray = self.coef / self.se
+        return out
 
     def p_values(self) -> np.ndarray:
         return np.array([math.erfc(abs(v) / math.sqrt(2.0)) for v in self.z()])
@@ -57,16 +58,27 @@ class FitResult:
 
         def row(k: int) -> dict[str, object]:
             c, s = float(self.coef[k]), float(self.se[k])
-            return {"coef": c, "se": s, "z": float(z[k]), "p_value": float(p[k]),
-                    "ci95": [c - Z95 * s, c + Z95 * s]}
+            return {
+                "coef": c,
+                "se": s,
+                "z": float(z[k]),
+                "p_value": float(p[k]),
+                "ci95": [c - Z95 * s, c + Z95 * s],
+            }
 
         coefs = []
         for k, name in enumerate(self.names, start=1):
             r = row(k)
             r = {"feature": name, **r, "odds_ratio": _odds(float(self.coef[k]))}
             coefs.append(r)
-        return {"n": self.n, "iterations": self.iterations, "converged": self.converged,
-                "log_loss": self.log_loss, "intercept": row(0), "coefficients": coefs}
+        return {
+            "n": self.n,
+            "iterations": self.iterations,
+            "converged": self.converged,
+            "log_loss": self.log_loss,
+            "intercept": row(0),
+            "coefficients": coefs,
+        }
 
 
 def _odds(c: float) -> float:
@@ -93,8 +105,16 @@ def aliased_columns(X: np.ndarray) -> list[int]:
     return bad
 
 
-def newton_fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, scale: np.ndarray, l2: float,
-               names: list[str], max_iter: int = 100, tol: float = 1e-12) -> FitResult:
+def newton_fit(
+    X: np.ndarray,
+    y: np.ndarray,
+    w: np.ndarray,
+    scale: np.ndarray,
+    l2: float,
+    names: list[str],
+    max_iter: int = 100,
+    tol: float = 1e-12,
+) -> FitResult:
     """Fit on raw features X (n x d; absent = 0) with standardising scales `scale`."""
     n, d = X.shape
     if n == 0:
@@ -113,8 +133,9 @@ def newton_fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, scale: np.ndarray, l
 
     f = objective(beta)
     converged = False
-    it = 0
-    for it in range(1, max_iter + 1):
+    iterations = 0
+    for _ in range(max_iter):
+        iterations += 1
         z = Z @ beta
         p = np.exp(-np.logaddexp(0.0, -z))
         grad = Z.T @ (w * (y - p)) / n - pen * beta
@@ -146,4 +167,4 @@ def newton_fit(X: np.ndarray, y: np.ndarray, w: np.ndarray, scale: np.ndarray, l
         se_std = np.full(d + 1, np.nan)
     unit = np.concatenate([[1.0], scale])
     mean_ll = float(np.sum(w * log_loss_from_logit(z, y)) / n)
-    return FitResult(names, beta / unit, se_std / unit, n, it, converged, mean_ll, f)
+    return FitResult(names, beta / unit, se_std / unit, n, iterations, converged, mean_ll, f)

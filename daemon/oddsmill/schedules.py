@@ -31,6 +31,6 @@ def rate(settings: LearnerSettings, t: int, grad_sq_sum: float = 0.0) -> float:
         return s.eta0 / (1.0 + s.l2 * s.eta0 * t)
     if s.schedule == "power":
         # Xu, "Towards optimal one pass large scale learning with averaged SGD", arXiv:1107.2490
-        return s.eta0 * (1.0 + s.decay_a * s.eta0 * t) ** (-s.power)
+        return float(s.eta0 * (1.0 + s.decay_a * s.eta0 * t) ** (-s.power))
     # Duchi, Hazan and Singer, JMLR 2011
-    return s.eta0 / (s.adagrad_delta + grad_sq_sum**0.5)
+    return float(s.eta0 / (s.adagrad_delta + grad_sq_sum**0.5))

@@ -70,20 +70,20 @@ def _ext_hook(code: int, data: bytes) -> Any:
 
 
 def encode_checkpoint(state: dict[str, Any]) -> bytes:
-    payload = msgpack.packb(state, default=_pack_default, use_bin_type=True)
+    payload: bytes = msgpack.packb(state, default=_pack_default, use_bin_type=True)
     return MAGIC + _HEADER.pack(VERSION, len(payload), hashlib.sha256(payload).digest()) + payload
 
 
 def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
     if not data.startswith(MAGIC):
         raise CheckpointError(f"{name}: not an oddsmill checkpoint (no magic string)")
-    head = data[len(MAGIC): len(MAGIC) + _HEADER.size]
+    head = data[len(MAGIC) : len(MAGIC) + _HEADER.size]
     if len(head) < _HEADER.size:
         raise CheckpointError(f"{name}: truncated header")
     version, length, digest = _HEADER.unpack(head)
     if version != VERSION:
         raise CheckpointError(f"{name}: format version {version}, this oddsmill reads {VERSION}")
-    payload = data[len(MAGIC) + _HEADER.size:]
+    payload = data[len(MAGIC) + _HEADER.size :]
     if len(payload) != length:
         raise CheckpointError(f"{name}: payload is {len(payload)} bytes, header says {length} (truncated?)")
     if hashlib.sha256(payload).digest() != digest:
@@ -157,7 +157,7 @@ def load_newest(state_dir: Path) -> tuple[dict[str, Any], Path] | None:
 # -- journal ---------------------------------------------------------------------------------------
 def journal_record(arrival: float, raw_body: bytes) -> bytes:
     """One record; the body is spliced in as received (it is valid msgpack already)."""
-    payload = b"\x92" + msgpack.packb(float(arrival)) + raw_body
+    payload: bytes = b"\x92" + msgpack.packb(float(arrival)) + raw_body
     return _RECORD.pack(len(payload), zlib.crc32(payload)) + payload
 
 
@@ -209,7 +209,7 @@ def read_journal(path: Path) -> Iterator[tuple[int, float, Any]]:
         if length > MAX_RECORD or end > len(data):
             log.warning("%s: torn record at byte %d; the tail is ignored", path, pos)
             return
-        payload = data[pos + _RECORD.size: end]
+        payload = data[pos + _RECORD.size : end]
         if zlib.crc32(payload) != crc:
             log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
             return

@@ -1,0 +1,113 @@
+"""Benchmark of the update kernel: ratios measured side by side in one run (absolute times drift on
+shared machines, ratios much less).
+
+1. learn speed: oddsmill's compiled kernel (score, then learn, 20-feature events in blocks) against
+   river's LogisticRegression predict_proba_one + learn_one on the same events, and oddsmill's
+   own one-event-at-a-time Python path for reference;
+2. flatness: time per event as the vocabulary grows from 1e3 to 1e6 slots, 20 features present.
+
+    python scripts/bench_kernel.py [--events N] [--json]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+
+import numpy as np
+from oddsmill import kernel as K
+from oddsmill.encoding import BlockBuilder
+from oddsmill.learner import Learner
+from oddsmill.settings import LearnerSettings
+
+FEATURES = 20
+
+
+def events(n: int, vocab: int, seed: int) -> list[dict[str, float]]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        names = rng.choice(vocab, FEATURES, replace=False) if vocab > FEATURES else np.arange(FEATURES)
+        vals = rng.normal(size=FEATURES)
+        out.append({f"f{int(j)}": float(v) for j, v in zip(names, vals, strict=True)})
+    return out
+
+
+def labels(xs: list[dict[str, float]], seed: int) -> list[int]:
+    rng = np.random.default_rng(seed)
+    return [int(rng.random() < 1 / (1 + np.exp(-0.3 * sum(x.values())))) for x in xs]
+
+
+def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: int = 1000) -> float:
+    blocks = []
+    for lo in range(0, len(xs), block):
+        b = BlockBuilder()
+        for x, y in zip(xs[lo : lo + block], ys[lo : lo + block], strict=True):
+            slots, values = lr.encode(x)
+            b.add(slots, values, K.OP_TRAIN, float(y), 1.0)
+        blocks.append(b.build())
+    lr.run(blocks[0])  # compile / warm
+    t0 = time.perf_counter()
+    for b in blocks[1:]:
+        lr.run(b)
+    return (len(blocks) - 1) * block / (time.perf_counter() - t0)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--events", type=int, default=20_000)
+    ap.add_argument("--json", action="store_true")
+    args = ap.parse_args()
+    from river import linear_model, optim
+
+    settings = LearnerSettings(schedule="constant", eta0=0.01, average=False, scaling="none")
+    xs = events(args.events, FEATURES, 1)
+    ys = labels(xs, 2)
+    ours = kernel_rate(Learner(settings), xs, ys)
+    river = linear_model.LogisticRegression(optimizer=optim.SGD(0.01), intercept_lr=0.01)
+    n_river = min(len(xs), 5000)
+    t0 = time.perf_counter()
+    for x, y in zip(xs[:n_river], ys[:n_river], strict=True):
+        river.predict_proba_one(x)
+        river.learn_one(x, y)
+    river_rate = n_river / (time.perf_counter() - t0)
+    one = Learner(settings)
+    t0 = time.perf_counter()
+    for x, y in zip(xs[:n_river], ys[:n_river], strict=True):
+        one.learn_one(x, y)
+    one_rate = n_river / (time.perf_counter() - t0)
+    defaults = kernel_rate(Learner(LearnerSettings()), xs, ys)
+
+    flat = {}
+    for vocab in (1_000, 10_000, 100_000, 1_000_000):
+        lr = Learner(LearnerSettings())
+        for j in range(vocab):  # the vocabulary at its full size before timing
+            lr.encode({f"f{j}": 1.0})
+        vx = events(args.events, vocab, 3)
+        flat[vocab] = 1e9 / kernel_rate(lr, vx, labels(vx, 4))  # ns per event
+    result = {
+        "kernel_events_per_s": ours,
+        "kernel_defaults_events_per_s": defaults,
+        "river_events_per_s": river_rate,
+        "python_one_at_a_time_events_per_s": one_rate,
+        "kernel_over_river": ours / river_rate,
+        "defaults_over_river": defaults / river_rate,
+        "ns_per_event_by_vocabulary": flat,
+        "flatness_1e6_over_1e3": flat[1_000_000] / flat[1_000],
+    }
+    if args.json:
+        print(json.dumps(result, indent=2))
+        return
+    print("20-feature events, score then learn, side by side:")
+    print(f"  oddsmill kernel (constant rate, raw)   {ours:>12,.0f} events/s  {ours / river_rate:6.1f}x river")
+    print(f"  oddsmill kernel (defaults)             {defaults:>12,.0f} events/s  {defaults / river_rate:6.1f}x river")
+    print(f"  oddsmill one event per call (Python)   {one_rate:>12,.0f} events/s  {one_rate / river_rate:6.1f}x river")
+    print(f"  river predict_proba_one + learn_one    {river_rate:>12,.0f} events/s")
+    print("time per event as the vocabulary grows (defaults, 20 features present):")
+    for vocab, ns in flat.items():
+        print(f"  {vocab:>9,} slots  {ns:8.0f} ns   {ns / flat[1_000]:.2f}x the 1e3 figure")
+
+
+if __name__ == "__main__":
+    main()
