@@ -172,4 +172,4 @@ def test_vocabulary_grows_to_many_slots() -> None:
     for i in range(5000):
         lr.learn_one({f"f{i}": 1.0, f"g{i % 7}": "on"}, i % 2)
     assert lr.n_features == 5007
-    assert lr.state_dict()["slots"].shape[1] == 5007
+    assert lr.state_dict()["slots"].shape[0] == 5007

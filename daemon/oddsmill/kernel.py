@@ -8,7 +8,8 @@ one; the block only amortises the call.
 The state lives in three arrays so that the kernel's signature stays short:
 - `prm`, the settings record (float64, indices P_*), built once from `LearnerSettings`;
 - `sc`, the scalar state (indices S_*): step, weight scale, intercept, averaging sums, ...;
-- `sl`, per-slot rows (R_*, one column per vocabulary slot) and `fl`, per-slot flags (F_*).
+- `sl`, per-slot values (one row per vocabulary slot, columns R_*: one slot's values share a cache
+  line or two) and `fl`, per-slot flags (F_*).
 
 Coordinates. The model is always logit = b + sum over present j of theta_j x_j / s_j: an absent
 feature contributes nothing. theta_j is in standardised units: s_j comes from the feature's first
@@ -64,7 +65,7 @@ N_PARAMS = 11
 # scalar state
 S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS = range(12)
 N_SCALARS = 12
-# per-slot rows
+# per-slot columns
 R_V, R_U, R_G, R_LAST, R_MEAN, R_M2, R_COUNT, R_SCALE, R_FIRST, R_DPOS, R_SUM = range(11)
 N_ROWS = 11
 # per-slot flags
@@ -120,13 +121,13 @@ def _geom(r: float, i0: float, k: float) -> float:
 @njit(cache=True, error_model="numpy", inline="always")
 def _ada_lag(prm: np.ndarray, sc: np.ndarray, sl: np.ndarray, j: int) -> tuple[float, float]:
     """AdaGrad: theta_j and its iterate sum caught up to the current step, without writing them."""
-    theta = sl[R_V, j]
-    usum = sl[R_U, j]
-    last = sl[R_LAST, j]
+    theta = sl[j, R_V]
+    usum = sl[j, R_U]
+    last = sl[j, R_LAST]
     k = sc[S_T] - last
     if k <= 0.0 or theta == 0.0:
         return theta, usum
-    r = 1.0 - _ada_rate(prm, sl[R_G, j]) * prm[P_L2]
+    r = 1.0 - _ada_rate(prm, sl[j, R_G]) * prm[P_L2]
     if prm[P_AVG] != 0.0:
         i0 = max(1.0, prm[P_AVG_START] - last + 1.0)
         usum += theta * _geom(r, i0, k)
@@ -137,8 +138,8 @@ def _ada_lag(prm: np.ndarray, sc: np.ndarray, sl: np.ndarray, j: int) -> tuple[f
 def _coef_global(prm, sc, sl, j, averaged):  # type: ignore[no-untyped-def]
     """theta_j in standardised units now (global schedules): ws v_j, or (u_j + A v_j) / n."""
     if averaged:
-        return (sl[R_U, j] + sc[S_A] * sl[R_V, j]) / sc[S_NAVG]
-    return sc[S_WS] * sl[R_V, j]
+        return (sl[j, R_U] + sc[S_A] * sl[j, R_V]) / sc[S_NAVG]
+    return sc[S_WS] * sl[j, R_V]
 
 
 @njit(cache=True, error_model="numpy")
@@ -162,8 +163,8 @@ def _coef(prm, sc, sl, j, averaged):  # type: ignore[no-untyped-def]
 @njit(cache=True, error_model="numpy", inline="always")
 def _xstd(sl: np.ndarray, fl: np.ndarray, j: int, x: float) -> float:
     if fl[j] & F_CENTERED:
-        return float((x - sl[R_MEAN, j]) / sl[R_SCALE, j])
-    return float(x / sl[R_SCALE, j])
+        return float((x - sl[j, R_MEAN]) / sl[j, R_SCALE])
+    return float(x / sl[j, R_SCALE])
 
 
 @njit(cache=True, error_model="numpy")
@@ -172,7 +173,7 @@ def _gather(sl, fl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
     for k in range(lo, hi):
         j = idx[k]
         if fl[j] & F_CENTERED:
-            dx[int(sl[R_DPOS, j])] = val[k]
+            dx[int(sl[j, R_DPOS])] = val[k]
 
 
 @njit(cache=True, error_model="numpy")
@@ -180,7 +181,7 @@ def _clear(sl, fl, idx, lo, hi, dx):  # type: ignore[no-untyped-def]
     for k in range(lo, hi):
         j = idx[k]
         if fl[j] & F_CENTERED:
-            dx[int(sl[R_DPOS, j])] = 0.0
+            dx[int(sl[j, R_DPOS])] = 0.0
 
 
 @njit(cache=True, error_model="numpy")
@@ -248,28 +249,27 @@ def _scale(mean: float, m2: float, n: float) -> float:
 def _reparam(prm, sc, sl, fl, j, new_center, new_scale):  # type: ignore[no-untyped-def]
     """Change feature j's centre and scale, rewriting theta_j and the intercept so that every
     prediction (of the iterate and of the average) is unchanged. AdaGrad's lag must be caught up."""
-    old_center = sl[R_MEAN, j] if fl[j] & F_CENTERED else 0.0
-    old_scale = sl[R_SCALE, j]
+    old_center = sl[j, R_MEAN] if fl[j] & F_CENTERED else 0.0
+    old_scale = sl[j, R_SCALE]
     shift = (new_center - old_center) / old_scale
     ratio = new_scale / old_scale
-    theta = _coef(prm, sc, sl, j, False)
-    if prm[P_SCHED] == SCH_ADAGRAD:
-        tsum = sl[R_U, j]
-    else:
-        tsum = sl[R_U, j] + sc[S_A] * sl[R_V, j]
-    sl[R_V, j] *= ratio
-    sl[R_U, j] *= ratio
+    # For AdaGrad ws stays 1 and A stays 0, so these read both families (branch-free: a call to
+    # AdaGrad's catch-up here slowed the warm-up loop tenfold).
+    theta = sc[S_WS] * sl[j, R_V]
+    tsum = sl[j, R_U] + sc[S_A] * sl[j, R_V]
+    sl[j, R_V] *= ratio
+    sl[j, R_U] *= ratio
     sc[S_B] += theta * shift
     sc[S_SB] += tsum * shift
-    sl[R_SCALE, j] = new_scale
+    sl[j, R_SCALE] = new_scale
 
 
 @njit(cache=True, error_model="numpy")
 def _catch_up(prm, sc, sl, j):  # type: ignore[no-untyped-def]
     theta, usum = _ada_lag(prm, sc, sl, j)
-    sl[R_V, j] = theta
-    sl[R_U, j] = usum
-    sl[R_LAST, j] = sc[S_T]
+    sl[j, R_V] = theta
+    sl[j, R_U] = usum
+    sl[j, R_LAST] = sc[S_T]
 
 
 @njit(cache=True, error_model="numpy")
@@ -280,20 +280,20 @@ def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
     window = prm[P_WARMUP]
     while sc[S_QHEAD] < sc[S_QLEN]:
         j = wq[int(sc[S_QHEAD])]
-        if sl[R_FIRST, j] + window > t:
+        if sl[j, R_FIRST] + window > t:
             break
         sc[S_QHEAD] += 1.0
-        if sl[R_COUNT, j] < CENTRE_MIN_SHARE * window or sc[S_NCENT] >= prm[P_MAX_CENTRED]:
+        if sl[j, R_COUNT] < CENTRE_MIN_SHARE * window or sc[S_NCENT] >= prm[P_MAX_CENTRED]:
             continue
         if prm[P_SCHED] == SCH_ADAGRAD:
             _catch_up(prm, sc, sl, j)
-        centre = sl[R_SUM, j] / (t - sl[R_FIRST, j])
-        _reparam(prm, sc, sl, fl, j, centre, sl[R_SCALE, j])
+        centre = sl[j, R_SUM] / (t - sl[j, R_FIRST])
+        _reparam(prm, sc, sl, fl, j, centre, sl[j, R_SCALE])
         fl[j] |= F_CENTERED
-        sl[R_MEAN, j] = centre
+        sl[j, R_MEAN] = centre
         m = int(sc[S_NCENT])
         cl[m] = j
-        sl[R_DPOS, j] = m
+        sl[j, R_DPOS] = m
         sc[S_NCENT] = m + 1.0
 
 
@@ -310,33 +310,33 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
         # brought up to date every CENTRE_PERIOD steps
         for m in range(int(sc[S_NCENT]) if t % CENTRE_PERIOD == 0 else 0):
             j = cl[m]
-            centre = sl[R_SUM, j] / (t - sl[R_FIRST, j])
-            if centre != sl[R_MEAN, j]:
+            centre = sl[j, R_SUM] / (t - sl[j, R_FIRST])
+            if centre != sl[j, R_MEAN]:
                 if ada:
                     _catch_up(prm, sc, sl, j)
-                _reparam(prm, sc, sl, fl, j, centre, sl[R_SCALE, j])
-                sl[R_MEAN, j] = centre
+                _reparam(prm, sc, sl, fl, j, centre, sl[j, R_SCALE])
+                sl[j, R_MEAN] = centre
         for k in range(lo, hi):
             j = idx[k]
             if not (fl[j] & F_SEEN):
                 fl[j] |= F_SEEN
-                sl[R_FIRST, j] = t
+                sl[j, R_FIRST] = t
                 wq[int(sc[S_QLEN])] = j
                 sc[S_QLEN] += 1.0
-            sl[R_SUM, j] += val[k]
-            if (fl[j] & F_CENTERED) or sl[R_COUNT, j] >= prm[P_WARMUP]:
+            sl[j, R_SUM] += val[k]
+            if (fl[j] & F_CENTERED) or sl[j, R_COUNT] >= prm[P_WARMUP]:
                 continue
             # Welford's running mean and variance of the feature's present values
             x = val[k]
-            cnt = sl[R_COUNT, j] + 1.0
-            delta = x - sl[R_MEAN, j]
-            mean = sl[R_MEAN, j] + delta / cnt
-            m2 = sl[R_M2, j] + delta * (x - mean)
+            cnt = sl[j, R_COUNT] + 1.0
+            delta = x - sl[j, R_MEAN]
+            mean = sl[j, R_MEAN] + delta / cnt
+            m2 = sl[j, R_M2] + delta * (x - mean)
             scale = _scale(mean, m2, cnt)
             _reparam(prm, sc, sl, fl, j, 0.0, scale)
-            sl[R_MEAN, j] = mean
-            sl[R_M2, j] = m2
-            sl[R_COUNT, j] = cnt
+            sl[j, R_MEAN] = mean
+            sl[j, R_M2] = m2
+            sl[j, R_COUNT] = cnt
     _gather(sl, fl, idx, val, lo, hi, dx)
     z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, False)
     g = w * (y - sigmoid(z))
@@ -354,12 +354,12 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
                     continue
                 x = val[lo + m - ncent]
             gj = g * _xstd(sl, fl, j, x)
-            sl[R_G, j] += gj * gj
-            eta_j = _ada_rate(prm, sl[R_G, j])
-            sl[R_V, j] += eta_j * (gj - l2 * sl[R_V, j])
+            sl[j, R_G] += gj * gj
+            eta_j = _ada_rate(prm, sl[j, R_G])
+            sl[j, R_V] += eta_j * (gj - l2 * sl[j, R_V])
             if averaging:
-                sl[R_U, j] += sl[R_V, j]
-            sl[R_LAST, j] = t + 1.0
+                sl[j, R_U] += sl[j, R_V]
+            sl[j, R_LAST] = t + 1.0
         sc[S_GB] += g * g
         sc[S_B] += _ada_rate(prm, sc[S_GB]) * g
     else:
@@ -377,16 +377,16 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
                     continue
                 x = val[lo + m - ncent]
             d = eta * g * _xstd(sl, fl, j, x) / ws
-            sl[R_V, j] += d
-            sl[R_U, j] -= a_sum * d
+            sl[j, R_V] += d
+            sl[j, R_U] -= a_sum * d
         sc[S_B] += eta * g
         if averaging:
             sc[S_A] += ws
         if ws < WS_FLOOR:
             a_sum = sc[S_A]
             for j in range(int(sc[S_NSLOTS])):
-                sl[R_U, j] += a_sum * sl[R_V, j]
-                sl[R_V, j] *= ws
+                sl[j, R_U] += a_sum * sl[j, R_V]
+                sl[j, R_V] *= ws
             sc[S_A] = 0.0
             sc[S_WS] = 1.0
             sc[S_RENORMS] += 1.0

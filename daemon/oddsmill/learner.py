@@ -64,7 +64,7 @@ class Learner:
         self.vocab = Vocabulary(self._settings.max_features)
         self._sc = np.zeros(K.N_SCALARS)
         self._sc[K.S_WS] = 1.0
-        self._sl = np.zeros((K.N_ROWS, 0))
+        self._sl = np.zeros((0, K.N_ROWS))
         self._fl = np.zeros(0, dtype=np.uint8)
         self._cl = np.zeros(self._settings.max_centred, dtype=np.int64)
         self._wq = np.zeros(0, dtype=np.int64)
@@ -105,15 +105,15 @@ class Learner:
 
     # -- encoding ----------------------------------------------------------------------------------
     def _grow(self, needed: int) -> None:
-        cap = self._sl.shape[1]
+        cap = self._sl.shape[0]
         if needed <= cap:
             return
         new_cap = max(needed, 2 * cap, INITIAL_SLOTS)
-        sl = np.zeros((K.N_ROWS, new_cap))
-        sl[:, :cap] = self._sl
-        sl[K.R_SCALE, cap:] = 1.0
-        sl[K.R_LAST, cap:] = self._sc[K.S_T]
-        sl[K.R_DPOS, cap:] = -1.0
+        sl = np.zeros((new_cap, K.N_ROWS))
+        sl[:cap] = self._sl
+        sl[cap:, K.R_SCALE] = 1.0
+        sl[cap:, K.R_LAST] = self._sc[K.S_T]
+        sl[cap:, K.R_DPOS] = -1.0
         fl = np.zeros(new_cap, dtype=np.uint8)
         fl[:cap] = self._fl
         wq = np.zeros(new_cap, dtype=np.int64)
@@ -184,15 +184,15 @@ class Learner:
         """(intercept in centred coordinates, theta in standardised units), slot order."""
         avg = self.uses_average() if averaged is None else averaged
         n = len(self.vocab)
-        sl, sc = self._sl[:, :n], self._sc
+        sl, sc = self._sl[:n], self._sc
         if self._settings.schedule == "adagrad":
             theta = np.array([K._ada_lag(self._prm, sc, self._sl, j)[1 if avg else 0] for j in range(n)])
             if avg:
                 theta = theta / sc[K.S_NAVG]
         elif avg:
-            theta = (sl[K.R_U] + sc[K.S_A] * sl[K.R_V]) / sc[K.S_NAVG]
+            theta = (sl[:, K.R_U] + sc[K.S_A] * sl[:, K.R_V]) / sc[K.S_NAVG]
         else:
-            theta = sc[K.S_WS] * sl[K.R_V]
+            theta = sc[K.S_WS] * sl[:, K.R_V]
         b = sc[K.S_SB] / sc[K.S_NAVG] if avg else sc[K.S_B]
         return float(b), theta
 
@@ -200,7 +200,7 @@ class Learner:
         """(centre, scale) of each slot: x_std = (x - centre) / scale."""
         n = len(self.vocab)
         centred = (self._fl[:n] & K.F_CENTERED) != 0
-        return np.where(centred, self._sl[K.R_MEAN, :n], 0.0), self._sl[K.R_SCALE, :n].copy()
+        return np.where(centred, self._sl[:n, K.R_MEAN], 0.0), self._sl[:n, K.R_SCALE].copy()
 
     def coefficients(self, averaged: bool | None = None) -> Coefficients:
         """The model in the units the features were sent (the averaged weights when averaging)."""
@@ -217,7 +217,7 @@ class Learner:
             "names": list(self.vocab.names),
             "ignored": self.vocab.ignored,
             "scalars": self._sc.copy(),
-            "slots": self._sl[:, :n].copy(),
+            "slots": self._sl[:n].copy(),
             "flags": self._fl[:n].copy(),
             "centred_list": self._cl.copy(),
             "warmup_queue": self._wq[: int(self._sc[K.S_QLEN])].copy(),
@@ -232,7 +232,7 @@ class Learner:
         lr._sc = np.array(d["scalars"], dtype=np.float64)
         n = len(names)
         lr._grow(n)
-        lr._sl[:, :n] = d["slots"]
+        lr._sl[:n] = d["slots"]
         lr._fl[:n] = d["flags"]
         lr._cl = np.array(d["centred_list"], dtype=np.int64)
         queue = np.asarray(d["warmup_queue"], dtype=np.int64)
