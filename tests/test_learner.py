@@ -72,15 +72,17 @@ def _numeric(x: dict) -> dict:  # type: ignore[type-arg]
 @pytest.mark.parametrize("average", [False, True])
 @pytest.mark.parametrize("kw", SETTINGS, ids=[s["schedule"] for s in SETTINGS])
 def test_lazy_updates_equal_the_dense_oracle(kw: dict, average: bool) -> None:  # type: ignore[type-arg]
-    """The scale factor / lazy catch-up L2, the u + A v averages and the centring equal a dense
-    step-by-step reference on sparse events, to 1e-12 relative."""
+    """The scale factor / lazy catch-up L2, the u + A v averages, the centring and the importance
+    weights equal a dense step-by-step reference on sparse events, to 1e-12 relative."""
     s = LearnerSettings(**kw, average=average, average_start=50, scale_warmup=200)
     lr, orc = Learner(s), _oracle_for(s)
+    weights = np.random.default_rng(7).uniform(0.2, 3.0, 1500)
     for i, (x, y) in enumerate(sparse_stream(1500, seed=3)):
         xe = _numeric(x)
-        z = lr.learn_one(x, y)
+        z = lr.learn_one(x, y, float(weights[i]))
         assert z == pytest.approx(orc.logit(xe), rel=1e-12, abs=1e-12), i
-        orc.learn(xe, y)
+        orc.learn(xe, y, float(weights[i]))
+    assert lr._sc[K.S_NCENT] > 0  # the centring was exercised
     b, coefs = orc.coefficients()
     c = lr.coefficients()
     assert c.intercept == pytest.approx(b, rel=1e-12, abs=1e-12)

@@ -67,3 +67,20 @@ def test_aliased_one_hot_group_is_named_at_l2_zero_and_fits_with_small_l2() -> N
     assert "--l2" in str(info.value)
     ok = newton_fit(X, y, np.ones(500), np.ones(4), 1e-6, names)
     assert ok.converged and np.all(np.isfinite(ok.se))
+
+
+def test_importance_weights_match_scikit_learn_sample_weight() -> None:
+    # Source: scikit-learn LogisticRegression with sample_weight: C sum_i w_i loss_i + ||w||^2 / 2,
+    # the same objective as ours (1/n) sum_i w_i l_i - lambda/2 ||theta||^2 when C = 1 / (n lambda).
+    from sklearn.datasets import load_breast_cancer
+    from sklearn.linear_model import LogisticRegression
+
+    X, y = load_breast_cancer(return_X_y=True)
+    y = y.astype(float)
+    n, scale, lam = len(y), X.std(0), 1e-2
+    w = np.random.default_rng(3).uniform(0.1, 4.0, n)
+    ours = newton_fit(X, y, w, scale, lam, [f"f{i}" for i in range(X.shape[1])])
+    sk = LogisticRegression(C=1.0 / (n * lam), solver="newton-cholesky", tol=1e-14, max_iter=1000)
+    sk.fit(X / scale, y, sample_weight=w)
+    np.testing.assert_allclose(ours.coef[1:] * scale, sk.coef_[0], rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(ours.coef[0], sk.intercept_[0], rtol=1e-6)
