@@ -297,18 +297,6 @@ def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
         sc[S_NCENT] = m + 1.0
 
 
-@njit(cache=True, error_model="numpy", inline="always")
-def _input(fl, cl, idx, val, lo, ncent, dx, m):  # type: ignore[no-untyped-def]
-    """The m-th input of a step: the centred features first (value from dx, 0 when absent), then
-    the present features that are not centred; (-1, 0) for a present centred one (already done)."""
-    if m < ncent:
-        return cl[m], dx[m]
-    j = idx[lo + m - ncent]
-    if fl[j] & F_CENTERED:
-        return -1, 0.0
-    return j, val[lo + m - ncent]
-
-
 @njit(cache=True, error_model="numpy")
 def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ignore[no-untyped-def]
     ada = prm[P_SCHED] == SCH_ADAGRAD
@@ -357,9 +345,14 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
     ncent = int(sc[S_NCENT])
     if ada:
         for m in range(ncent + (hi - lo)):
-            j, x = _input(fl, cl, idx, val, lo, ncent, dx, m)
-            if j < 0:
-                continue
+            if m < ncent:
+                j = cl[m]
+                x = dx[m]
+            else:
+                j = idx[lo + m - ncent]
+                if fl[j] & F_CENTERED:
+                    continue
+                x = val[lo + m - ncent]
             gj = g * _xstd(sl, fl, j, x)
             sl[j, R_G] += gj * gj
             eta_j = _ada_rate(prm, sl[j, R_G])
@@ -375,9 +368,14 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
         ws = sc[S_WS]
         a_sum = sc[S_A]
         for m in range(ncent + (hi - lo)):
-            j, x = _input(fl, cl, idx, val, lo, ncent, dx, m)
-            if j < 0:
-                continue
+            if m < ncent:
+                j = cl[m]
+                x = dx[m]
+            else:
+                j = idx[lo + m - ncent]
+                if fl[j] & F_CENTERED:
+                    continue
+                x = val[lo + m - ncent]
             d = eta * g * _xstd(sl, fl, j, x) / ws
             sl[j, R_V] += d
             sl[j, R_U] -= a_sum * d
