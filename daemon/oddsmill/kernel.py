@@ -343,6 +343,8 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
     l2 = prm[P_L2]
     averaging = prm[P_AVG] != 0.0 and t >= prm[P_AVG_START]
     ncent = int(sc[S_NCENT])
+    # The two update loops walk the same inputs (centred features, then the other present ones);
+    # a shared helper returning (slot, value) measured slower, so each loop picks them itself.
     if ada:
         for m in range(ncent + (hi - lo)):
             if m < ncent:
