@@ -215,6 +215,29 @@ def _logit_ada(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ig
 
 
 @njit(cache=True, error_model="numpy")
+def _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
+    """(averaged logit, current logit) in one pass (global schedules, averaging under way). The
+    current one is summed in the order of _logit_global, so it is bit-identical to it."""
+    n = sc[S_NAVG]
+    ws = sc[S_WS]
+    a_sum = sc[S_A]
+    za = sc[S_SB] / n
+    zc = sc[S_B]
+    for m in range(int(sc[S_NCENT])):
+        j = cl[m]
+        xs = _xstd(sl, fl, j, dx[m])
+        za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
+        zc += ws * sl[j, R_V] * xs
+    for k in range(lo, hi):
+        j = idx[k]
+        if not (fl[j] & F_CENTERED):
+            xs = _xstd(sl, fl, j, val[k])
+            za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
+            zc += ws * sl[j, R_V] * xs
+    return za, zc
+
+
+@njit(cache=True, error_model="numpy")
 def _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
     if prm[P_SCHED] == SCH_ADAGRAD:
         return _logit_ada(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
@@ -228,9 +251,11 @@ def score_block(prm, sc, sl, fl, cl, ptr, idx, val, out):  # type: ignore[no-unt
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     for e in range(ptr.shape[0] - 1):
         lo, hi = ptr[e], ptr[e + 1]
-        _gather(sl, fl, idx, val, lo, hi, dx)
+        if sc[S_NCENT] > 0.0:
+            _gather(sl, fl, idx, val, lo, hi, dx)
         out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
-        _clear(sl, fl, idx, lo, hi, dx)
+        if sc[S_NCENT] > 0.0:
+            _clear(sl, fl, idx, lo, hi, dx)
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -278,6 +303,7 @@ def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
     centre the frequent ones, with their mean over the window (absent counted as 0)."""
     t = sc[S_T]
     window = prm[P_WARMUP]
+    joined = False
     while sc[S_QHEAD] < sc[S_QLEN]:
         j = wq[int(sc[S_QHEAD])]
         if sl[j, R_FIRST] + window > t:
@@ -295,23 +321,29 @@ def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
         cl[m] = j
         sl[j, R_DPOS] = m
         sc[S_NCENT] = m + 1.0
+        joined = True
+    return joined
 
 
 @njit(cache=True, error_model="numpy")
-def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ignore[no-untyped-def]
+def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gathered):  # type: ignore[no-untyped-def]
+    """One step. `z_hint` is the current logit when the caller has it (NaN otherwise), with dx
+    gathered; it is used when no change of coordinates happens in this step (bit-identical then)."""
     ada = prm[P_SCHED] == SCH_ADAGRAD
     t = sc[S_T]
+    changed = False
     if ada:
         for k in range(lo, hi):
             _catch_up(prm, sc, sl, idx[k])
     if prm[P_SCALING] != 0.0:
-        _end_warmups(prm, sc, sl, fl, cl, wq)
+        changed = _end_warmups(prm, sc, sl, fl, cl, wq)
         # a centred feature's centre is its mean over every learned event since its first,
         # brought up to date every CENTRE_PERIOD steps
         for m in range(int(sc[S_NCENT]) if t % CENTRE_PERIOD == 0 else 0):
             j = cl[m]
             centre = sl[j, R_SUM] / (t - sl[j, R_FIRST])
             if centre != sl[j, R_MEAN]:
+                changed = True
                 if ada:
                     _catch_up(prm, sc, sl, j)
                 _reparam(prm, sc, sl, fl, j, centre, sl[j, R_SCALE])
@@ -333,12 +365,17 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
             mean = sl[j, R_MEAN] + delta / cnt
             m2 = sl[j, R_M2] + delta * (x - mean)
             scale = _scale(mean, m2, cnt)
+            changed = True
             _reparam(prm, sc, sl, fl, j, 0.0, scale)
             sl[j, R_MEAN] = mean
             sl[j, R_M2] = m2
             sl[j, R_COUNT] = cnt
-    _gather(sl, fl, idx, val, lo, hi, dx)
-    z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, False)
+    if changed or not gathered or z_hint != z_hint:
+        if sc[S_NCENT] > 0.0:
+            _gather(sl, fl, idx, val, lo, hi, dx)
+        z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, False)
+    else:
+        z = z_hint
     g = w * (y - sigmoid(z))
     l2 = prm[P_L2]
     averaging = prm[P_AVG] != 0.0 and t >= prm[P_AVG_START]
@@ -392,7 +429,8 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx):  # type: ig
             sc[S_A] = 0.0
             sc[S_WS] = 1.0
             sc[S_RENORMS] += 1.0
-    _clear(sl, fl, idx, lo, hi, dx)
+    if sc[S_NCENT] > 0.0:
+        _clear(sl, fl, idx, lo, hi, dx)
     if averaging:
         sc[S_SB] += sc[S_B]
         sc[S_NAVG] += 1.0
@@ -404,15 +442,25 @@ def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type:
     """Run a block in order. `out[e]` gets the published logit of SCORE and TRAIN events (scored
     with the state before the event is learned: progressive validation) and NaN for LEARN ones."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    ada = prm[P_SCHED] == SCH_ADAGRAD
     for e in range(ptr.shape[0] - 1):
         lo = ptr[e]
         hi = ptr[e + 1]
-        if op[e] != OP_LEARN:
-            averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
-            _gather(sl, fl, idx, val, lo, hi, dx)
-            out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
-            _clear(sl, fl, idx, lo, hi, dx)
-        else:
+        if op[e] == OP_LEARN:
             out[e] = np.nan
-        if op[e] != OP_SCORE:
-            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx)
+            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx, np.nan, False)
+            continue
+        averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
+        if sc[S_NCENT] > 0.0:
+            _gather(sl, fl, idx, val, lo, hi, dx)
+        z_cur = np.nan
+        if averaged and not ada and op[e] == OP_TRAIN:
+            out[e], z_cur = _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx)
+        else:
+            out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+            if not averaged:
+                z_cur = out[e]
+        if op[e] == OP_TRAIN:
+            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx, z_cur, True)
+        elif sc[S_NCENT] > 0.0:
+            _clear(sl, fl, idx, lo, hi, dx)
