@@ -151,15 +151,6 @@ def _coef_ada(prm, sc, sl, j, averaged):  # type: ignore[no-untyped-def]
     return theta
 
 
-@njit(cache=True, error_model="numpy")
-def _coef(prm, sc, sl, j, averaged):  # type: ignore[no-untyped-def]
-    """theta_j for either family; for the rare paths (the per-feature loops call the family's own
-    reader: see _logit_ada)."""
-    if prm[P_SCHED] == SCH_ADAGRAD:
-        return _coef_ada(prm, sc, sl, j, averaged)
-    return _coef_global(prm, sc, sl, j, averaged)
-
-
 @njit(cache=True, error_model="numpy", inline="always")
 def _xstd(sl: np.ndarray, fl: np.ndarray, j: int, x: float) -> float:
     if fl[j] & F_CENTERED:
