@@ -154,3 +154,23 @@ def test_demo_summary_agrees_with_the_fit(capsys) -> None:  # type: ignore[no-un
         if line[:4].strip().isdigit() and "snow" not in line and "after" not in line
     ][1:]
     assert float(snow.split()[3]) > max(others)  # the drift shows in the scores
+
+
+def test_progress_shows_on_a_terminal_only() -> None:
+    from oddsmill.engine import Engine
+    from oddsmill.learner import Learner
+    from oddsmill.offline import Progress
+
+    class Terminal(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    engine = Engine(Learner())
+    tty, pipe = Terminal(), io.StringIO()
+    for stream in (tty, pipe):
+        bar = Progress(engine, "epoch 1/1", stream)
+        bar.last = -1e9  # as if the last update were long ago
+        bar(10)
+        bar.done()
+    assert "events/s" in tty.getvalue() and "log-loss" in tty.getvalue()
+    assert pipe.getvalue() == ""

@@ -103,3 +103,13 @@ def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # ty
         torn = list(read_journal(seg))
     assert [b for _, _, b in torn] == bodies[:4]
     assert "torn record" in caplog.text
+
+
+def test_only_the_newest_checkpoints_are_kept(tmp_path: Path) -> None:
+    from oddsmill.storage import KEEP, list_checkpoints
+
+    for step in range(1, KEEP + 4):
+        write_checkpoint(tmp_path, step, {"step": step})
+    kept = list_checkpoints(tmp_path)
+    assert [int(p.name[11:23]) for p in kept] == list(range(4, KEEP + 4))
+    assert not list(tmp_path.glob(".*.tmp"))  # no temporary file left behind
