@@ -68,3 +68,29 @@ def test_unpack_rejects_bytes_that_are_not_msgpack() -> None:
     with pytest.raises(ProtocolError) as e:
         unpack(b"\xc1")
     assert e.value.reason == "undecodable"
+
+
+@pytest.mark.parametrize(
+    "x",
+    [
+        {"depot": "north", "depot=north": 1.0},  # a feature and a one-hot with one name
+        {"a": "b=c", "a=b": "c"},  # two one-hots with one name
+    ],
+)
+def test_features_that_encode_to_one_name_are_refused_and_add_nothing(x: dict) -> None:  # type: ignore[type-arg]
+    from oddsmill.encoding import Vocabulary, encode_features
+
+    vocab = Vocabulary(max_features=100)
+    with pytest.raises(ProtocolError) as e:
+        encode_features(x, vocab)
+    assert e.value.reason == "bad_features"
+    assert vocab.names == []
+
+
+def test_a_rejected_event_adds_no_name() -> None:
+    from oddsmill.encoding import Vocabulary, encode_features
+
+    vocab = Vocabulary(max_features=100)
+    with pytest.raises(ProtocolError):
+        encode_features({"route_km": 3.0, "depot": "north", "weight_kg": float("nan")}, vocab)
+    assert vocab.names == []

@@ -15,7 +15,6 @@ are not learned) and counted in `Vocabulary.ignored`, so a runaway producer cann
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -56,41 +55,65 @@ def encode_features(
     x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
 ) -> tuple[list[int], list[float], list[bool]]:
     """Slots, values and numeric flags of the features of `x` (a map of str to number, str, bool
-    or nil). Raises ProtocolError (bad_features or non_finite) and then adds no name."""
+    or nil). Raises ProtocolError (bad_features or non_finite) and then adds no name: new names get
+    their slots only once the whole event has been read. One pass, exact-type fast paths: this is
+    the per-event Python work of the daemon."""
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
-    pairs: list[tuple[str, float, bool]] = []
+    index = vocab.index
+    slots: list[int] = []
+    values: list[float] = []
+    numeric: list[bool] = []
+    new: list[tuple[int, str]] = []  # (position, name) of names not in the vocabulary yet
+    ambiguous = False  # an "=" inside a one-hot's key or value: two keys could give one name
     for key, value in x.items():
-        if not isinstance(key, str):
+        if type(key) is not str:
             raise ProtocolError("bad_features", f"feature names must be strings, got {key!r}", event_id)
-        if value is None:
-            continue
-        if isinstance(value, bool):
-            pairs.append((key, 1.0 if value else 0.0, True))
-        elif isinstance(value, int | float):
+        kind = type(value)
+        if kind is float or kind is int:
             v = float(value)
-            if not math.isfinite(v):
+            if v - v != 0.0:  # NaN or an infinity
                 raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
-            pairs.append((key, v, True))
-        elif isinstance(value, str):
-            pairs.append((f"{key}={value}", 1.0, False))
+            name, is_num = key, True
+        elif kind is str:
+            name, v, is_num = f"{key}={value}", 1.0, False
+            if name in x:
+                raise ProtocolError("bad_features", f"{name!r} is both a feature and the one-hot of {key!r}", event_id)
+            ambiguous = ambiguous or "=" in key or "=" in value
+        elif kind is bool:
+            name, v, is_num = key, (1.0 if value else 0.0), True
+        elif value is None:
+            continue
+        elif isinstance(value, int | float) and not isinstance(value, bool):  # numpy scalars and such
+            v = float(value)
+            if v - v != 0.0:
+                raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
+            name, is_num = key, True
         else:
             raise ProtocolError(
                 "bad_features",
                 f"feature {key!r} must be a number, string, bool or nil, got {type(value).__name__}",
                 event_id,
             )
-    if len({p[0] for p in pairs}) != len(pairs):
-        raise ProtocolError("bad_features", "two features encode to the same name", event_id)
-    slots: list[int] = []
-    values: list[float] = []
-    numeric: list[bool] = []
-    for name, v, is_num in pairs:
-        j = vocab.slot(name, grow)
-        if j >= 0:
-            slots.append(j)
-            values.append(v)
-            numeric.append(is_num)
+        j = index.get(name)
+        if j is None:
+            new.append((len(slots), name))
+            j = -1
+        slots.append(j)
+        values.append(v)
+        numeric.append(is_num)
+    if ambiguous:
+        names = [f"{k}={v}" if type(v) is str else k for k, v in x.items() if v is not None]
+        if len(set(names)) != len(names):
+            raise ProtocolError("bad_features", "two features encode to the same name", event_id)
+    if new:
+        for pos, name in new:
+            slots[pos] = vocab.slot(name, grow)
+        if min(slots) < 0:  # names the vocabulary could not take are left out
+            keep = [k for k, j in enumerate(slots) if j >= 0]
+            slots = [slots[k] for k in keep]
+            values = [values[k] for k in keep]
+            numeric = [numeric[k] for k in keep]
     return slots, values, numeric
 
 
