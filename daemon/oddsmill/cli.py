@@ -303,6 +303,37 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     return 0
 
 
+# -- serve -------------------------------------------------------------------------------------------
+def cmd_serve(args: argparse.Namespace) -> int:
+    import signal
+    import threading
+
+    from .server import Server, ServerSettings
+
+    learner, _, window = learner_settings(args)
+    settings = ServerSettings(
+        state_dir=Path(args.state),
+        ingest=args.ingest,
+        ingest_kind=args.ingest_kind,
+        scores=args.scores,
+        checkpoint_events=args.checkpoint_events,
+        checkpoint_seconds=args.checkpoint_seconds,
+        window=window,
+        allow_insecure_bind=args.allow_insecure_bind,
+    )
+    server = Server(settings, learner, args.warm_start)
+    stop = threading.Event()
+
+    def on_signal(signum: int, _frame: object) -> None:
+        log.info("signal %d: checkpointing and stopping", signum)
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    server.serve(stop)
+    return 0
+
+
 # -- demo ----------------------------------------------------------------------------------------
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
@@ -334,6 +365,23 @@ def build_parser() -> argparse.ArgumentParser:
     i.add_argument("--json", action="store_true")
     i.add_argument("--top", type=int, default=None, metavar="K")
     i.set_defaults(func=cmd_inspect)
+
+    s = sub.add_parser("serve", help="run the daemon: learn from a live stream, publish scores")
+    s.add_argument("--state", default="state", metavar="DIR", help="checkpoints and journal (default ./state)")
+    s.add_argument("--ingest", default="tcp://127.0.0.1:7571", metavar="ADDR")
+    s.add_argument("--ingest-kind", dest="ingest_kind", choices=["sub", "pull"], default="sub")
+    s.add_argument("--scores", default="tcp://127.0.0.1:7572", metavar="ADDR")
+    s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG", default=None)
+    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, default=100_000)
+    s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, default=60.0)
+    s.add_argument(
+        "--allow-insecure-bind",
+        dest="allow_insecure_bind",
+        action="store_true",
+        help="let ZeroMQ sockets bind off loopback without authentication (logged)",
+    )
+    _learner_options(s)
+    s.set_defaults(func=cmd_serve)
 
     d = sub.add_parser("demo", help="the whole job on the parcel demo data, ending in a summary")
     d.add_argument("--data", help="a demo log other than the bundled one")

@@ -75,26 +75,27 @@ class Engine:
         self.counters = Counters()
         self.last_seq: dict[str, int] = {}
 
-    def process(self, items: list[tuple[float, Item]]) -> list[Score | Rejection]:
-        """Run items (arrival time, decoded item) as one block; returns scores and rejections in
-        order. Rejections change nothing but their counter."""
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+        """Run items (arrival time, decoded item) as one block; returns (index of the item, score
+        or rejection) in order. Rejections change nothing but their counter."""
         lr = self.learner
         b = BlockBuilder()
         # per block position: (id, arrival, held pending entry or None, label or None)
         slots_meta: list[tuple[Any, float, PendingEntry | None, float | None]] = []
-        results: list[Score | Rejection | int] = []  # int: position in the block
+        results: list[tuple[int, Score | Rejection | int]] = []  # int: position in the block
         steps: list[int] = []
         step = lr.step
-        for arrival, item in items:
+        for n, (arrival, item) in enumerate(items):
             if isinstance(item, ProtocolError):
-                results.append(self._reject(item.event_id, item.reason, item.detail))
+                results.append((n, self._reject(item.event_id, item.reason, item.detail)))
                 continue
             if not self._sequence_ok(item):
                 results.append(
-                    self._reject(
-                        getattr(item, "id", None),
-                        "duplicate",
-                        f"seq {item.seq} from {item.src!r} was seen already",
+                    (
+                        n,
+                        self._reject(
+                            getattr(item, "id", None), "duplicate", f"seq {item.seq} from {item.src!r} was seen already"
+                        ),
                     )
                 )
                 continue
@@ -105,11 +106,7 @@ class Engine:
                     held = self.pending.pop(ev.id, None)
                     if held is None:
                         results.append(
-                            self._reject(
-                                ev.id,
-                                "unknown_outcome",
-                                f"no scoring request with id {ev.id!r} is held",
-                            )
+                            (n, self._reject(ev.id, "unknown_outcome", f"no scoring request with id {ev.id!r} is held"))
                         )
                         continue
                     assert ev.y is not None
@@ -122,9 +119,9 @@ class Engine:
                 try:
                     slots, values = lr.encode(ev.x, grow=True, event_id=ev.id)
                 except ProtocolError as e:
-                    results.append(self._reject(e.event_id, e.reason, e.detail))
+                    results.append((n, self._reject(e.event_id, e.reason, e.detail)))
                     continue
-                results.append(len(b))
+                results.append((n, len(b)))
                 steps.append(step)
                 if ev.y is not None:
                     b.add(slots, values, K.OP_TRAIN, float(ev.y), ev.w)
@@ -140,7 +137,7 @@ class Engine:
                     slots_meta.append((ev.id, arrival, held, None))
                     self.counters.score += 1
         if len(b) == 0:
-            return [r for r in results if not isinstance(r, int)]
+            return [(n, r) for n, r in results if not isinstance(r, int)]
         logits = lr.run(b.build())
         # metrics on labelled events: the score that was published for each
         zs, ys = [], []
@@ -151,13 +148,13 @@ class Engine:
                 zs.append(held.logit if held is not None else float(logits[pos]))
                 ys.append(label)
         self.metrics.update(np.asarray(zs, dtype=np.float64), np.asarray(ys, dtype=np.float64))
-        out: list[Score | Rejection] = []
-        for r in results:
+        out: list[tuple[int, Score | Rejection]] = []
+        for n, r in results:
             if isinstance(r, int):
                 ident, arrival, _, _ = slots_meta[r]
-                out.append(Score(ident, float(logits[r]), steps[r], arrival))
+                out.append((n, Score(ident, float(logits[r]), steps[r], arrival)))
             else:
-                out.append(r)
+                out.append((n, r))
         return out
 
     # -- helpers -------------------------------------------------------------------------------

@@ -46,7 +46,12 @@ class ProgressiveMetrics:
         """Record the published logits `z` of labelled events with outcomes `y`, in order."""
         if z.shape[0] == 0:
             return
-        self.sum += float(np.sum(log_loss_from_logit(z, y)))
+        # added one by one, so that the sum does not depend on where blocks begin and end (a
+        # restarted daemon replays its journal in other blocks than it first saw)
+        total = self.sum
+        for v in log_loss_from_logit(z, y).tolist():
+            total += v
+        self.sum = total
         self.count += int(z.shape[0])
         if z.shape[0] >= self.window:
             z, y = z[-self.window :], y[-self.window :]

@@ -178,6 +178,11 @@ class JournalWriter:
         self._f.flush()
         os.fsync(self._f.fileno())
 
+    def tell(self) -> int:
+        """The byte offset just past the last record appended."""
+        self._f.flush()
+        return self._f.tell()
+
     def close(self) -> None:
         self._f.close()
 

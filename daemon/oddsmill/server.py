@@ -1,0 +1,304 @@
+"""The daemon's loop: poll, decode, journal, score and learn, publish, checkpoint.
+
+The loop is the only writer of the learner's state. Each wake-up drains whatever is waiting (at most
+`block_max` messages, so a lone event is answered at once) into one block. Every message whose body
+is msgpack is journaled (and the journal synced) before any score of its block is published; the
+engine then runs the block exactly sequentially. A checkpoint records the journal position it
+covers, so a restart loads the newest checkpoint and replays the journal after it: the state equals
+an uninterrupted run on the same messages, bit for bit.
+"""
+
+from __future__ import annotations
+
+import ipaddress
+import logging
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+from urllib.parse import urlsplit
+
+import msgpack
+import numpy as np
+import zmq
+
+from .engine import Engine, Rejection, Score
+from .errors import ConfigError, ProtocolError
+from .learner import Learner
+from .protocol import Columns, Item, decode_body, unpack
+from .settings import LearnerSettings
+from .storage import (
+    JOURNAL_MAGIC,
+    JournalWriter,
+    list_journal,
+    load_newest,
+    read_journal,
+    write_checkpoint,
+)
+
+log = logging.getLogger("oddsmill")
+
+POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
+REPLAY_BLOCK = 4096
+
+
+@dataclass(frozen=True)
+class ServerSettings:
+    state_dir: Path
+    ingest: str = "tcp://127.0.0.1:7571"
+    ingest_kind: str = "sub"  # "sub" (producers PUB) or "pull" (producers PUSH: back-pressure)
+    scores: str = "tcp://127.0.0.1:7572"
+    topic: str = "events"
+    block_max: int = 4096
+    checkpoint_events: int = 100_000
+    checkpoint_seconds: float = 60.0
+    segment_bytes: int = 64 << 20
+    window: int = 10_000
+    pending_limit: int = 1_000_000
+    pending_ttl: float = 7 * 24 * 3600.0
+    allow_insecure_bind: bool = False
+
+    def __post_init__(self) -> None:
+        if self.ingest_kind not in ("sub", "pull"):
+            raise ConfigError(f"ingest_kind must be sub or pull, got {self.ingest_kind!r}")
+        for name in ("block_max", "checkpoint_events", "segment_bytes", "window", "pending_limit"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int) or v < 1:
+                raise ConfigError(f"{name} must be an integer >= 1, got {v!r}")
+        for name in ("checkpoint_seconds", "pending_ttl"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
+                raise ConfigError(f"{name} must be a number > 0, got {v!r}")
+        for name in ("ingest", "scores"):
+            check_bind(name, getattr(self, name), self.allow_insecure_bind)
+
+
+def check_bind(name: str, address: str, allow_insecure: bool) -> None:
+    """PROTOCOL 1: ZeroMQ sockets bind to loopback unless the operator opts out explicitly."""
+    parts = urlsplit(address)
+    if parts.scheme in ("ipc", "inproc"):
+        return
+    if parts.scheme != "tcp" or not parts.hostname:
+        raise ConfigError(f"{name} must be tcp://HOST:PORT, ipc://PATH or inproc://NAME, got {address!r}")
+    host = parts.hostname
+    loopback = host == "localhost"
+    if not loopback:
+        try:
+            loopback = ipaddress.ip_address(host).is_loopback
+        except ValueError:
+            loopback = False
+    if loopback:
+        return
+    if not allow_insecure:
+        raise ConfigError(
+            f"{name} {address!r} is not a loopback address; binding off the machine needs CURVE keys "
+            "(not available in this version) or --allow-insecure-bind, which lets anyone who can reach "
+            "the port feed or read the model"
+        )
+    log.warning("%s binds to %s without authentication or encryption (--allow-insecure-bind)", name, address)
+
+
+class Server:
+    def __init__(
+        self, settings: ServerSettings, learner: LearnerSettings | None = None, warm_start: list[str] | None = None
+    ) -> None:
+        self.settings = settings
+        self.engine, self.records, position = self._load(learner or LearnerSettings())
+        self._replay_journal(position)
+        if warm_start:
+            from .offline import read_items, run_logs
+
+            run_logs(self.engine, read_items(warm_start))
+            log.info("warm start: learned %d events from %s", self.engine.learner.step, ", ".join(warm_start))
+        self.journal = self._open_journal()
+        self.last_checkpoint = time.time()
+        self.last_checkpoint_step = self.engine.learner.step
+        self.bound: dict[str, str] = {}
+        self.ready = threading.Event()
+
+    # -- state -----------------------------------------------------------------------------------
+    def _load(self, learner: LearnerSettings) -> tuple[Engine, int, dict[str, Any] | None]:
+        s = self.settings
+        s.state_dir.mkdir(parents=True, exist_ok=True)
+        found = load_newest(s.state_dir)
+        if found is None:
+            engine = Engine(Learner(learner), s.window, s.pending_limit, s.pending_ttl)
+            return engine, 0, None
+        state, path = found
+        engine = Engine.from_state_dict(state["engine"])
+        position = state.get("journal")
+        log.info("resuming from %s at step %d", path.name, engine.learner.step)
+        return engine, int(position["records"]) if position else 0, position
+
+    def _replay_journal(self, position: dict[str, Any] | None) -> None:
+        """Learn the journal records after the checkpoint's position, in blocks, publishing nothing."""
+        start_segment = position["segment"] if position else None
+        start_offset = int(position["offset"]) if position else 0
+        replayed = 0
+        for seg in list_journal(self.settings.state_dir):
+            if start_segment is not None and seg.name < start_segment:
+                continue
+            skip_to = start_offset if seg.name == start_segment else 0
+            batch: list[tuple[float, Item]] = []
+            for end, arrival, body in read_journal(seg):
+                if end <= skip_to:
+                    continue
+                self.records += 1
+                replayed += 1
+                batch.extend((arrival, item) for item in decode_body(body))
+                if len(batch) >= REPLAY_BLOCK:
+                    self.engine.process(batch)
+                    batch = []
+            if batch:
+                self.engine.process(batch)
+        if replayed:
+            log.info("replayed %d journal records after the checkpoint; step %d", replayed, self.engine.learner.step)
+
+    def _open_journal(self) -> JournalWriter:
+        segments = list_journal(self.settings.state_dir)
+        if segments:
+            last = segments[-1]
+            good = len(JOURNAL_MAGIC) + 4
+            for end, _, _ in read_journal(last):
+                good = end
+            if last.stat().st_size > good:
+                log.warning("%s: cutting a torn tail at byte %d", last.name, good)
+                with open(last, "r+b") as f:
+                    f.truncate(good)
+            return JournalWriter(last)
+        return JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
+
+    def checkpoint(self) -> Path:
+        self.journal.sync()
+        position = {"segment": self.journal.path.name, "offset": self.journal.tell(), "records": self.records}
+        state = {
+            "kind": "oddsmill-state",
+            "created": time.time(),
+            "engine": self.engine.state_dict(),
+            "journal": position,
+        }
+        path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
+        self.last_checkpoint = time.time()
+        self.last_checkpoint_step = self.engine.learner.step
+        log.info("checkpoint %s (step %d)", path.name, self.engine.learner.step)
+        return path
+
+    # -- the loop ----------------------------------------------------------------------------------
+    def serve(self, stop: threading.Event, context: zmq.Context[Any] | None = None) -> None:
+        s = self.settings
+        ctx = context or zmq.Context.instance()
+        kind = zmq.SUB if s.ingest_kind == "sub" else zmq.PULL
+        with ctx.socket(kind) as ingest, ctx.socket(zmq.PUB) as pub:
+            for sock in (ingest, pub):
+                sock.setsockopt(zmq.LINGER, 0)
+            try:
+                ingest.bind(s.ingest)
+                pub.bind(s.scores)
+            except zmq.ZMQError as e:
+                raise ConfigError(f"cannot bind ({e}): ingest {s.ingest}, scores {s.scores}") from None
+            if kind == zmq.SUB:
+                ingest.setsockopt(zmq.SUBSCRIBE, s.topic.encode())
+            self.bound = {
+                "ingest": ingest.getsockopt_string(zmq.LAST_ENDPOINT),
+                "scores": pub.getsockopt_string(zmq.LAST_ENDPOINT),
+            }
+            log.info(
+                "serving: ingest %s (%s), scores %s, step %d",
+                self.bound["ingest"],
+                s.ingest_kind,
+                self.bound["scores"],
+                self.engine.learner.step,
+            )
+            self.ready.set()
+            poller = zmq.Poller()
+            poller.register(ingest, zmq.POLLIN)
+            while not stop.is_set():
+                if poller.poll(POLL_MS):
+                    frames: list[list[bytes]] = []
+                    while len(frames) < s.block_max:
+                        try:
+                            frames.append(ingest.recv_multipart(zmq.NOBLOCK))
+                        except zmq.Again:
+                            break
+                    self.handle(frames, pub)
+                due = self.engine.learner.step - self.last_checkpoint_step >= s.checkpoint_events
+                if due or time.time() - self.last_checkpoint >= s.checkpoint_seconds:
+                    self.checkpoint()
+            self.checkpoint()
+        self.journal.close()
+
+    def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any]) -> None:
+        """One block: journal, then score and learn, then publish, in arrival order."""
+        arrival = time.time()
+        items: list[tuple[float, Item]] = []
+        owner: list[int] = []  # message index of each item
+        shapes: list[str] = []  # "one", "batch" or "cols" for each message
+        rejects: list[Rejection] = []
+        for i, frames in enumerate(messages):
+            shapes.append("one")
+            if len(frames) != 2:
+                rejects.append(
+                    self._count(Rejection(None, "undecodable", f"a message has 2 frames, got {len(frames)}"))
+                )
+                continue
+            try:
+                body = unpack(frames[1])
+            except ProtocolError as e:
+                rejects.append(self._count(Rejection(None, e.reason, e.detail)))
+                continue
+            self.journal.append(arrival, frames[1])
+            self.records += 1
+            if isinstance(body, dict) and "batch" in body:
+                shapes[i] = "batch"
+            decoded = decode_body(body)
+            if len(decoded) == 1 and isinstance(decoded[0], Columns):
+                shapes[i] = "cols"
+            for item in decoded:
+                items.append((arrival, item))
+                owner.append(i)
+        if items:
+            self.journal.sync()
+            if self.journal.tell() >= self.settings.segment_bytes:
+                self.journal.close()
+                self.journal = JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
+        results = self.engine.process(items) if items else []
+        scores: dict[int, list[Score]] = {}
+        for n, r in results:
+            if isinstance(r, Score):
+                scores.setdefault(owner[n], []).append(r)
+            else:
+                rejects.append(r)
+        for i in sorted(scores):
+            pub.send_multipart([b"scores", msgpack.packb(_score_body(scores[i], shapes[i]))])
+        for r in rejects:
+            pub.send_multipart([b"rejects", msgpack.packb({"id": r.id, "reason": r.reason, "detail": r.detail})])
+
+    def _count(self, r: Rejection) -> Rejection:
+        rej = self.engine.counters.rejected
+        rej[r.reason] = rej.get(r.reason, 0) + 1
+        return r
+
+
+def _one(s: Score) -> dict[str, Any]:
+    return {"id": s.id, "p": _p(s.logit), "logit": s.logit, "step": s.step, "ts": s.ts}
+
+
+def _p(z: float) -> float:
+    return float(1.0 / (1.0 + np.exp(-z))) if z >= 0 else float(np.exp(z) / (1.0 + np.exp(z)))
+
+
+def _score_body(scores: list[Score], shape: str) -> dict[str, Any]:
+    if shape == "cols":
+        z = np.array([s.logit for s in scores], dtype="<f8")
+        p = np.exp(-np.logaddexp(0.0, -z)).astype("<f8")
+        return {
+            "id": [s.id for s in scores],
+            "p": p.tobytes(),
+            "logit": z.tobytes(),
+            "step": scores[0].step,
+            "ts": scores[0].ts,
+        }
+    if shape == "batch":
+        return {"batch": [_one(s) for s in scores]}
+    return _one(scores[0])

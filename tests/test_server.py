@@ -1,0 +1,200 @@
+"""The daemon end to end, on random loopback ports, with raw pyzmq and msgpack as a producer would."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+import pytest
+import zmq
+from oddsmill.engine import Engine, Score
+from oddsmill.learner import Learner
+from oddsmill.protocol import decode_body
+from oddsmill.server import Server, ServerSettings
+from oddsmill.settings import LearnerSettings
+from oddsmill.storage import list_journal, load_newest, read_journal
+
+from tests.conftest import sparse_stream
+
+TIMEOUT_MS = 10_000
+
+
+def bodies(n: int, seed: int) -> list[dict[str, Any]]:
+    """Training events, scoring requests with ids and their outcomes a few messages later."""
+    out: list[dict[str, Any]] = []
+    for i, (x, y) in enumerate(sparse_stream(n, seed)):
+        if i % 3 == 0:
+            out.append({"id": f"P{seed}-{i}", "x": x})
+            if i % 2:  # half the requests get their outcome (the message right after)
+                out.append({"id": f"P{seed}-{i}", "y": y})
+        else:
+            out.append({"x": x, "y": y})
+    return out
+
+
+def replay_journal(state: Path, settings: LearnerSettings) -> tuple[Engine, list[Score]]:
+    engine = Engine(Learner(settings))
+    scores: list[Score] = []
+    for seg in list_journal(state):
+        for _, arrival, body in read_journal(seg):
+            scores.extend(
+                r for _, r in engine.process([(arrival, it) for it in decode_body(body)]) if isinstance(r, Score)
+            )
+    return engine, scores
+
+
+class Client:
+    """A PUSH producer and a SUB on the scores, with a ready handshake (never a sleep)."""
+
+    def __init__(self, ctx: zmq.Context[Any], ingest: str, scores: str) -> None:
+        self.push = ctx.socket(zmq.PUSH)
+        self.sub = ctx.socket(zmq.SUB)
+        for s in (self.push, self.sub):
+            s.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        self.sub.connect(scores)
+        self.push.connect(ingest)
+        # the subscription is in place once a probe's score comes back
+        deadline = time.monotonic() + TIMEOUT_MS / 1000
+        while time.monotonic() < deadline:
+            self.send({"x": {"probe": 1.0}})
+            if self.sub.poll(100):
+                self.sub.recv_multipart()
+                break
+        else:
+            raise AssertionError("no score for a probe: the daemon is not answering")
+        while self.sub.poll(200):  # drain the answers to extra probes
+            self.sub.recv_multipart()
+
+    def send(self, body: dict[str, Any]) -> None:
+        self.push.send_multipart([b"events", msgpack.packb(body)])
+
+    def receive(self, n: int) -> list[tuple[bytes, dict[str, Any]]]:
+        got = []
+        while len(got) < n:
+            assert self.sub.poll(TIMEOUT_MS), f"got {len(got)} of {n} answers"
+            topic, raw = self.sub.recv_multipart()
+            got.append((topic, msgpack.unpackb(raw)))
+        return got
+
+    def close(self) -> None:
+        self.push.close()
+        self.sub.close()
+
+
+def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Path) -> None:
+    settings = ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://127.0.0.1:*",
+        ingest_kind="pull",
+        scores="tcp://127.0.0.1:*",
+        checkpoint_events=500,
+    )
+    learner = LearnerSettings(scale_warmup=200)
+    server = Server(settings, learner)
+    stop = threading.Event()
+    ctx: zmq.Context[Any] = zmq.Context()
+    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
+    thread.start()
+    assert server.ready.wait(10)
+    client = Client(ctx, server.bound["ingest"], server.bound["scores"])
+    sent = bodies(900, seed=1)
+    for body in sent:
+        client.send(body)
+    client.send({"id": "never-seen", "y": 1})
+    client.send({"x": {"route_km": "far"}, "y": 7})
+    expected = sum(1 for b in sent if "x" in b)
+    answers = client.receive(expected + 2)
+    stop.set()
+    thread.join(10)
+    client.close()
+    ctx.term()
+    scores = [a for t, a in answers if t == b"scores"]
+    rejects = [a for t, a in answers if t == b"rejects"]
+    assert [s["id"] for s in scores] == [b.get("id") for b in sent if "x" in b]
+    assert sorted(r["reason"] for r in rejects) == ["bad_label", "unknown_outcome"]
+    # the journal holds every message; replaying it offline gives the same scores, bit for bit
+    engine, offline = replay_journal(tmp_path, learner)
+    live = [s["logit"] for s in scores]
+    assert [s.logit for s in offline][-len(live) :] == live  # the probes come first
+    for s in scores:
+        assert s["p"] == pytest.approx(1 / (1 + np.exp(-s["logit"])), rel=1e-12)
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    assert state["engine"]["learner"]["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def start(state: Path, ingest: str, scores: str) -> subprocess.Popen[str]:
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "oddsmill.cli",
+            "serve",
+            "--state",
+            str(state),
+            "--ingest",
+            ingest,
+            "--ingest-kind",
+            "pull",
+            "--scores",
+            scores,
+            "--scale-warmup",
+            "200",
+        ],
+        stderr=subprocess.PIPE,
+        text=True,
+        env={**os.environ, "PYTHONUNBUFFERED": "1"},
+    )
+    assert proc.stderr is not None
+    deadline = time.monotonic() + 60
+    for line in proc.stderr:
+        if "serving:" in line:
+            return proc
+        assert time.monotonic() < deadline, "the daemon did not start"
+    raise AssertionError(f"the daemon exited with {proc.wait()}")
+
+
+def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Path) -> None:
+    ingest, scores = f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}"
+    ctx: zmq.Context[Any] = zmq.Context()
+    sent = bodies(1500, seed=2)
+    parts = [sent[:500], sent[500:1000], sent[1000:]]
+    for k, part in enumerate(parts):
+        proc = start(tmp_path, ingest, scores)
+        client = Client(ctx, ingest, scores)
+        for body in part:
+            client.send(body)
+        client.receive(sum(1 for b in part if "x" in b))
+        client.close()
+        if k == 1:
+            proc.kill()  # kill -9: no checkpoint; the journal has it all
+            assert proc.wait(10) == -signal.SIGKILL
+        else:
+            t0 = time.monotonic()
+            proc.send_signal(signal.SIGTERM)
+            assert proc.wait(10) == 0
+            assert time.monotonic() - t0 < 5
+    ctx.term()
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    engine, _ = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
+    mine = state["engine"]["learner"]
+    theirs = engine.learner.state_dict()
+    assert mine["scalars"].tobytes() == theirs["scalars"].tobytes()
+    assert mine["slots"].tobytes() == theirs["slots"].tobytes()
+    assert state["engine"]["metrics"]["sum"] == engine.metrics.sum
+    assert engine.learner.step == sum(1 for b in sent if "y" in b)  # training events and joined outcomes
