@@ -198,3 +198,108 @@ def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Pa
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
     assert state["engine"]["metrics"]["sum"] == engine.metrics.sum
     assert engine.learner.step == sum(1 for b in sent if "y" in b)  # training events and joined outcomes
+
+
+def test_http_metrics_status_and_health(tmp_path: Path) -> None:
+    import json
+    import urllib.request
+
+    from prometheus_client.parser import text_string_to_metric_families
+    from sklearn.metrics import log_loss  # Source: scikit-learn's log_loss on the published scores
+
+    settings = ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://127.0.0.1:*",
+        ingest_kind="pull",
+        scores="tcp://127.0.0.1:*",
+        http="127.0.0.1:0",
+    )
+    server = Server(settings, LearnerSettings(scale_warmup=200))
+    stop = threading.Event()
+    ctx: zmq.Context[Any] = zmq.Context()
+    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
+    thread.start()
+    assert server.ready.wait(10)
+    base = f"http://{server.bound['http']}"
+    client = Client(ctx, server.bound["ingest"], server.bound["scores"])
+    sent = bodies(600, seed=3)
+    for body in sent:
+        client.send(body)
+    answers = client.receive(sum(1 for b in sent if "x" in b))
+    learned = sum(1 for b in sent if "y" in b)
+    deadline = time.monotonic() + 10
+    while True:  # the figures are at most SNAPSHOT_SECONDS old
+        doc = json.loads(urllib.request.urlopen(f"{base}/api/status", timeout=5).read())
+        if doc["step"] == learned or time.monotonic() > deadline:
+            break
+    assert doc["step"] == learned
+    assert {"step", "features", "log_loss", "log_loss_window", "pending_outcomes"} <= set(doc)
+    text = urllib.request.urlopen(f"{base}/metrics", timeout=5).read().decode()
+    samples = {
+        (s.name, tuple(sorted(s.labels.items()))): s.value
+        for fam in text_string_to_metric_families(text)
+        for s in fam.samples
+    }
+    assert samples[("oddsmill_updates_total", ())] == learned
+    assert samples[("oddsmill_events_total", (("kind", "train"),))] == sum(1 for b in sent if "x" in b and "y" in b)
+    assert samples[("oddsmill_pending_outcomes", ())] == doc["pending_outcomes"]
+    # the progressive log-loss is computed on the scores that were published
+    labels = {}
+    for b in sent:
+        if "y" in b and "id" in b:
+            labels[b["id"]] = b["y"]
+    scores = [a for t, a in answers if t == b"scores"]
+    ps, ys = [], []
+    train = [b for b in sent if "x" in b]
+    for body, s in zip(train, scores, strict=True):
+        y = body.get("y", labels.get(body.get("id")))
+        if y is not None:
+            ps.append(s["p"])
+            ys.append(y)
+    assert samples[("oddsmill_log_loss", ())] == pytest.approx(log_loss(ys, ps, labels=[0, 1]), rel=1e-9)
+    assert doc["log_loss"] == samples[("oddsmill_log_loss", ())]
+    assert urllib.request.urlopen(f"{base}/healthz", timeout=5).status == 200
+    stop.set()
+    thread.join(10)
+    client.close()
+    ctx.term()
+
+
+def test_metric_exposition_of_a_fixed_snapshot() -> None:
+    from oddsmill.metrics import Board, Snapshot
+    from prometheus_client import CollectorRegistry, generate_latest
+
+    board = Board(CollectorRegistry())
+    board.snapshot = Snapshot(
+        step=42,
+        features=7,
+        log_loss=0.5,
+        log_loss_sum=21.0,
+        log_loss_count=42,
+        log_loss_window=0.25,
+        events={"train": 40, "score": 5, "outcome": 2},
+        rejected={"bad_label": 3},
+        lost=1,
+        learning_rate=0.125,
+    )
+    lines = generate_latest(board.registry).decode().splitlines()
+    for expected in [
+        "# TYPE oddsmill_events_total counter",
+        'oddsmill_events_total{kind="train"} 40.0',
+        'oddsmill_events_total{kind="outcome"} 2.0',
+        'oddsmill_events_rejected_total{reason="bad_label"} 3.0',
+        'oddsmill_events_rejected_total{reason="duplicate"} 0.0',
+        "oddsmill_events_lost_total 1.0",
+        "oddsmill_updates_total 42.0",
+        "oddsmill_log_loss_sum_total 21.0",
+        "oddsmill_log_loss_count_total 42.0",
+        "# TYPE oddsmill_log_loss gauge",
+        "oddsmill_log_loss 0.5",
+        "oddsmill_log_loss_window 0.25",
+        "oddsmill_learning_rate 0.125",
+        "oddsmill_features 7.0",
+        'oddsmill_pending_dropped_total{why="expired"} 0.0',
+        "# TYPE oddsmill_score_latency_seconds histogram",
+        "# TYPE oddsmill_batch_seconds histogram",
+    ]:
+        assert expected in lines, expected

@@ -320,6 +320,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
         checkpoint_seconds=args.checkpoint_seconds,
         window=window,
         allow_insecure_bind=args.allow_insecure_bind,
+        http=args.http,
     )
     server = Server(settings, learner, args.warm_start)
     stop = threading.Event()
@@ -371,6 +372,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--ingest", default="tcp://127.0.0.1:7571", metavar="ADDR")
     s.add_argument("--ingest-kind", dest="ingest_kind", choices=["sub", "pull"], default="sub")
     s.add_argument("--scores", default="tcp://127.0.0.1:7572", metavar="ADDR")
+    s.add_argument(
+        "--http",
+        default="127.0.0.1:7573",
+        metavar="HOST:PORT",
+        help="/metrics, /healthz and /api/status (default 127.0.0.1:7573; off for none)",
+    )
     s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG", default=None)
     s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, default=100_000)
     s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, default=60.0)

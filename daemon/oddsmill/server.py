@@ -22,10 +22,12 @@ from urllib.parse import urlsplit
 import msgpack
 import numpy as np
 import zmq
+from prometheus_client import CollectorRegistry
 
 from .engine import Engine, Rejection, Score
 from .errors import ConfigError, ProtocolError
 from .learner import Learner
+from .metrics import Board, Snapshot, serve_http
 from .protocol import Columns, Item, decode_body, unpack
 from .settings import LearnerSettings
 from .storage import (
@@ -40,6 +42,7 @@ from .storage import (
 log = logging.getLogger("oddsmill")
 
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
+SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status read may be
 REPLAY_BLOCK = 4096
 
 
@@ -58,6 +61,7 @@ class ServerSettings:
     pending_limit: int = 1_000_000
     pending_ttl: float = 7 * 24 * 3600.0
     allow_insecure_bind: bool = False
+    http: str = "127.0.0.1:7573"  # HOST:PORT of /metrics, /healthz and /api/status; "off" for none
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
@@ -72,6 +76,10 @@ class ServerSettings:
                 raise ConfigError(f"{name} must be a number > 0, got {v!r}")
         for name in ("ingest", "scores"):
             check_bind(name, getattr(self, name), self.allow_insecure_bind)
+        if self.http != "off":
+            host, _, port = self.http.rpartition(":")
+            if not host or not port.isdigit():
+                raise ConfigError(f"http must be HOST:PORT or off, got {self.http!r}")
 
 
 def check_bind(name: str, address: str, allow_insecure: bool) -> None:
@@ -116,6 +124,12 @@ class Server:
         self.last_checkpoint_step = self.engine.learner.step
         self.bound: dict[str, str] = {}
         self.ready = threading.Event()
+        self.board = Board(CollectorRegistry())
+        self._refresh()
+
+    def _refresh(self) -> None:
+        self.board.snapshot = Snapshot.of(self.engine, self.last_checkpoint)
+        self.last_refresh = time.monotonic()
 
     # -- state -----------------------------------------------------------------------------------
     def _load(self, learner: LearnerSettings) -> tuple[Engine, int, dict[str, Any] | None]:
@@ -181,6 +195,7 @@ class Server:
         path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
+        self._refresh()
         log.info("checkpoint %s (step %d)", path.name, self.engine.learner.step)
         return path
 
@@ -203,17 +218,27 @@ class Server:
                 "ingest": ingest.getsockopt_string(zmq.LAST_ENDPOINT),
                 "scores": pub.getsockopt_string(zmq.LAST_ENDPOINT),
             }
+            httpd = None
+            if s.http != "off":
+                host, _, port = s.http.rpartition(":")
+                try:
+                    httpd, _ = serve_http(self.board, host, int(port))
+                except OSError as e:
+                    raise ConfigError(f"cannot serve HTTP on {s.http} ({e.strerror})") from None
+                self.bound["http"] = f"{host}:{httpd.server_address[1]}"
             log.info(
-                "serving: ingest %s (%s), scores %s, step %d",
+                "serving: ingest %s (%s), scores %s, http %s, step %d",
                 self.bound["ingest"],
                 s.ingest_kind,
                 self.bound["scores"],
+                self.bound.get("http", "off"),
                 self.engine.learner.step,
             )
             self.ready.set()
             poller = zmq.Poller()
             poller.register(ingest, zmq.POLLIN)
             while not stop.is_set():
+                self.board.heartbeat = time.time()
                 if poller.poll(POLL_MS):
                     frames: list[list[bytes]] = []
                     while len(frames) < s.block_max:
@@ -221,11 +246,18 @@ class Server:
                             frames.append(ingest.recv_multipart(zmq.NOBLOCK))
                         except zmq.Again:
                             break
+                    t0 = time.perf_counter()
                     self.handle(frames, pub)
+                    self.board.batch_seconds.observe(time.perf_counter() - t0)
+                if time.monotonic() - self.last_refresh >= SNAPSHOT_SECONDS:
+                    self._refresh()
                 due = self.engine.learner.step - self.last_checkpoint_step >= s.checkpoint_events
                 if due or time.time() - self.last_checkpoint >= s.checkpoint_seconds:
                     self.checkpoint()
             self.checkpoint()
+            if httpd is not None:
+                httpd.shutdown()
+                httpd.server_close()
         self.journal.close()
 
     def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any]) -> None:
@@ -271,6 +303,9 @@ class Server:
                 rejects.append(r)
         for i in sorted(scores):
             pub.send_multipart([b"scores", msgpack.packb(_score_body(scores[i], shapes[i]))])
+        if scores:
+            # every message of a block arrived (was drained) at the same moment
+            self.board.score_latency.observe(time.time() - arrival)
         for r in rejects:
             pub.send_multipart([b"rejects", msgpack.packb({"id": r.id, "reason": r.reason, "detail": r.detail})])
 

@@ -1,0 +1,203 @@
+"""Prometheus metrics (PROTOCOL 8) and the HTTP endpoints: /metrics, /healthz, /api/status.
+
+The event loop is the only writer of the model; after each block it publishes a `Snapshot` (an
+immutable record, swapped in by one assignment). The collector and the HTTP handlers read only
+snapshots, at scrape time. The registry is injected, never the process-wide default.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import threading
+import time
+from collections.abc import Iterator
+from dataclasses import asdict, dataclass, field
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+from prometheus_client import CollectorRegistry, Histogram, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.exposition import CONTENT_TYPE_LATEST
+from prometheus_client.registry import Collector
+
+from .engine import Engine
+
+log = logging.getLogger("oddsmill")
+
+STUCK_SECONDS = 10.0  # /healthz says 503 when the loop has not come round for this long
+REASONS = (
+    "undecodable",
+    "not_a_map",
+    "bad_features",
+    "bad_label",
+    "bad_weight",
+    "non_finite",
+    "unknown_outcome",
+    "too_large",
+    "duplicate",
+)
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    step: int = 0
+    features: int = 0
+    log_loss: float = float("nan")
+    log_loss_sum: float = 0.0
+    log_loss_count: int = 0
+    log_loss_window: float = float("nan")
+    brier_window: float = float("nan")
+    calibration_error_window: float = float("nan")
+    calibration_bins: list[dict[str, float]] = field(default_factory=list)
+    learning_rate: float = float("nan")
+    pending_outcomes: int = 0
+    events: dict[str, int] = field(default_factory=dict)
+    rejected: dict[str, int] = field(default_factory=dict)
+    lost: int = 0
+    pending_dropped: dict[str, int] = field(default_factory=dict)
+    last_checkpoint: float = 0.0
+    loop_time: float = 0.0  # when the loop last came round
+    writable: bool = True  # the last write of journal or checkpoint succeeded
+
+    @classmethod
+    def of(cls, engine: Engine, last_checkpoint: float, writable: bool = True) -> Snapshot:
+        m, c, lr = engine.metrics, engine.counters, engine.learner
+        return cls(
+            step=lr.step,
+            features=lr.n_features,
+            log_loss=m.log_loss,
+            log_loss_sum=m.sum,
+            log_loss_count=m.count,
+            log_loss_window=m.log_loss_window,
+            brier_window=m.brier_window,
+            calibration_error_window=m.calibration_error_window,
+            calibration_bins=m.calibration_bins(),
+            learning_rate=lr.learning_rate(),
+            pending_outcomes=len(engine.pending),
+            events={"train": c.train, "score": c.score, "outcome": c.outcome},
+            rejected=dict(c.rejected),
+            lost=c.lost,
+            pending_dropped={"expired": c.pending_expired, "evicted": c.pending_evicted},
+            last_checkpoint=last_checkpoint,
+            loop_time=time.time(),
+            writable=writable,
+        )
+
+
+class Board:
+    """Where the loop leaves its latest snapshot and observes its timings."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.registry = registry
+        self.snapshot = Snapshot(loop_time=time.time())
+        self.batch_seconds = Histogram(
+            "oddsmill_batch_seconds", "Time to process one block of messages.", registry=registry
+        )
+        self.score_latency = Histogram(
+            "oddsmill_score_latency_seconds",
+            "From a message's arrival to its score being published.",
+            buckets=(0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0),
+            registry=registry,
+        )
+        registry.register(SnapshotCollector(self))
+
+        self.heartbeat = time.time()  # set by the loop every time it comes round
+
+    def healthy(self) -> bool:
+        return self.snapshot.writable and time.time() - self.heartbeat < STUCK_SECONDS
+
+
+class SnapshotCollector(Collector):
+    def __init__(self, board: Board) -> None:
+        self.board = board
+
+    def collect(self) -> Iterator[Metric]:
+        s = self.board.snapshot
+        ev = CounterMetricFamily("oddsmill_events", "Events received, by kind.", labels=["kind"])
+        for kind in ("train", "score", "outcome"):
+            ev.add_metric([kind], s.events.get(kind, 0))
+        yield ev
+        rej = CounterMetricFamily("oddsmill_events_rejected", "Messages rejected, by reason.", labels=["reason"])
+        for reason in REASONS:
+            rej.add_metric([reason], s.rejected.get(reason, 0))
+        yield rej
+        yield CounterMetricFamily(
+            "oddsmill_events_lost", "Sequence gaps seen (messages that never arrived).", value=s.lost
+        )
+        yield CounterMetricFamily("oddsmill_updates", "Events learned.", value=s.step)
+        yield CounterMetricFamily("oddsmill_log_loss_sum", "Sum of progressive log-loss.", value=s.log_loss_sum)
+        yield CounterMetricFamily(
+            "oddsmill_log_loss_count", "Labelled events in the progressive log-loss.", value=s.log_loss_count
+        )
+        gauges = [
+            ("oddsmill_log_loss", "Progressive mean log-loss since the state was created.", s.log_loss),
+            ("oddsmill_log_loss_window", "Mean log-loss over the last labelled events.", s.log_loss_window),
+            ("oddsmill_brier_window", "Brier score over the last labelled events.", s.brier_window),
+            (
+                "oddsmill_calibration_error_window",
+                "Expected calibration error over the last labelled events.",
+                s.calibration_error_window,
+            ),
+            ("oddsmill_learning_rate", "The current learning rate eta_t.", s.learning_rate),
+            ("oddsmill_features", "Vocabulary size.", float(s.features)),
+            ("oddsmill_pending_outcomes", "Scoring requests awaiting their outcome.", float(s.pending_outcomes)),
+            (
+                "oddsmill_checkpoint_last_success_timestamp_seconds",
+                "When the last checkpoint was written.",
+                s.last_checkpoint,
+            ),
+        ]
+        for name, doc, value in gauges:
+            yield GaugeMetricFamily(name, doc, value=value)
+        dropped = CounterMetricFamily(
+            "oddsmill_pending_dropped", "Held scoring requests dropped, by cause.", labels=["why"]
+        )
+        for why in ("expired", "evicted"):
+            dropped.add_metric([why], s.pending_dropped.get(why, 0))
+        yield dropped
+
+
+def status(board: Board) -> dict[str, Any]:
+    """The /api/status document: the same values as the metrics, and the calibration bins."""
+    doc = asdict(board.snapshot)
+    doc["healthy"] = board.healthy()
+    return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in doc.items()}
+
+
+def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer, threading.Thread]:
+    """Start the HTTP endpoints in a daemon thread; returns the server (its port is bound)."""
+
+    class Handler(BaseHTTPRequestHandler):
+        def do_GET(self) -> None:  # noqa: N802 (the name http.server calls)
+            path = self.path.split("?", 1)[0]
+            if path == "/metrics":
+                self._send(200, CONTENT_TYPE_LATEST, generate_latest(board.registry))
+            elif path == "/healthz":
+                ok = board.healthy()
+                self._send(200 if ok else 503, "text/plain; charset=utf-8", b"ok\n" if ok else b"unhealthy\n")
+            elif path == "/api/status":
+                self._send(200, "application/json", json.dumps(status(board)).encode())
+            elif path == "/":
+                self._send(
+                    200, "text/plain; charset=utf-8", b"oddsmill: /metrics (Prometheus), /api/status (JSON), /healthz\n"
+                )
+            else:
+                self._send(404, "text/plain; charset=utf-8", b"not found\n")
+
+        def _send(self, code: int, ctype: str, body: bytes) -> None:
+            self.send_response(code)
+            self.send_header("Content-Type", ctype)
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, format: str, *args: Any) -> None:  # noqa: A002 (the base class's name)
+            pass
+
+    httpd = ThreadingHTTPServer((host, port), Handler)
+    httpd.daemon_threads = True
+    thread = threading.Thread(target=httpd.serve_forever, name="oddsmill-http", daemon=True)
+    thread.start()
+    return httpd, thread
