@@ -11,6 +11,7 @@ import logging
 import math
 import sys
 import tomllib
+from collections.abc import Iterator
 from dataclasses import fields
 from pathlib import Path
 from typing import Any
@@ -335,6 +336,71 @@ def cmd_serve(args: argparse.Namespace) -> int:
     return 0
 
 
+# -- send and listen ---------------------------------------------------------------------------------
+def _stdin_bodies() -> Iterator[tuple[float, Any, str]]:
+    for n, line in enumerate(sys.stdin, 1):
+        if line.strip():
+            try:
+                yield 0.0, json.loads(line), f"stdin:{n}"
+            except json.JSONDecodeError as e:
+                raise InputFileError("stdin", n, f"not JSON ({e.msg} at column {e.colno})") from None
+
+
+def cmd_send(args: argparse.Namespace) -> int:
+    import time
+
+    from oddsmill_client import Producer
+
+    from .logs import read_bodies
+
+    if args.rate < 0:
+        raise UsageError(f"--rate must be >= 0, got {args.rate}")
+    source = _stdin_bodies() if args.file == "-" else read_bodies([args.file])
+    t0 = time.monotonic()
+    sent = 0
+    with Producer(args.to, kind=args.kind, src=args.src, batch=args.batch) as out:
+        for _, body, where in source:
+            if not isinstance(body, dict):
+                raise InputFileError(where, None, "a message must be a map")
+            out.send(body)
+            sent += 1
+            if args.rate:
+                ahead = sent / args.rate - (time.monotonic() - t0)
+                if ahead > 0:
+                    time.sleep(ahead)
+    print(f"sent {sent:,} events to {args.to} in {time.monotonic() - t0:.1f} s", file=sys.stderr)
+    return 0
+
+
+def cmd_listen(args: argparse.Namespace) -> int:
+    from oddsmill_client import ScoreSubscriber
+    from oddsmill_client.subscriber import decode_columns
+
+    received = 0
+    with ScoreSubscriber(args.source) as scores:
+        while args.count is None or received < args.count:
+            try:
+                topic, body = scores.receive(timeout=args.timeout)
+            except TimeoutError:
+                break
+            received += 1
+            if isinstance(body.get("p"), bytes):
+                body = decode_columns(body)
+            if args.json:
+                print(json.dumps({"topic": topic, **body}), flush=True)
+            elif topic == "rejects":
+                print(f"rejected {body.get('id')!s:>12}  {body['reason']}: {body['detail']}", flush=True)
+            elif "batch" in body:
+                for s in body["batch"]:
+                    print(f"{s['id']!s:>12}  p={s['p']:.4f}  step={s['step']}", flush=True)
+            elif isinstance(body.get("p"), list):
+                for ident, p in zip(body["id"] or [None] * len(body["p"]), body["p"], strict=True):
+                    print(f"{ident!s:>12}  p={p:.4f}  step={body['step']}", flush=True)
+            else:
+                print(f"{body['id']!s:>12}  p={body['p']:.4f}  step={body['step']}", flush=True)
+    return 0
+
+
 # -- demo ----------------------------------------------------------------------------------------
 def cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
@@ -389,6 +455,22 @@ def build_parser() -> argparse.ArgumentParser:
     )
     _learner_options(s)
     s.set_defaults(func=cmd_serve)
+
+    se = sub.add_parser("send", help="stream JSON Lines or a journal to a daemon")
+    se.add_argument("file", nargs="?", default="-", metavar="FILE", help="a .jsonl(.gz) file, a journal, or - (stdin)")
+    se.add_argument("--to", default="tcp://127.0.0.1:7571", metavar="ADDR")
+    se.add_argument("--kind", choices=["pub", "push"], default="pub", help="push for a daemon with --ingest-kind pull")
+    se.add_argument("--rate", type=float, default=0.0, help="events a second (0: as fast as possible)")
+    se.add_argument("--src", default=None, help="number the messages under this producer name")
+    se.add_argument("--batch", type=int, default=1, help="events a message")
+    se.set_defaults(func=cmd_send)
+
+    li = sub.add_parser("listen", help="print live scores")
+    li.add_argument("--from", dest="source", default="tcp://127.0.0.1:7572", metavar="ADDR")
+    li.add_argument("--json", action="store_true", help="one JSON object a line")
+    li.add_argument("--count", type=int, default=None, help="stop after this many messages")
+    li.add_argument("--timeout", type=float, default=None, help="stop after this many seconds of silence")
+    li.set_defaults(func=cmd_listen)
 
     d = sub.add_parser("demo", help="the whole job on the parcel demo data, ending in a summary")
     d.add_argument("--data", help="a demo log other than the bundled one")

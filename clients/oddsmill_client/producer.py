@@ -1,0 +1,121 @@
+"""Producer: sends ingest bodies (PROTOCOL 2) to a daemon over ZeroMQ."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import msgpack
+import numpy as np
+import zmq
+
+
+class Producer:
+    """Streams events to an oddsmill daemon.
+
+    `kind="pub"` (the default) connects an XPUB to the daemon's SUB and waits, up to
+    `wait_for_daemon` seconds, until the daemon's subscription has arrived before the first send: a
+    plain PUB would drop the first messages while the connection is being made (ZeroMQ's slow
+    joiner). `kind="push"` connects a PUSH to a daemon started with `ingest_kind = "pull"`: nothing is
+    dropped, and `send` blocks while the daemon is behind.
+
+    With `src`, events are numbered (`src`, `seq` from 0; each event of a batch, and each columnar
+    block, has its own number) so the daemon can count what was lost and drop repeats. With
+    `batch > 1`, events are sent `batch` at a time as `{"batch": [...]}`; `flush` sends what is
+    waiting, and `close` flushes.
+    """
+
+    def __init__(
+        self,
+        address: str = "tcp://127.0.0.1:7571",
+        *,
+        kind: str = "pub",
+        src: str | None = None,
+        topic: str = "events",
+        batch: int = 1,
+        wait_for_daemon: float = 10.0,
+        context: zmq.Context[Any] | None = None,
+    ) -> None:
+        if kind not in ("pub", "push"):
+            raise ValueError(f"kind must be pub or push, got {kind!r}")
+        if batch < 1:
+            raise ValueError(f"batch must be >= 1, got {batch}")
+        self._ctx = context or zmq.Context.instance()
+        self._sock = self._ctx.socket(zmq.XPUB if kind == "pub" else zmq.PUSH)
+        self._sock.setsockopt(zmq.LINGER, 2000)  # close waits this long for queued messages
+        self._sock.connect(address)
+        self._topic = topic.encode()
+        self._src = src
+        self._seq = 0
+        self._batch = batch
+        self._pending: list[dict[str, Any]] = []
+        self.sent = 0
+        if kind == "pub":
+            self._await_subscription(wait_for_daemon)
+
+    def _await_subscription(self, timeout: float) -> None:
+        deadline = time.monotonic() + timeout
+        while True:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                self._sock.close(0)
+                raise TimeoutError(f"no daemon subscribed within {timeout:g} s")
+            if self._sock.poll(int(left * 1000) + 1, zmq.POLLIN):
+                message = self._sock.recv()
+                if message[:1] == b"\x01" and self._topic.startswith(message[1:]):
+                    return
+
+    def _envelope(self, body: dict[str, Any]) -> dict[str, Any]:
+        if self._src is not None:
+            body = {**body, "src": self._src, "seq": self._seq}
+            self._seq += 1
+        return body
+
+    def _send(self, body: dict[str, Any]) -> None:
+        self._sock.send_multipart([self._topic, msgpack.packb(body, use_bin_type=True)])
+        self.sent += 1
+
+    def send(self, event: Mapping[str, Any]) -> None:
+        """Send one event (a training event, a scoring request or an outcome)."""
+        if self._batch == 1:
+            self._send(self._envelope(dict(event)))
+            return
+        self._pending.append(self._envelope(dict(event)))  # each event of a batch has its own number
+        if len(self._pending) >= self._batch:
+            self.flush()
+
+    def flush(self) -> None:
+        """Send the events waiting in a batch."""
+        if self._pending:
+            body, self._pending = {"batch": self._pending}, []
+            self._send(body)
+
+    def send_columns(
+        self,
+        cols: Sequence[str],
+        rows: np.ndarray,
+        y: Sequence[int | None] | None = None,
+        ids: Sequence[str | int] | None = None,
+    ) -> None:
+        """Send a columnar block of numeric features: `rows` is n x len(cols)."""
+        matrix = np.ascontiguousarray(rows, dtype="<f8")
+        if matrix.ndim != 2 or matrix.shape[1] != len(cols):
+            raise ValueError(f"rows must be n x {len(cols)}, got shape {matrix.shape}")
+        body: dict[str, Any] = {"cols": list(cols), "rows": matrix.tobytes()}
+        if y is not None:
+            body["y"] = bytes(255 if v is None else int(v) for v in y)
+        if ids is not None:
+            body["id"] = list(ids)
+        self.flush()
+        self._send(self._envelope(body))
+
+    def close(self) -> None:
+        self.flush()
+        self._sock.close()
+
+    def __enter__(self) -> Producer:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()

@@ -1,0 +1,118 @@
+"""The client library against a live daemon: no first-message loss, numbering, batches, columns."""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import zmq
+from oddsmill.server import Server, ServerSettings
+from oddsmill.settings import LearnerSettings
+from oddsmill_client import Producer, ScoreSubscriber
+from oddsmill_client.subscriber import decode_columns
+
+from tests.conftest import sparse_stream
+
+
+@pytest.fixture
+def daemon(tmp_path: Path) -> Iterator[tuple[Server, zmq.Context[Any]]]:
+    settings = ServerSettings(state_dir=tmp_path, ingest="tcp://127.0.0.1:*", scores="tcp://127.0.0.1:*", http="off")
+    server = Server(settings, LearnerSettings())
+    stop = threading.Event()
+    ctx: zmq.Context[Any] = zmq.Context()
+    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
+    thread.start()
+    assert server.ready.wait(10)
+    yield server, ctx
+    stop.set()
+    thread.join(10)
+    ctx.term()
+
+
+def ready_subscriber(server: Server, ctx: zmq.Context[Any]) -> ScoreSubscriber:
+    """A subscriber whose subscription has reached the daemon: a probe's score came back."""
+    sub = ScoreSubscriber(server.bound["scores"], context=ctx)
+    with Producer(server.bound["ingest"], context=ctx) as probe:
+        for _ in range(100):
+            probe.send({"x": {"probe": 1.0}})
+            try:
+                sub.receive(timeout=0.1)
+                break
+            except TimeoutError:
+                continue
+        else:
+            raise AssertionError("no score for a probe")
+    while True:  # drain the answers to extra probes
+        try:
+            sub.receive(timeout=0.3)
+        except TimeoutError:
+            return sub
+
+
+def test_a_pub_producer_loses_none_of_its_first_messages(daemon) -> None:  # type: ignore[no-untyped-def]
+    server, ctx = daemon
+    sub = ready_subscriber(server, ctx)
+    events = sparse_stream(300, seed=4)
+    # the producer is new: without waiting for the daemon's subscription its first sends would drop
+    with Producer(server.bound["ingest"], src="depot-7", context=ctx) as out:
+        for i, (x, y) in enumerate(events):
+            out.send({"id": i, "x": x, "y": y})
+    got = [sub.receive(timeout=10)[1]["id"] for _ in events]
+    assert got == list(range(300))
+    assert server.engine.counters.lost == 0
+    sub.close()
+
+
+def test_numbering_drops_repeats_and_counts_gaps(daemon) -> None:  # type: ignore[no-untyped-def]
+    server, ctx = daemon
+    sub = ready_subscriber(server, ctx)
+    with Producer(server.bound["ingest"], context=ctx) as out:
+        for seq in (0, 1, 1, 4):  # a repeat of 1, then 2 and 3 never arrive
+            out._send({"x": {"a": 1.0}, "y": 1, "src": "scanner-2", "seq": seq})
+    answers = [sub.receive(timeout=10) for _ in range(4)]
+    rejects = [b for t, b in answers if t == "rejects"]
+    assert [r["reason"] for r in rejects] == ["duplicate"]
+    assert server.engine.counters.lost == 2
+    sub.close()
+
+
+def test_batches_and_columnar_blocks(daemon) -> None:  # type: ignore[no-untyped-def]
+    server, ctx = daemon
+    sub = ready_subscriber(server, ctx)
+    with Producer(server.bound["ingest"], batch=10, context=ctx) as out:
+        for i in range(25):
+            out.send({"id": f"b{i}", "x": {"route_km": float(i)}})
+    sizes = [len(sub.receive(timeout=10)[1]["batch"]) for _ in range(3)]
+    assert sizes == [10, 10, 5]
+    rows = np.arange(12.0).reshape(4, 3)
+    with Producer(server.bound["ingest"], context=ctx) as out:
+        out.send_columns(["route_km", "stops", "weight_kg"], rows, y=[1, None, 0, 1], ids=[1, 2, 3, 4])
+    topic, body = sub.receive(timeout=10)
+    block = decode_columns(body)
+    assert topic == "scores" and block["id"] == [1, 2, 3, 4] and len(block["p"]) == 4
+    assert all(0.0 < p < 1.0 for p in block["p"])
+    sub.close()
+
+
+def test_send_command_streams_a_log(daemon, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    import json
+    import time
+
+    from oddsmill.cli import main
+
+    server, ctx = daemon
+    log = tmp_path / "dispatches.jsonl"
+    events = sparse_stream(400, seed=6)
+    with open(log, "w") as f:
+        for x, y in events:
+            f.write(json.dumps({"x": x, "y": y}) + "\n")
+    assert main(["send", str(log), "--to", server.bound["ingest"], "--src", "backfill", "--batch", "50"]) == 0
+    deadline = time.monotonic() + 10
+    while server.engine.learner.step < len(events) and time.monotonic() < deadline:
+        time.sleep(0.05)  # waiting on another thread's progress, with a hard deadline
+    assert server.engine.learner.step == len(events)
+    assert server.engine.counters.lost == 0
