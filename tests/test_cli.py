@@ -142,7 +142,7 @@ def test_demo_summary_agrees_with_the_fit(capsys) -> None:  # type: ignore[no-un
 
     buf = io.StringIO()
     with redirect_stdout(buf):
-        assert run_demo(argparse.Namespace(data=None), out=buf) == 0
+        assert run_demo(argparse.Namespace(data=None, keep_running=False), out=buf) == 0
     text = buf.getvalue()
     res, _ = fit_logs([str(DEMO)], LearnerSettings())
     assert f"log-loss {res.log_loss:.4f}" in text

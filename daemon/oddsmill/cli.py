@@ -474,6 +474,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser("demo", help="the whole job on the parcel demo data, ending in a summary")
     d.add_argument("--data", help="a demo log other than the bundled one")
+    d.add_argument(
+        "--keep-running",
+        dest="keep_running",
+        action="store_true",
+        help="leave the daemon up after the summary (Ctrl-C stops it)",
+    )
     d.set_defaults(func=cmd_demo)
     return p
 

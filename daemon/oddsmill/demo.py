@@ -1,28 +1,38 @@
-"""`oddsmill demo`: the learner's whole job on the parcel demo data, ending in a summary.
+"""`oddsmill demo`: the whole job on the parcel demo data, through a live daemon, in one command.
 
-Streams the eight weeks of dispatches and delivery outcomes through the same engine the daemon
-runs (each parcel scored at dispatch, learned when its outcome arrives), day by day, then shows how
-the score quality moved week by week (the snow week stands out), how close the online model came
-to the batch optimum on the same events, and the strongest effects as odds ratios.
+Starts a daemon on free loopback ports with a fresh state directory, streams eight weeks of parcel
+dispatches and their delivery outcomes through the client library day by day (waiting for each
+day's scores before the next, so nothing is dropped), and ends with a summary: the weekly log-loss
+of the scores the daemon published (the snow week stands out), the progressive and windowed figures
+the daemon reports, the batch optimum on the same parcels, and the strongest effects.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import math
 import sys
 import tempfile
+import threading
 import time
+import urllib.request
 from pathlib import Path
 from typing import Any
 
+import zmq
+from oddsmill_client import Producer, ScoreSubscriber
+
 from .demo_data import SNOW_DAYS, START, generate, to_jsonl_gz
 from .engine import Engine
-from .learner import Learner
-from .offline import Progress, fit_logs, read_items
+from .logs import read_bodies
+from .offline import fit_logs
+from .server import Server, ServerSettings
 from .settings import LearnerSettings
-from .storage import write_checkpoint
+from .storage import load_newest
 
 BUNDLED = Path(__file__).resolve().parents[2] / "replay_data" / "parcels.jsonl.gz"
+BATCH = 50  # events a message
 
 
 def demo_log(workdir: Path) -> Path:
@@ -34,93 +44,140 @@ def demo_log(workdir: Path) -> Path:
     return path
 
 
+def _days(log: Path) -> list[list[dict[str, Any]]]:
+    days: dict[int, list[dict[str, Any]]] = {}
+    for _, body, _ in read_bodies([str(log)]):
+        days.setdefault(int((body["ts"] - START) // 86400), []).append(body)
+    return [days[d] for d in sorted(days)]
+
+
 def run_demo(args: argparse.Namespace, out: Any = None) -> int:
     out = out or sys.stdout
     work = Path(tempfile.mkdtemp(prefix="oddsmill-demo-"))
     log = Path(args.data) if args.data else demo_log(work)
-    settings = LearnerSettings()
-    engine = Engine(Learner(settings))
-    print(
-        f"oddsmill demo: a parcel courier scores each dispatch for the chance it misses its "
-        f"delivery window;\nthe outcome arrives hours later. Log: {log}",
-        file=out,
-    )
-    bar = Progress(engine, "streaming")
-    t0 = time.monotonic()
-    weeks: dict[int, list[float]] = {}  # week -> [log-loss sum, count, sum of y]
-    day_items: list[tuple[float, Any]] = []
-    current_day = None
-
-    def flush() -> None:
-        if not day_items:
-            return
-        before_sum, before_n = engine.metrics.sum, engine.metrics.count
-        engine.process(day_items)
-        week = int(current_day or 0) // 7 + 1
-        w = weeks.setdefault(week, [0.0, 0.0, 0.0])
-        w[0] += engine.metrics.sum - before_sum
-        w[1] += engine.metrics.count - before_n
-        w[2] += sum(1 for _, it in day_items if getattr(it, "x", 1) is None and getattr(it, "y", 0) == 1)
-        day_items.clear()
-        bar(0)
-
-    for arrival, item in read_items([str(log)]):
-        ts = getattr(item, "ts", None) or arrival
-        day = (ts - START) // 86400
-        if current_day is not None and day != current_day:
-            flush()
-        current_day = day
-        day_items.append((arrival, item))
-    flush()
-    bar.done()
-    seconds = time.monotonic() - t0
     state = work / "state"
-    ckpt = write_checkpoint(
-        state,
-        engine.learner.step,
-        {
-            "kind": "oddsmill-state",
-            "created": time.time(),
-            "engine": engine.state_dict(),
-            "journal": None,
-        },
+    settings = LearnerSettings()
+    server = Server(
+        ServerSettings(state_dir=state, ingest="tcp://127.0.0.1:*", scores="tcp://127.0.0.1:*", http="127.0.0.1:0"),
+        settings,
     )
-    res, _ = fit_logs([str(log)], settings)
-    m = engine.metrics
+    stop = threading.Event()
+    ctx: zmq.Context[Any] = zmq.Context()
+    thread = threading.Thread(target=server.serve, args=(stop, ctx), name="oddsmill-daemon", daemon=True)
+    thread.start()
+    if not server.ready.wait(30):
+        print("oddsmill demo: the daemon did not start", file=sys.stderr)
+        return 1
+    http = f"http://{server.bound['http']}"
     print(
-        f"\nlearned {engine.learner.step:,} parcels ({engine.counters.score:,} dispatches scored) in {seconds:.1f} s",
+        f"oddsmill demo: a parcel courier scores each dispatch for the chance it misses its delivery\n"
+        f"window; the outcome arrives hours later. Daemon: ingest {server.bound['ingest']}, scores "
+        f"{server.bound['scores']}\nfigures: {http}/api/status   metrics: {http}/metrics",
         file=out,
     )
-    print("\nweek  parcels delivered  late share  log-loss of the scores", file=out)
+    tty = bool(getattr(sys.stderr, "isatty", lambda: False)())
+    published: dict[Any, float] = {}  # id -> p, as the daemon published it
+    weeks: dict[int, list[float]] = {}  # week -> [log-loss sum, parcels, late]
+    t0 = time.monotonic()
+    with (
+        ScoreSubscriber(server.bound["scores"], topics=("scores",), context=ctx) as scores,
+        Producer(server.bound["ingest"], src="demo", batch=BATCH, context=ctx) as producer,
+    ):
+        _handshake(producer, scores)
+        for day, bodies in enumerate(_days(log)):
+            want = len(published) + sum(1 for b in bodies if "x" in b)
+            for body in bodies:
+                producer.send(body)
+            producer.flush()
+            while len(published) < want:
+                _, answer = scores.receive(timeout=30)
+                for s in answer.get("batch", [answer]):
+                    if s.get("id") is not None:
+                        published[s["id"]] = s["p"]
+            # each outcome against the score the daemon published for its dispatch
+            for body in bodies:
+                if "y" in body and "x" not in body:
+                    p, y = published[body["id"]], body["y"]
+                    w = weeks.setdefault(day // 7 + 1, [0.0, 0.0, 0.0])
+                    w[0] -= math.log(p if y else 1.0 - p)
+                    w[1] += 1
+                    w[2] += y
+            if tty:
+                done = sum(w[1] for w in weeks.values())
+                rate = (len(published) + done) / (time.monotonic() - t0)
+                ll = sum(w[0] for w in weeks.values()) / max(done, 1)
+                sys.stderr.write(
+                    f"\rday {day + 1}  {len(published):,} parcels scored  {rate:,.0f} events/s  log-loss {ll:.4f}   "
+                )
+                sys.stderr.flush()
+    if tty:
+        sys.stderr.write("\n")
+    seconds = time.monotonic() - t0
+    status = _status(http, server)
+    if not args.keep_running:
+        stop.set()
+        thread.join(30)
+    found = load_newest(state)
+    engine = Engine.from_state_dict(found[0]["engine"]) if found else server.engine
+    res, _ = fit_logs([str(log)], settings)
+    print(f"\nstreamed {len(published):,} dispatches and their outcomes in {seconds:.1f} s", file=out)
+    print("\nweek  parcels delivered  late share  log-loss of the published scores", file=out)
     snow_week = SNOW_DAYS[0] // 7 + 1
     for week, (s, n, late) in sorted(weeks.items()):
-        if n:
-            mark = (
-                "  <- a week of snow: late deliveries jump, the scores lag"
-                if week == snow_week
-                else ("  (outcomes after the last dispatch day)" if week > max(weeks) - 1 and n < 1000 else "")
-            )
-            print(f"{week:>4}  {int(n):>17,}  {late / n:>10.1%}  {s / n:>10.4f}{mark}", file=out)
+        mark = "  <- a week of snow: late deliveries jump, the scores lag" if week == snow_week else ""
+        if week == max(weeks) and week > snow_week + 2:
+            mark = "  (the last outcomes, delivered after the final dispatch day)"
+        print(f"{week:>4}  {int(n):>17,}  {late / n:>10.1%}  {s / n:>10.4f}{mark}", file=out)
     print(
-        f"\nprogressive log-loss (every parcel scored before its outcome was learned): {m.log_loss:.4f}",
+        f"\nprogressive log-loss (every parcel scored before its outcome was learned): {status['log_loss']:.4f}",
         file=out,
     )
     print(
-        f"last {min(m.count, m.window):,} parcels: log-loss {m.log_loss_window:.4f}, "
-        f"Brier {m.brier_window:.4f}, calibration error {m.calibration_error_window:.4f}",
+        f"last {min(int(status['log_loss_count']), 10_000):,} parcels: log-loss {status['log_loss_window']:.4f}, "
+        f"Brier {status['brier_window']:.4f}, calibration error {status['calibration_error_window']:.4f}",
         file=out,
     )
-    print(
-        f"batch optimum on the same parcels (Newton fit, in-sample): log-loss {res.log_loss:.4f}",
-        file=out,
-    )
+    print(f"batch optimum on the same parcels (Newton fit, in-sample): log-loss {res.log_loss:.4f}", file=out)
     c = engine.learner.coefficients()
     _, scale = engine.learner.scales()
     order = sorted(range(len(c.names)), key=lambda j: -abs(c.coefs[j] * scale[j]))[:6]
     print("\nstrongest effects (odds ratio per unit as sent):", file=out)
-    import math
-
     for j in order:
         print(f"  {c.names[j]:<22} x{math.exp(c.coefs[j]):.3f}", file=out)
-    print(f"\ncheckpoint: {ckpt}\nlook inside: oddsmill inspect {state}", file=out)
+    print(f"\nstate: {state}\nlook inside: oddsmill inspect {state}", file=out)
+    if args.keep_running:
+        print(f"the daemon keeps running ({http}/api/status); Ctrl-C stops it", file=out)
+        try:
+            while thread.is_alive():
+                thread.join(0.5)
+        except KeyboardInterrupt:
+            stop.set()
+            thread.join(30)
+    ctx.term()
     return 0
+
+
+def _handshake(producer: Producer, scores: ScoreSubscriber) -> None:
+    """Wait until the subscription reaches the daemon: a probe without an id is answered."""
+    for _ in range(300):
+        producer._send({"x": {"probe": 1.0}})
+        try:
+            scores.receive(timeout=0.1)
+            break
+        except TimeoutError:
+            continue
+    while True:
+        try:
+            scores.receive(timeout=0.3)
+        except TimeoutError:
+            return
+
+
+def _status(http: str, server: Server) -> dict[str, Any]:
+    """The daemon's figures once it has caught up with every learned event."""
+    deadline = time.monotonic() + 10
+    while True:
+        doc: dict[str, Any] = json.loads(urllib.request.urlopen(f"{http}/api/status", timeout=5).read())
+        if doc["step"] == server.engine.learner.step or time.monotonic() > deadline:
+            return doc
+        time.sleep(0.05)
