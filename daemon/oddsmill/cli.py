@@ -79,14 +79,7 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
     values: dict[str, Any] = {}
     window = 10_000
     if args.config:
-        try:
-            with open(args.config, "rb") as f:
-                doc = tomllib.load(f)
-        except OSError as e:
-            raise ConfigError(f"{args.config}: cannot read ({e.strerror})") from None
-        except tomllib.TOMLDecodeError as e:
-            raise ConfigError(f"{args.config}: not valid TOML ({e})") from None
-        table = doc.get("learner", {})
+        table = read_config(args.config).get("learner", {})
         known = {f.name for f in fields(LearnerSettings)} | {"window"}
         for key, value in table.items():
             if key not in known:
@@ -104,6 +97,21 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
     if isinstance(window, bool) or not isinstance(window, int) or window < 1:
         raise ConfigError(f"window must be an integer >= 1, got {window!r}")
     return LearnerSettings(**values), "average_start" in values, window
+
+
+def read_config(path: str) -> dict[str, Any]:
+    """The TOML file of --config: a [learner] table and, for serve, a [server] table."""
+    try:
+        with open(path, "rb") as f:
+            doc = tomllib.load(f)
+    except OSError as e:
+        raise ConfigError(f"{path}: cannot read ({e.strerror})") from None
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError(f"{path}: not valid TOML ({e})") from None
+    for key, value in doc.items():
+        if key not in ("learner", "server") or not isinstance(value, dict):
+            raise ConfigError(f"{path}: unknown table or key {key!r}; the file has [learner] and [server] tables")
+    return doc
 
 
 # -- replay ----------------------------------------------------------------------------------------
@@ -305,25 +313,87 @@ def cmd_inspect(args: argparse.Namespace) -> int:
 
 
 # -- serve -------------------------------------------------------------------------------------------
+SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
+    "state": str,
+    "ingest": str,
+    "ingest_kind": str,
+    "scores": str,
+    "http": str,
+    "warm_start": list,
+    "checkpoint_events": int,
+    "checkpoint_seconds": float,
+    "segment_bytes": int,
+    "block_max": int,
+    "pending_limit": int,
+    "pending_ttl": float,
+    "allow_insecure_bind": bool,
+    "journal_keep": int,
+}
+
+
+def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None]:
+    """(ServerSettings, LearnerSettings, warm-start logs) from defaults, the [server] table, flags."""
+    from .server import ServerSettings
+
+    learner, _, window = learner_settings(args)
+    values: dict[str, Any] = {"state": "state", "warm_start": None}
+    if args.config:
+        for key, value in read_config(args.config).get("server", {}).items():
+            kind = SERVER_KEYS.get(key)
+            if kind is None:
+                raise ConfigError(
+                    f"{args.config}: unknown setting server.{key}; known: {', '.join(sorted(SERVER_KEYS))}"
+                )
+            ok = isinstance(value, kind) and not (kind is not bool and isinstance(value, bool))
+            if kind is float and isinstance(value, int) and not isinstance(value, bool):
+                ok = True
+            if not ok:
+                raise ConfigError(f"{args.config}: server.{key} must be {kind.__name__}, got {value!r}")
+            values[key] = value
+    for key in SERVER_KEYS:
+        flag = getattr(args, key, None)
+        if flag is not None and flag is not False:
+            values[key] = flag
+    state = values.pop("state")
+    warm = values.pop("warm_start")
+    return ServerSettings(state_dir=Path(state), window=window, **values), learner, warm
+
+
+def print_config(server: Any, learner: Any) -> None:
+    """The effective configuration as TOML (what --config reads)."""
+
+    def toml(v: Any) -> str:
+        if isinstance(v, bool):
+            return "true" if v else "false"
+        if isinstance(v, str | Path):
+            return json.dumps(str(v))
+        if isinstance(v, list):
+            return "[" + ", ".join(toml(x) for x in v) + "]"
+        return repr(v)
+
+    print("[learner]")
+    for key, value in learner.to_dict().items():
+        if value is not None:  # TOML has no nil: an absent decay means a = l2
+            print(f"{key} = {toml(value)}")
+    print(f"window = {server.window}")
+    print("\n[server]")
+    print(f"state = {toml(server.state_dir)}")
+    for f in fields(server):
+        if f.name not in ("state_dir", "window", "topic"):
+            print(f"{f.name} = {toml(getattr(server, f.name))}")
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from .server import Server, ServerSettings
+    from .server import Server
 
-    learner, _, window = learner_settings(args)
-    settings = ServerSettings(
-        state_dir=Path(args.state),
-        ingest=args.ingest,
-        ingest_kind=args.ingest_kind,
-        scores=args.scores,
-        checkpoint_events=args.checkpoint_events,
-        checkpoint_seconds=args.checkpoint_seconds,
-        window=window,
-        allow_insecure_bind=args.allow_insecure_bind,
-        http=args.http,
-    )
-    server = Server(settings, learner, args.warm_start)
+    settings, learner, warm = serve_settings(args)
+    if args.print_config:
+        print_config(settings, learner)
+        return 0
+    server = Server(settings, learner, warm)
     stop = threading.Event()
 
     def on_signal(signum: int, _frame: object) -> None:
@@ -434,24 +504,36 @@ def build_parser() -> argparse.ArgumentParser:
     i.set_defaults(func=cmd_inspect)
 
     s = sub.add_parser("serve", help="run the daemon: learn from a live stream, publish scores")
-    s.add_argument("--state", default="state", metavar="DIR", help="checkpoints and journal (default ./state)")
-    s.add_argument("--ingest", default="tcp://127.0.0.1:7571", metavar="ADDR")
-    s.add_argument("--ingest-kind", dest="ingest_kind", choices=["sub", "pull"], default="sub")
-    s.add_argument("--scores", default="tcp://127.0.0.1:7572", metavar="ADDR")
+    s.add_argument("--state", metavar="DIR", help="checkpoints and journal (default ./state)")
+    s.add_argument("--ingest", metavar="ADDR", help="default tcp://127.0.0.1:7571")
+    s.add_argument("--ingest-kind", dest="ingest_kind", choices=["sub", "pull"], help="default sub")
+    s.add_argument("--scores", metavar="ADDR", help="default tcp://127.0.0.1:7572")
+    s.add_argument("--http", metavar="HOST:PORT", help="/metrics, /healthz, /api/status (default 127.0.0.1:7573; off)")
+    s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG")
+    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, help="default 100000")
+    s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, help="default 60")
+    s.add_argument("--segment-bytes", dest="segment_bytes", type=int, help="journal segment size (default 64 MiB)")
     s.add_argument(
-        "--http",
-        default="127.0.0.1:7573",
-        metavar="HOST:PORT",
-        help="/metrics, /healthz and /api/status (default 127.0.0.1:7573; off for none)",
+        "--journal-keep",
+        dest="journal_keep",
+        type=int,
+        help="journal segments kept behind the oldest checkpoint (default: all)",
     )
-    s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG", default=None)
-    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, default=100_000)
-    s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, default=60.0)
+    s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
+    s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
+    s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")
     s.add_argument(
         "--allow-insecure-bind",
         dest="allow_insecure_bind",
         action="store_true",
+        default=None,
         help="let ZeroMQ sockets bind off loopback without authentication (logged)",
+    )
+    s.add_argument(
+        "--print-config",
+        dest="print_config",
+        action="store_true",
+        help="print the effective configuration as TOML and exit",
     )
     _learner_options(s)
     s.set_defaults(func=cmd_serve)

@@ -32,6 +32,7 @@ from .protocol import Columns, Item, decode_body, unpack
 from .settings import LearnerSettings
 from .storage import (
     JOURNAL_MAGIC,
+    KEEP,
     JournalWriter,
     list_journal,
     load_newest,
@@ -62,6 +63,7 @@ class ServerSettings:
     pending_ttl: float = 7 * 24 * 3600.0
     allow_insecure_bind: bool = False
     http: str = "127.0.0.1:7573"  # HOST:PORT of /metrics, /healthz and /api/status; "off" for none
+    journal_keep: int = -1  # segments kept behind the oldest checkpoint's position; -1 keeps them all
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
@@ -70,6 +72,11 @@ class ServerSettings:
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int) or v < 1:
                 raise ConfigError(f"{name} must be an integer >= 1, got {v!r}")
+        if isinstance(self.journal_keep, bool) or not isinstance(self.journal_keep, int) or self.journal_keep < -1:
+            raise ConfigError(f"journal_keep must be an integer >= -1 (-1 keeps all), got {self.journal_keep!r}")
+        for name in ("ingest", "scores", "http", "ingest_kind", "topic"):
+            if not isinstance(getattr(self, name), str):
+                raise ConfigError(f"{name} must be a string, got {getattr(self, name)!r}")
         for name in ("checkpoint_seconds", "pending_ttl"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
@@ -113,6 +120,7 @@ class Server:
     ) -> None:
         self.settings = settings
         self.engine, self.records, position = self._load(learner or LearnerSettings())
+        self._loaded_position = position
         self._replay_journal(position)
         if warm_start:
             from .offline import read_items, run_logs
@@ -120,6 +128,8 @@ class Server:
             run_logs(self.engine, read_items(warm_start))
             log.info("warm start: learned %d events from %s", self.engine.learner.step, ", ".join(warm_start))
         self.journal = self._open_journal()
+        # journal positions of the checkpoints on disk, oldest first (retention reads the oldest)
+        self.positions: list[dict[str, Any]] = [self._loaded_position] if self._loaded_position else []
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
         self.bound: dict[str, str] = {}
@@ -193,11 +203,24 @@ class Server:
             "journal": position,
         }
         path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
+        self.positions = (self.positions + [position])[-KEEP:]
+        self._retire_segments()
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
         self._refresh()
         log.info("checkpoint %s (step %d)", path.name, self.engine.learner.step)
         return path
+
+    def _retire_segments(self) -> None:
+        """Delete journal segments wholly before the oldest kept checkpoint, but `journal_keep`."""
+        keep = self.settings.journal_keep
+        if keep < 0 or not self.positions:
+            return
+        oldest = self.positions[0]["segment"]
+        behind = [p for p in list_journal(self.settings.state_dir) if p.name < oldest]
+        for path in behind[: len(behind) - keep] if keep else behind:
+            path.unlink(missing_ok=True)
+            log.info("retired journal segment %s", path.name)
 
     # -- the loop ----------------------------------------------------------------------------------
     def serve(self, stop: threading.Event, context: zmq.Context[Any] | None = None) -> None:

@@ -1,0 +1,128 @@
+"""serve's configuration, warm start, wire bytes and journal retention."""
+
+from __future__ import annotations
+
+import struct
+import threading
+import zlib
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import pytest
+import zmq
+from oddsmill.cli import main
+from oddsmill.engine import Score
+from oddsmill.server import Server, ServerSettings, _score_body
+from oddsmill.settings import LearnerSettings
+from oddsmill.storage import journal_record, list_journal, load_newest
+
+from tests.conftest import DEMO
+from tests.test_server import Client, bodies
+
+
+def test_print_config_reads_back_and_flags_win(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    cfg = tmp_path / "oddsmill.toml"
+    cfg.write_text('[learner]\nl2 = 0.001\n\n[server]\ningest_kind = "pull"\ncheckpoint_events = 500\n')
+    assert main(["serve", "--config", str(cfg), "--checkpoint-events", "700", "--print-config"]) == 0
+    printed = capsys.readouterr().out
+    assert "l2 = 0.001" in printed and 'ingest_kind = "pull"' in printed and "checkpoint_events = 700" in printed
+    again = tmp_path / "printed.toml"
+    again.write_text(printed)
+    assert main(["serve", "--config", str(again), "--print-config"]) == 0
+    assert capsys.readouterr().out == printed
+
+
+@pytest.mark.parametrize(
+    "text,flags,needle",
+    [
+        ("[server]\ningest_knd = 'pull'\n", [], "unknown setting server.ingest_knd"),
+        ("[server]\ncheckpoint_events = 'often'\n", [], "server.checkpoint_events must be int, got 'often'"),
+        ("[server]\nblock_max = 0\n", [], "block_max must be an integer >= 1, got 0"),
+        ("[servr]\n", [], "unknown table or key 'servr'"),
+        ("", ["--ingest", "tcp://0.0.0.0:7571"], "not a loopback address"),
+    ],
+)
+def test_bad_settings_are_refused_with_key_and_value(
+    tmp_path: Path, capsys, text: str, flags: list[str], needle: str
+) -> None:  # type: ignore[no-untyped-def]
+    cfg = tmp_path / "oddsmill.toml"
+    cfg.write_text(text)
+    assert main(["serve", "--config", str(cfg), "--print-config", *flags]) == 2
+    assert needle in capsys.readouterr().err
+
+
+def test_warm_start_equals_replay_then_serve(tmp_path: Path) -> None:
+    learner = LearnerSettings()
+    warm = Server(ServerSettings(state_dir=tmp_path / "warm", http="off"), learner, [str(DEMO)])
+    assert main(["replay", str(DEMO), "--state", str(tmp_path / "replayed")]) == 0
+    resumed = Server(ServerSettings(state_dir=tmp_path / "replayed", http="off"), learner)
+    a, b = warm.engine.state_dict(), resumed.engine.state_dict()
+    assert a["learner"]["scalars"].tobytes() == b["learner"]["scalars"].tobytes()
+    assert a["learner"]["slots"].tobytes() == b["learner"]["slots"].tobytes()
+    assert a["learner"]["names"] == b["learner"]["names"]
+    warm.journal.close()
+    resumed.journal.close()
+
+
+def test_score_body_bytes() -> None:
+    # Source: the msgpack specification (fixmap, fixstr, float 64 = 0xcb big-endian, positive fixint).
+    body = _score_body([Score("P1", 0.5, 3, 1.5)], "one")
+    p = 1 / (1 + 2.718281828459045**-0.5)
+    got = msgpack.packb(body)
+    expected = (
+        b"\x85\xa2id\xa2P1\xa1p\xcb"
+        + struct.pack(">d", body["p"])
+        + b"\xa5logit\xcb"
+        + struct.pack(">d", 0.5)
+        + b"\xa4step\x03\xa2ts\xcb"
+        + struct.pack(">d", 1.5)
+    )
+    assert got == expected
+    assert body["p"] == pytest.approx(p, rel=1e-15)
+
+
+def test_journal_record_bytes() -> None:
+    # PROTOCOL 6: u32 LE length | u32 LE CRC-32 of the payload | msgpack [arrival_time, body as received]
+    raw = msgpack.packb({"x": {"a": 1}})
+    payload = b"\x92\xcb" + struct.pack(">d", 12.5) + raw
+    assert journal_record(12.5, raw) == struct.pack("<II", len(payload), zlib.crc32(payload)) + payload
+
+
+def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
+    learner = LearnerSettings(scale_warmup=200)
+    settings = ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://127.0.0.1:*",
+        ingest_kind="pull",
+        scores="tcp://127.0.0.1:*",
+        http="off",
+        checkpoint_events=100,
+        segment_bytes=4096,
+        journal_keep=0,
+    )
+    server = Server(settings, learner)
+    stop = threading.Event()
+    ctx: zmq.Context[Any] = zmq.Context()
+    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
+    thread.start()
+    assert server.ready.wait(10)
+    client = Client(ctx, server.bound["ingest"], server.bound["scores"])
+    for chunk in range(6):
+        part = bodies(150, seed=10 + chunk)
+        for body in part:
+            client.send(body)
+        client.receive(sum(1 for b in part if "x" in b))  # one block at a time, so checkpoints fall between
+    stop.set()
+    thread.join(10)
+    client.close()
+    ctx.term()
+    state, newest = load_newest(tmp_path)  # type: ignore[misc]
+    segments = list_journal(tmp_path)
+    assert segments[0].name != "journal-000000000000.omj"  # the oldest segments were retired
+    # even without the newest checkpoint, the older one plus the journal kept behind it rebuild the state
+    newest.unlink()
+    again = Server(ServerSettings(state_dir=tmp_path, http="off"), learner)
+    assert again.engine.state_dict()["learner"]["slots"].tobytes() == state["engine"]["learner"]["slots"].tobytes()
+    assert again.engine.metrics.sum == state["engine"]["metrics"]["sum"]
+    again.journal.close()
