@@ -328,6 +328,8 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "pending_ttl": float,
     "allow_insecure_bind": bool,
     "journal_keep": int,
+    "fsync": str,
+    "fsync_ms": float,
 }
 
 
@@ -519,6 +521,12 @@ def build_parser() -> argparse.ArgumentParser:
         type=int,
         help="journal segments kept behind the oldest checkpoint (default: all)",
     )
+    s.add_argument(
+        "--fsync",
+        choices=["block", "interval", "os"],
+        help="fsync the journal every block, every --fsync-ms (default), or leave it to the OS",
+    )
+    s.add_argument("--fsync-ms", dest="fsync_ms", type=float, help="with --fsync interval (default 1000)")
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")

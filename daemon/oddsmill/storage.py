@@ -174,7 +174,12 @@ class JournalWriter:
     def append(self, arrival: float, raw_body: bytes) -> None:
         self._f.write(journal_record(arrival, raw_body))
 
+    def flush(self) -> None:
+        """Hand what was appended to the operating system: it survives the process dying."""
+        self._f.flush()
+
     def sync(self) -> None:
+        """flush, then fsync: it survives the machine losing power."""
         self._f.flush()
         os.fsync(self._f.fileno())
 
