@@ -40,3 +40,26 @@ def sparse_stream(n: int, seed: int) -> list[tuple[dict[str, object], int]]:
 @pytest.fixture(scope="session")
 def phishing_data() -> list[tuple[dict[str, float], int]]:
     return phishing()
+
+
+class RunningServer:
+    """A daemon serving in a thread of this process, on the ports its settings name."""
+
+    def __init__(self, settings, learner) -> None:  # type: ignore[no-untyped-def]
+        import threading
+
+        import zmq
+        from oddsmill.server import Server
+
+        self.server = Server(settings, learner)
+        self.stop = threading.Event()
+        self.ctx = zmq.Context()
+        self.thread = threading.Thread(target=self.server.serve, args=(self.stop, self.ctx), daemon=True)
+        self.thread.start()
+        assert self.server.ready.wait(10), "the daemon did not start"
+
+    def close(self) -> None:
+        """Stop (with its final checkpoint) and wait; close the test's own sockets first."""
+        self.stop.set()
+        self.thread.join(10)
+        self.ctx.term()

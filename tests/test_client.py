@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -15,22 +14,16 @@ from oddsmill.settings import LearnerSettings
 from oddsmill_client import Producer, ScoreSubscriber
 from oddsmill_client.subscriber import decode_columns
 
-from tests.conftest import sparse_stream
+from tests.conftest import RunningServer, sparse_stream
 
 
 @pytest.fixture
 def daemon(tmp_path: Path) -> Iterator[tuple[Server, zmq.Context[Any]]]:
     settings = ServerSettings(state_dir=tmp_path, ingest="tcp://127.0.0.1:*", scores="tcp://127.0.0.1:*", http="off")
-    server = Server(settings, LearnerSettings())
-    stop = threading.Event()
-    ctx: zmq.Context[Any] = zmq.Context()
-    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
-    thread.start()
-    assert server.ready.wait(10)
+    running = RunningServer(settings, LearnerSettings())
+    server, ctx = running.server, running.ctx
     yield server, ctx
-    stop.set()
-    thread.join(10)
-    ctx.term()
+    running.close()
 
 
 def ready_subscriber(server: Server, ctx: zmq.Context[Any]) -> ScoreSubscriber:

@@ -3,21 +3,18 @@
 from __future__ import annotations
 
 import struct
-import threading
 import zlib
 from pathlib import Path
-from typing import Any
 
 import msgpack
 import pytest
-import zmq
 from oddsmill.cli import main
 from oddsmill.engine import Score
 from oddsmill.server import Server, ServerSettings, _score_body
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import journal_record, list_journal, load_newest
 
-from tests.conftest import DEMO
+from tests.conftest import DEMO, RunningServer
 from tests.test_server import Client, bodies
 
 
@@ -101,22 +98,16 @@ def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
         segment_bytes=4096,
         journal_keep=0,
     )
-    server = Server(settings, learner)
-    stop = threading.Event()
-    ctx: zmq.Context[Any] = zmq.Context()
-    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
-    thread.start()
-    assert server.ready.wait(10)
+    running = RunningServer(settings, learner)
+    server, ctx = running.server, running.ctx
     client = Client(ctx, server.bound["ingest"], server.bound["scores"])
     for chunk in range(6):
         part = bodies(150, seed=10 + chunk)
         for body in part:
             client.send(body)
         client.receive(sum(1 for b in part if "x" in b))  # one block at a time, so checkpoints fall between
-    stop.set()
-    thread.join(10)
     client.close()
-    ctx.term()
+    running.close()
     state, newest = load_newest(tmp_path)  # type: ignore[misc]
     segments = list_journal(tmp_path)
     assert segments[0].name != "journal-000000000000.omj"  # the oldest segments were retired

@@ -7,7 +7,6 @@ import signal
 import socket
 import subprocess
 import sys
-import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -19,11 +18,11 @@ import zmq
 from oddsmill.engine import Engine, Score
 from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body
-from oddsmill.server import Server, ServerSettings
+from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import sparse_stream
+from tests.conftest import RunningServer, sparse_stream
 
 TIMEOUT_MS = 10_000
 
@@ -100,12 +99,8 @@ def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Pat
         checkpoint_events=500,
     )
     learner = LearnerSettings(scale_warmup=200)
-    server = Server(settings, learner)
-    stop = threading.Event()
-    ctx: zmq.Context[Any] = zmq.Context()
-    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
-    thread.start()
-    assert server.ready.wait(10)
+    running = RunningServer(settings, learner)
+    server, ctx = running.server, running.ctx
     client = Client(ctx, server.bound["ingest"], server.bound["scores"])
     sent = bodies(900, seed=1)
     for body in sent:
@@ -114,10 +109,8 @@ def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Pat
     client.send({"x": {"route_km": "far"}, "y": 7})
     expected = sum(1 for b in sent if "x" in b)
     answers = client.receive(expected + 2)
-    stop.set()
-    thread.join(10)
     client.close()
-    ctx.term()
+    running.close()
     scores = [a for t, a in answers if t == b"scores"]
     rejects = [a for t, a in answers if t == b"rejects"]
     assert [s["id"] for s in scores] == [b.get("id") for b in sent if "x" in b]
@@ -214,12 +207,8 @@ def test_http_metrics_status_and_health(tmp_path: Path) -> None:
         scores="tcp://127.0.0.1:*",
         http="127.0.0.1:0",
     )
-    server = Server(settings, LearnerSettings(scale_warmup=200))
-    stop = threading.Event()
-    ctx: zmq.Context[Any] = zmq.Context()
-    thread = threading.Thread(target=server.serve, args=(stop, ctx), daemon=True)
-    thread.start()
-    assert server.ready.wait(10)
+    running = RunningServer(settings, LearnerSettings(scale_warmup=200))
+    server, ctx = running.server, running.ctx
     base = f"http://{server.bound['http']}"
     client = Client(ctx, server.bound["ingest"], server.bound["scores"])
     sent = bodies(600, seed=3)
@@ -259,10 +248,8 @@ def test_http_metrics_status_and_health(tmp_path: Path) -> None:
     assert samples[("oddsmill_log_loss", ())] == pytest.approx(log_loss(ys, ps, labels=[0, 1]), rel=1e-9)
     assert doc["log_loss"] == samples[("oddsmill_log_loss", ())]
     assert urllib.request.urlopen(f"{base}/healthz", timeout=5).status == 200
-    stop.set()
-    thread.join(10)
     client.close()
-    ctx.term()
+    running.close()
 
 
 def test_metric_exposition_of_a_fixed_snapshot() -> None:
