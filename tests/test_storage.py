@@ -113,3 +113,23 @@ def test_only_the_newest_checkpoints_are_kept(tmp_path: Path) -> None:
     kept = list_checkpoints(tmp_path)
     assert [int(p.name[11:23]) for p in kept] == list(range(4, KEEP + 4))
     assert not list(tmp_path.glob(".*.tmp"))  # no temporary file left behind
+
+
+def test_pending_requests_expire_by_arrival_time_and_are_counted() -> None:
+    eng = Engine(Learner(), pending_ttl=60.0)
+    eng.process([(1000.0, it) for it in decode_body({"id": "old", "x": {"a": 1.0}, "ts": 5.0})])
+    # a message whose event time lies far ahead of the request's does not expire it
+    eng.process([(1010.0, it) for it in decode_body({"x": {"a": 1.0}, "ts": 9e9})])
+    assert "old" in eng.pending
+    eng.process([(1061.0, it) for it in decode_body({"x": {"a": 1.0}})])  # 61 s after it arrived
+    assert "old" not in eng.pending and eng.counters.pending_expired == 1
+    results = eng.process([(1062.0, it) for it in decode_body({"id": "old", "y": 1})])
+    assert [r.reason for _, r in results] == ["unknown_outcome"]  # type: ignore[union-attr]
+
+
+def test_the_pending_store_is_bounded_by_count_and_counts_evictions() -> None:
+    eng = Engine(Learner(), pending_limit=2)
+    for i in range(3):
+        eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "x": {"a": 1.0}})])
+    assert list(eng.pending) == ["P1", "P2"]  # the oldest went first
+    assert eng.counters.pending_evicted == 1

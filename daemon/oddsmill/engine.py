@@ -28,7 +28,7 @@ class PendingEntry:
     values: list[float]
     w: float
     logit: float  # the score published for it
-    clock: float  # event time, or arrival time when the event has none
+    clock: float  # arrival time: the time-to-live counts in the daemon's own clock
 
 
 @dataclass(frozen=True)
@@ -100,7 +100,10 @@ class Engine:
                 )
                 continue
             for ev in _events(item):
-                clock = ev.ts if ev.ts is not None else arrival
+                # One time base for the time-to-live: when the daemon received the message (the
+                # journal keeps it, so a replay expires exactly what the live run did). Event times
+                # are the producers' and need not agree with each other or with this clock.
+                clock = arrival
                 self._expire(clock)
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
