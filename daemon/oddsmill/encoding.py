@@ -8,7 +8,7 @@ are not learned) and counted in `Vocabulary.ignored`, so a runaway producer cann
 
 >>> v = Vocabulary(max_features=10)
 >>> encode_features({"route_km": 12.5, "depot": "harbour", "fragile": True, "note": None}, v)
-([0, 1, 2], [12.5, 1.0, 1.0], [True, False, True])
+([0, 1, 2], [12.5, 1.0, 1.0], [0, 2])
 >>> v.names
 ['route_km', 'depot=harbour', 'fragile']
 """
@@ -53,18 +53,17 @@ class Vocabulary:
 
 def encode_features(
     x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
-) -> tuple[list[int], list[float], list[bool]]:
-    """Slots, values and numeric flags of the features of `x` (a map of str to number, str, bool
-    or nil). Raises ProtocolError (bad_features or non_finite) and then adds no name: new names get
-    their slots only once the whole event has been read. One pass, exact-type fast paths: this is
-    the per-event Python work of the daemon."""
+) -> tuple[list[int], list[float], list[int]]:
+    """Slots and values of the features of `x` (a map of str to number, str, bool or nil), and the
+    slots this call created for numeric features. Raises ProtocolError (bad_features or non_finite)
+    and then adds no name: new names get their slots only once the whole event has been read. One
+    pass, exact-type fast paths: this is the per-event Python work of the daemon."""
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
     index = vocab.index
     slots: list[int] = []
     values: list[float] = []
-    numeric: list[bool] = []
-    new: list[tuple[int, str]] = []  # (position, name) of names not in the vocabulary yet
+    new: list[tuple[int, str, bool]] = []  # (position, name, numeric) of names not in the vocabulary yet
     ambiguous = False  # an "=" inside a one-hot's key or value: two keys could give one name
     for key, value in x.items():
         if type(key) is not str:
@@ -97,24 +96,26 @@ def encode_features(
             )
         j = index.get(name)
         if j is None:
-            new.append((len(slots), name))
+            new.append((len(slots), name, is_num))
             j = -1
         slots.append(j)
         values.append(v)
-        numeric.append(is_num)
     if ambiguous:
         names = [f"{k}={v}" if type(v) is str else k for k, v in x.items() if v is not None]
         if len(set(names)) != len(names):
             raise ProtocolError("bad_features", "two features encode to the same name", event_id)
+    created: list[int] = []
     if new:
-        for pos, name in new:
-            slots[pos] = vocab.slot(name, grow)
+        for pos, name, is_num in new:
+            j = vocab.slot(name, grow)
+            slots[pos] = j
+            if j >= 0 and is_num:
+                created.append(j)
         if min(slots) < 0:  # names the vocabulary could not take are left out
             keep = [k for k, j in enumerate(slots) if j >= 0]
             slots = [slots[k] for k in keep]
             values = [values[k] for k in keep]
-            numeric = [numeric[k] for k in keep]
-    return slots, values, numeric
+    return slots, values, created
 
 
 @dataclass

@@ -99,12 +99,13 @@ class Engine:
                     )
                 )
                 continue
-            for ev in _events(item):
-                # One time base for the time-to-live: when the daemon received the message (the
-                # journal keeps it, so a replay expires exactly what the live run did). Event times
-                # are the producers' and need not agree with each other or with this clock.
-                clock = arrival
+            # One time base for the time-to-live: when the daemon received the message (the journal
+            # keeps it, so a replay expires exactly what the live run did). Event times are the
+            # producers' and need not agree with each other or with this clock.
+            clock = arrival
+            if self.pending:
                 self._expire(clock)
+            for ev in _events(item):
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
                     if held is None:
@@ -240,10 +241,10 @@ class Engine:
         return eng
 
 
-def _events(item: Event | Columns) -> list[Event]:
+def _events(item: Event | Columns) -> tuple[Event, ...] | list[Event]:
     """A columnar block as events (each row one event, its features the numeric columns)."""
     if isinstance(item, Event):
-        return [item]
+        return (item,)
     out = []
     for r in range(item.rows.shape[0]):
         y = item.y[r]

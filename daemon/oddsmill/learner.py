@@ -122,13 +122,11 @@ class Learner:
 
     def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None) -> tuple[list[int], list[float]]:
         """Slots and raw values of an event's features; new names get slots when `grow`."""
-        before = len(self.vocab)
-        slots, values, numeric = encode_features(x, self.vocab, grow, event_id)
-        if len(self.vocab) > before:
+        slots, values, created = encode_features(x, self.vocab, grow, event_id)
+        if created or len(self.vocab) > self._sc[K.S_NSLOTS]:
             self._grow(len(self.vocab))
-            for j, is_num in zip(slots, numeric, strict=True):
-                if j >= before and is_num:
-                    self._fl[j] |= K.F_NUMERIC
+            for j in created:
+                self._fl[j] |= K.F_NUMERIC
             self._sc[K.S_NSLOTS] = len(self.vocab)
         return slots, values
 
