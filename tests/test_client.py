@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -109,3 +110,26 @@ def test_send_command_streams_a_log(daemon, tmp_path: Path) -> None:  # type: ig
         time.sleep(0.05)  # waiting on another thread's progress, with a hard deadline
     assert server.engine.learner.step == len(events)
     assert server.engine.counters.lost == 0
+
+
+def test_listen_command_prints_scores_as_json(daemon, capsys) -> None:  # type: ignore[no-untyped-def]
+    import json
+
+    from oddsmill.cli import main
+
+    server, ctx = daemon
+    result: list[int] = []
+    listener = threading.Thread(
+        target=lambda: result.append(
+            main(["listen", "--from", server.bound["scores"], "--json", "--count", "3", "--timeout", "20"])
+        )
+    )
+    listener.start()
+    with Producer(server.bound["ingest"], context=ctx) as out:
+        while listener.is_alive():  # until the listener's subscription has caught three answers
+            out.send({"id": "probe", "x": {"route_km": 3.0}})
+            listener.join(0.05)
+    assert result == [0]
+    lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert len(lines) == 3
+    assert all(d["topic"] == "scores" and d["id"] == "probe" and 0.0 < d["p"] < 1.0 for d in lines)
