@@ -21,6 +21,8 @@ from oddsmill.protocol import Columns, Event, decode_body, unpack
         ({"x": {"a": 1}, "y": 1, "w": 0}, "bad_weight"),
         ({"x": {"a": 1}, "y": 1, "w": "heavy"}, "bad_weight"),
         ({"x": {"a": 1}, "y": 1, "w": float("inf")}, "non_finite"),
+        ({"x": {"a": 1}, "y": 1, "w": 10**400}, "non_finite"),  # JSON integers have no bound
+        ({"x": {"a": 1}, "ts": 10**400}, "non_finite"),
         ({"x": {"a": 1}, "seq": -1}, "not_a_map"),
         ({"cols": ["a", "b"], "rows": b"\x00" * 12}, "bad_features"),
         ({"cols": ["a"], "rows": np.array([np.nan]).tobytes()}, "non_finite"),
@@ -94,3 +96,11 @@ def test_a_rejected_event_adds_no_name() -> None:
     with pytest.raises(ProtocolError):
         encode_features({"route_km": 3.0, "depot": "north", "weight_kg": float("nan")}, vocab)
     assert vocab.names == []
+
+
+def test_a_feature_too_large_for_a_float_is_rejected() -> None:
+    from oddsmill.encoding import Vocabulary, encode_features
+
+    with pytest.raises(ProtocolError) as e:
+        encode_features({"route_km": 10**400}, Vocabulary(max_features=10))
+    assert e.value.reason == "non_finite"

@@ -69,10 +69,16 @@ def encode_features(
         if type(key) is not str:
             raise ProtocolError("bad_features", f"feature names must be strings, got {key!r}", event_id)
         kind = type(value)
-        if kind is float or kind is int:
-            v = float(value)
+        if kind is float:
+            v = value
             if v - v != 0.0:  # NaN or an infinity
                 raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
+            name, is_num = key, True
+        elif kind is int:
+            try:
+                v = float(value)
+            except OverflowError:  # JSON integers have no bound
+                raise ProtocolError("non_finite", f"feature {key!r} is too large for a float", event_id) from None
             name, is_num = key, True
         elif kind is str:
             name, v, is_num = f"{key}={value}", 1.0, False
@@ -84,7 +90,10 @@ def encode_features(
         elif value is None:
             continue
         elif isinstance(value, int | float) and not isinstance(value, bool):  # numpy scalars and such
-            v = float(value)
+            try:
+                v = float(value)
+            except OverflowError:
+                raise ProtocolError("non_finite", f"feature {key!r} is too large for a float", event_id) from None
             if v - v != 0.0:
                 raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
             name, is_num = key, True

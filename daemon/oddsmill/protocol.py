@@ -144,9 +144,21 @@ def _label(y: Any, ident: Any) -> int:
     raise ProtocolError("bad_label", f"y must be 0, 1, true or false, got {y!r}", ident)
 
 
+def as_float(value: int | float, what: str, ident: Any) -> float:
+    """A number as a float; an integer beyond the float range is non_finite (JSON allows them)."""
+    try:
+        v = float(value)
+    except OverflowError:
+        raise ProtocolError("non_finite", f"{what} is too large for a float", ident) from None
+    if not math.isfinite(v):
+        raise ProtocolError("non_finite", f"{what} is {value!r}", ident)
+    return v
+
+
 def _weight(w: Any, ident: Any) -> float:
     if isinstance(w, bool) or not isinstance(w, int | float):
         raise ProtocolError("bad_weight", f"w must be a number > 0, got {w!r}", ident)
+    w = as_float(w, "w", ident)
     if not math.isfinite(w):
         raise ProtocolError("non_finite", f"w is {w!r}", ident)
     if w <= 0:
@@ -159,8 +171,7 @@ def _envelope(body: Mapping[str, Any], ident: Any) -> tuple[float | None, str | 
     if ts is not None:
         if isinstance(ts, bool) or not isinstance(ts, int | float):
             raise ProtocolError("not_a_map", f"ts must be a number of seconds, got {ts!r}", ident)
-        if not math.isfinite(ts):
-            raise ProtocolError("non_finite", f"ts is {ts!r}", ident)
+        ts = as_float(ts, "ts", ident)
     src = body.get("src")
     if src is not None and not isinstance(src, str):
         raise ProtocolError("not_a_map", f"src must be a string, got {src!r}", ident)

@@ -1,0 +1,72 @@
+"""Property tests of the decoder: whatever arrives, it returns messages or the project's protocol
+error, nothing else, and a rejected body changes no state."""
+
+from __future__ import annotations
+
+import msgpack
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from oddsmill.engine import Engine
+from oddsmill.errors import ProtocolError
+from oddsmill.learner import Learner
+from oddsmill.protocol import Columns, Event, decode_body, unpack
+
+scalars = (
+    st.none()
+    | st.booleans()
+    | st.integers()
+    | st.integers(min_value=10**308)
+    | st.floats()
+    | st.text(max_size=8)
+    | st.binary(max_size=24)
+)
+values = st.recursive(
+    scalars,
+    lambda inner: st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6) | st.integers(), inner, max_size=4),
+    max_leaves=12,
+)
+keys = st.sampled_from(["id", "x", "y", "w", "ts", "src", "seq", "batch", "cols", "rows"]) | st.text(max_size=5)
+bodies = st.dictionaries(keys, values, max_size=6) | values
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.binary(max_size=200))
+def test_arbitrary_bytes_decode_or_raise_the_protocol_error(raw: bytes) -> None:
+    try:
+        body = unpack(raw)
+    except ProtocolError as e:
+        assert e.reason == "undecodable"
+        return
+    for item in decode_body(body):
+        assert isinstance(item, Event | Columns | ProtocolError)
+
+
+@settings(max_examples=400, deadline=None)
+@given(bodies)
+def test_arbitrary_structures_give_messages_or_protocol_errors_and_rejections_change_nothing(body: object) -> None:
+    items = decode_body(body)
+    for item in items:
+        assert isinstance(item, Event | Columns | ProtocolError)
+    # through msgpack and back, as a producer would send it
+    try:
+        again = decode_body(unpack(msgpack.packb(body)))
+    except (TypeError, ValueError, OverflowError):  # not representable in msgpack at all
+        again = items
+    assert len(again) == len(items)
+    engine = Engine(Learner())
+    before = engine.learner.state_dict()
+    errors = [(0.0, item) for item in items if isinstance(item, ProtocolError)]
+    engine.process(errors)
+    after = engine.learner.state_dict()
+    assert after["slots"].tobytes() == before["slots"].tobytes() and after["names"] == before["names"]
+    assert engine.metrics.count == 0 and not engine.pending
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.lists(bodies, max_size=5))
+def test_the_engine_takes_any_decoded_items_without_raising(batch: list[object]) -> None:
+    engine = Engine(Learner())
+    items = [(0.0, item) for body in batch for item in decode_body(body)]
+    results = engine.process(items)
+    for _, r in results:
+        assert r.__class__.__name__ in ("Score", "Rejection")
