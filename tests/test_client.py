@@ -28,23 +28,11 @@ def daemon(tmp_path: Path) -> Iterator[tuple[Server, zmq.Context[Any]]]:
 
 
 def ready_subscriber(server: Server, ctx: zmq.Context[Any]) -> ScoreSubscriber:
-    """A subscriber whose subscription has reached the daemon: a probe's score came back."""
+    """A subscriber whose subscription has reached the daemon."""
     sub = ScoreSubscriber(server.bound["scores"], context=ctx)
     with Producer(server.bound["ingest"], context=ctx) as probe:
-        for _ in range(100):
-            probe.send({"x": {"probe": 1.0}})
-            try:
-                sub.receive(timeout=0.1)
-                break
-            except TimeoutError:
-                continue
-        else:
-            raise AssertionError("no score for a probe")
-    while True:  # drain the answers to extra probes
-        try:
-            sub.receive(timeout=0.3)
-        except TimeoutError:
-            return sub
+        sub.await_daemon(probe)
+    return sub
 
 
 def test_a_pub_producer_loses_none_of_its_first_messages(daemon) -> None:  # type: ignore[no-untyped-def]

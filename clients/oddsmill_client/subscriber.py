@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import time
 from collections.abc import Iterator, Sequence
 from typing import Any
 
@@ -35,6 +36,26 @@ class ScoreSubscriber:
             raise TimeoutError(f"no score within {timeout:g} s")
         topic, raw = self._sock.recv_multipart()
         return topic.decode(), msgpack.unpackb(raw, raw=False)
+
+    def await_daemon(self, producer: Any, timeout: float = 10.0) -> None:
+        """Return once this subscription has reached the daemon (ZeroMQ's slow joiner): send probe
+        scoring requests through `producer` (no id, so nothing is held) until one is answered,
+        then drop the answers to the extra probes. TimeoutError if none is answered in time."""
+        deadline = time.monotonic() + timeout
+        while True:
+            producer.send({"x": {"probe": 1.0}})
+            producer.flush()
+            try:
+                self.receive(timeout=0.1)
+                break
+            except TimeoutError:
+                if time.monotonic() > deadline:
+                    raise TimeoutError(f"no probe answered within {timeout:g} s") from None
+        while True:
+            try:
+                self.receive(timeout=0.3)
+            except TimeoutError:
+                return
 
     def __iter__(self) -> Iterator[tuple[str, dict[str, Any]]]:
         while True:

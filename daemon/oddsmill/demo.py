@@ -83,7 +83,7 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
         ScoreSubscriber(server.bound["scores"], topics=("scores",), context=ctx) as scores,
         Producer(server.bound["ingest"], src="demo", batch=BATCH, context=ctx) as producer,
     ):
-        _handshake(producer, scores)
+        scores.await_daemon(producer)
         for day, bodies in enumerate(_days(log)):
             want = len(published) + sum(1 for b in bodies if "x" in b)
             for body in bodies:
@@ -155,22 +155,6 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
             thread.join(30)
     ctx.term()
     return 0
-
-
-def _handshake(producer: Producer, scores: ScoreSubscriber) -> None:
-    """Wait until the subscription reaches the daemon: a probe without an id is answered."""
-    for _ in range(300):
-        producer._send({"x": {"probe": 1.0}})
-        try:
-            scores.receive(timeout=0.1)
-            break
-        except TimeoutError:
-            continue
-    while True:
-        try:
-            scores.receive(timeout=0.3)
-        except TimeoutError:
-            return
 
 
 def _status(http: str, server: Server) -> dict[str, Any]:
