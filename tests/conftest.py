@@ -1,12 +1,17 @@
 from __future__ import annotations
 
 import random
+import time
 from pathlib import Path
+from typing import Any
 
+import msgpack
 import pytest
+import zmq
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "replay_data" / "parcels.jsonl.gz"
+TIMEOUT_MS = 10_000
 
 
 def phishing() -> list[tuple[dict[str, float], int]]:
@@ -63,3 +68,91 @@ class RunningServer:
         self.stop.set()
         self.thread.join(10)
         self.ctx.term()
+
+
+class Client:
+    """A PUSH producer and a SUB on the scores, with a ready handshake (never a sleep)."""
+
+    def __init__(self, ctx: zmq.Context[Any], ingest: str, scores: str) -> None:
+        self.push = ctx.socket(zmq.PUSH)
+        self.sub = ctx.socket(zmq.SUB)
+        for s in (self.push, self.sub):
+            s.setsockopt(zmq.LINGER, 0)
+        self.sub.setsockopt(zmq.SUBSCRIBE, b"")
+        self.sub.connect(scores)
+        self.push.connect(ingest)
+        # the subscription is in place once a probe's score comes back
+        deadline = time.monotonic() + TIMEOUT_MS / 1000
+        while time.monotonic() < deadline:
+            self.send({"x": {"probe": 1.0}})
+            if self.sub.poll(100):
+                self.sub.recv_multipart()
+                break
+        else:
+            raise AssertionError("no score for a probe: the daemon is not answering")
+        while self.sub.poll(200):  # drain the answers to extra probes
+            self.sub.recv_multipart()
+
+    def send(self, body: dict[str, Any]) -> None:
+        self.push.send_multipart([b"events", msgpack.packb(body)])
+
+    def receive(self, n: int) -> list[tuple[bytes, dict[str, Any]]]:
+        got = []
+        while len(got) < n:
+            assert self.sub.poll(TIMEOUT_MS), f"got {len(got)} of {n} answers"
+            topic, raw = self.sub.recv_multipart()
+            got.append((topic, msgpack.unpackb(raw)))
+        return got
+
+    def close(self) -> None:
+        self.push.close()
+        self.sub.close()
+
+
+class FedDaemon:
+    """A daemon fed the first `n` messages of the parcel demo log, every answer received."""
+
+    def __init__(self, state_dir: Path, n: int = 4000, batch: int = 50) -> None:
+        from oddsmill.logs import read_bodies
+        from oddsmill.server import ServerSettings
+        from oddsmill.settings import LearnerSettings
+
+        settings = ServerSettings(
+            state_dir=state_dir,
+            ingest="tcp://127.0.0.1:*",
+            ingest_kind="pull",
+            scores="tcp://127.0.0.1:*",
+            http="127.0.0.1:0",
+        )
+        self.running = RunningServer(settings, LearnerSettings())
+        self.server = self.running.server
+        self.http = f"http://{self.server.bound['http']}"
+        self.client = Client(self.running.ctx, self.server.bound["ingest"], self.server.bound["scores"])
+        sent = [body for _, body, _ in read_bodies([str(DEMO)])][:n]
+        batches = [sent[lo : lo + batch] for lo in range(0, len(sent), batch)]
+        for b in batches:
+            self.client.send({"batch": b})
+        answers = self.client.receive(sum(1 for b in batches if any("x" in e for e in b)))
+        assert all(topic == b"scores" for topic, _ in answers)
+        self.learned = self.server.engine.learner.step
+        # the figures are a snapshot refreshed a few times a second, and events/s needs two samples
+        deadline = time.monotonic() + TIMEOUT_MS / 1000
+        while time.monotonic() < deadline:
+            doc = self.status()
+            if doc["step"] == self.learned and doc["rates"]:
+                break
+            time.sleep(0.05)  # polling the daemon's own figures, not waiting for a guess of time
+        else:
+            raise AssertionError("the daemon's figures did not catch up")
+
+    def status(self) -> dict[str, Any]:
+        import json
+        import urllib.request
+
+        with urllib.request.urlopen(self.http + "/api/status", timeout=10) as r:
+            doc: dict[str, Any] = json.load(r)
+        return doc
+
+    def close(self) -> None:
+        self.client.close()
+        self.running.close()

@@ -37,3 +37,33 @@ def test_calibration_error_is_zero_for_exact_probabilities_in_the_limit() -> Non
     m2 = ProgressiveMetrics(window=200_000)
     m2.update(z + 1.0, y)  # scores shifted: miscalibrated
     assert m2.calibration_error_window > 0.1
+
+
+def test_history_points_fall_at_exact_counts_whatever_the_blocks() -> None:
+    # Source: scikit-learn's log_loss at each point, computed on the prefix and on the window.
+    from oddsmill.progressive import HISTORY_POINTS, HISTORY_STRIDE
+    from sklearn.metrics import log_loss
+
+    rng = np.random.default_rng(6)
+    n = HISTORY_STRIDE * HISTORY_POINTS * 2 + 123  # enough to thin the history twice
+    z = rng.normal(0, 1.5, n)
+    y = (rng.random(n) < sigmoid(z)).astype(float)
+    whole = ProgressiveMetrics(window=500)
+    whole.update(z, y)
+    pieces = ProgressiveMetrics(window=500)
+    lo = 0
+    while lo < n:  # blocks of irregular sizes, with a round trip through a checkpoint midway
+        size = int(rng.integers(1, 300))
+        pieces.update(z[lo : lo + size], y[lo : lo + size])
+        lo += size
+        if lo > n // 2 and lo - size <= n // 2:
+            pieces = ProgressiveMetrics.from_state_dict(pieces.state_dict())
+    assert pieces.history == whole.history
+    assert whole.stride == HISTORY_STRIDE * 4 and len(whole.history) < HISTORY_POINTS
+    counts = [c for c, _, _ in whole.history]
+    assert counts == list(range(whole.stride, n + 1, whole.stride))
+    for c, progressive, window in whole.history[::40]:
+        p = sigmoid(z[:c])
+        assert progressive == pytest.approx(log_loss(y[:c], p, labels=[0, 1]), rel=1e-10)
+        lo = max(0, c - 500)
+        assert window == pytest.approx(log_loss(y[lo:c], p[lo:], labels=[0, 1]), rel=1e-10)

@@ -11,7 +11,6 @@ import time
 from pathlib import Path
 from typing import Any
 
-import msgpack
 import numpy as np
 import pytest
 import zmq
@@ -22,9 +21,7 @@ from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import RunningServer, sparse_stream
-
-TIMEOUT_MS = 10_000
+from tests.conftest import Client, RunningServer, sparse_stream
 
 
 def bodies(n: int, seed: int) -> list[dict[str, Any]]:
@@ -49,45 +46,6 @@ def replay_journal(state: Path, settings: LearnerSettings) -> tuple[Engine, list
                 r for _, r in engine.process([(arrival, it) for it in decode_body(body)]) if isinstance(r, Score)
             )
     return engine, scores
-
-
-class Client:
-    """A PUSH producer and a SUB on the scores, with a ready handshake (never a sleep)."""
-
-    def __init__(self, ctx: zmq.Context[Any], ingest: str, scores: str) -> None:
-        self.push = ctx.socket(zmq.PUSH)
-        self.sub = ctx.socket(zmq.SUB)
-        for s in (self.push, self.sub):
-            s.setsockopt(zmq.LINGER, 0)
-        self.sub.setsockopt(zmq.SUBSCRIBE, b"")
-        self.sub.connect(scores)
-        self.push.connect(ingest)
-        # the subscription is in place once a probe's score comes back
-        deadline = time.monotonic() + TIMEOUT_MS / 1000
-        while time.monotonic() < deadline:
-            self.send({"x": {"probe": 1.0}})
-            if self.sub.poll(100):
-                self.sub.recv_multipart()
-                break
-        else:
-            raise AssertionError("no score for a probe: the daemon is not answering")
-        while self.sub.poll(200):  # drain the answers to extra probes
-            self.sub.recv_multipart()
-
-    def send(self, body: dict[str, Any]) -> None:
-        self.push.send_multipart([b"events", msgpack.packb(body)])
-
-    def receive(self, n: int) -> list[tuple[bytes, dict[str, Any]]]:
-        got = []
-        while len(got) < n:
-            assert self.sub.poll(TIMEOUT_MS), f"got {len(got)} of {n} answers"
-            topic, raw = self.sub.recv_multipart()
-            got.append((topic, msgpack.unpackb(raw)))
-        return got
-
-    def close(self) -> None:
-        self.push.close()
-        self.sub.close()
 
 
 def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Path) -> None:

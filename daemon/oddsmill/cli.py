@@ -8,7 +8,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import math
 import sys
 import tomllib
 from collections.abc import Iterator
@@ -234,8 +233,7 @@ def _pval(p: float) -> str:
 # -- inspect ---------------------------------------------------------------------------------------
 def inspect_json(engine: Any) -> dict[str, Any]:
     lr = engine.learner
-    c = lr.coefficients()
-    order = np.argsort(-np.abs(c.coefs * lr.scales()[1]), kind="stable")
+    intercept, coefficients = lr.top_coefficients(lr.n_features)
     metrics = {k: v for k, v in engine.metrics.summary().items()}
     cnt = engine.counters
     metrics.update(
@@ -256,15 +254,8 @@ def inspect_json(engine: Any) -> dict[str, Any]:
     return {
         "step": lr.step,
         "learner": lr.settings.to_dict(),
-        "intercept": {"coef": c.intercept},
-        "coefficients": [
-            {
-                "feature": c.names[j],
-                "coef": float(c.coefs[j]),
-                "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0)),
-            }
-            for j in order
-        ],
+        "intercept": {"coef": intercept},
+        "coefficients": [{k: c[k] for k in ("feature", "coef", "odds_ratio")} for c in coefficients],
         "metrics": metrics,
     }
 

@@ -72,7 +72,7 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
     print(
         f"oddsmill demo: a parcel courier scores each dispatch for the chance it misses its delivery\n"
         f"window; the outcome arrives hours later. Daemon: ingest {server.bound['ingest']}, scores "
-        f"{server.bound['scores']}\nfigures: {http}/api/status   metrics: {http}/metrics",
+        f"{server.bound['scores']}\ndashboard: {http}/   figures: {http}/api/status   metrics: {http}/metrics",
         file=out,
     )
     tty = bool(getattr(sys.stderr, "isatty", lambda: False)())

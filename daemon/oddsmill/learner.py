@@ -12,6 +12,7 @@ The state is a few private arrays behind read-only properties; the compiled kern
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
@@ -206,6 +207,28 @@ class Learner:
         centre, scale = self.scales()
         coefs = theta / scale
         return Coefficients(float(b - np.sum(coefs * centre)), list(self.vocab.names), coefs)
+
+    def top_coefficients(self, k: int) -> tuple[float, list[dict[str, float | str]]]:
+        """(intercept, the `k` coefficients of largest effect), largest first. The effect is the
+        change in log-odds for one standard deviation of a numeric feature (for a category or a
+        flag, its coefficient), so a feature sent in grams does not win or lose by its units."""
+        c = self.coefficients()
+        signed = c.coefs * self.scales()[1]
+        effect = np.abs(signed)
+        if k < effect.size:
+            part = np.argpartition(-effect, k)[:k]
+            order = part[np.argsort(-effect[part], kind="stable")]
+        else:
+            order = np.argsort(-effect, kind="stable")
+        return c.intercept, [
+            {
+                "feature": c.names[j],
+                "coef": float(c.coefs[j]),
+                "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0)),
+                "effect": float(signed[j]),
+            }
+            for j in order.tolist()
+        ]
 
     # -- state for checkpoints -------------------------------------------------------------------
     def state_dict(self) -> dict[str, Any]:

@@ -12,9 +12,11 @@ import logging
 import math
 import threading
 import time
+from collections import deque
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from importlib import resources
 from typing import Any
 
 from prometheus_client import CollectorRegistry, Histogram, generate_latest
@@ -27,6 +29,8 @@ from .engine import Engine
 log = logging.getLogger("oddsmill")
 
 STUCK_SECONDS = 10.0  # /healthz says 503 when the loop has not come round for this long
+TOP_COEFFICIENTS = 12  # how many coefficients /api/status lists, largest effect first
+RATE_POINTS = 300  # events/s samples kept for the dashboard (one a second or so: five minutes)
 REASONS = (
     "undecodable",
     "not_a_map",
@@ -60,10 +64,23 @@ class Snapshot:
     last_checkpoint: float = 0.0
     loop_time: float = 0.0  # when the loop last came round
     writable: bool = True  # the last write of journal or checkpoint succeeded
+    intercept: float = float("nan")
+    coefficients: list[dict[str, Any]] = field(default_factory=list)  # largest effect first
+    history: list[tuple[int, float, float]] = field(default_factory=list)  # (labelled, progressive, window)
+    renormalisations: int = 0
 
     @classmethod
-    def of(cls, engine: Engine, last_checkpoint: float, writable: bool = True) -> Snapshot:
+    def of(
+        cls,
+        engine: Engine,
+        last_checkpoint: float,
+        writable: bool = True,
+        coefficients: tuple[float, list[dict[str, Any]]] | None = None,
+    ) -> Snapshot:
+        """The figures of `engine` now. `coefficients` reuses an earlier (intercept, top list): the
+        ranking costs a pass over the whole vocabulary, so the loop refreshes it less often."""
         m, c, lr = engine.metrics, engine.counters, engine.learner
+        intercept, top = coefficients if coefficients is not None else lr.top_coefficients(TOP_COEFFICIENTS)
         return cls(
             step=lr.step,
             features=lr.n_features,
@@ -83,6 +100,10 @@ class Snapshot:
             last_checkpoint=last_checkpoint,
             loop_time=time.time(),
             writable=writable,
+            intercept=intercept,
+            coefficients=top,
+            history=list(m.history),
+            renormalisations=lr.renormalisations,
         )
 
 
@@ -104,6 +125,20 @@ class Board:
         registry.register(SnapshotCollector(self))
 
         self.heartbeat = time.time()  # set by the loop every time it comes round
+        self.started = time.time()
+        # (time, train/s, score/s, outcome/s), appended by the loop; read whole by /api/status
+        self.rates: deque[tuple[float, float, float, float]] = deque(maxlen=RATE_POINTS)
+        self._last_counts: tuple[float, int, int, int] | None = None
+
+    def sample_rates(self) -> None:
+        """Append the events/s by kind since the last call (the loop calls this about once a second)."""
+        s = self.snapshot
+        now = (s.loop_time, s.events.get("train", 0), s.events.get("score", 0), s.events.get("outcome", 0))
+        last = self._last_counts
+        if last is not None and now[0] > last[0]:
+            dt = now[0] - last[0]
+            self.rates.append((now[0], (now[1] - last[1]) / dt, (now[2] - last[2]) / dt, (now[3] - last[3]) / dt))
+        self._last_counts = now
 
     def healthy(self) -> bool:
         return self.snapshot.writable and time.time() - self.heartbeat < STUCK_SECONDS
@@ -159,11 +194,41 @@ class SnapshotCollector(Collector):
         yield dropped
 
 
+def status_document(snapshot: Snapshot, now: float) -> dict[str, Any]:
+    """The /api/status document of one snapshot (the dashboard and `oddsmill report` read it):
+    the values of the metrics, the calibration bins, the top coefficients and the log-loss history.
+    A figure that does not exist yet (the log-loss of no events) is null."""
+    doc = asdict(snapshot)
+    doc["history"] = [list(h) for h in snapshot.history]
+    doc["checkpoint_age_seconds"] = now - snapshot.last_checkpoint if snapshot.last_checkpoint else None
+    out: dict[str, Any] = _nulls(doc)
+    return out
+
+
+def _nulls(v: Any) -> Any:
+    if isinstance(v, float):
+        return None if not math.isfinite(v) else v
+    if isinstance(v, dict):
+        return {k: _nulls(x) for k, x in v.items()}
+    if isinstance(v, list | tuple):
+        return [_nulls(x) for x in v]
+    return v
+
+
 def status(board: Board) -> dict[str, Any]:
-    """The /api/status document: the same values as the metrics, and the calibration bins."""
-    doc = asdict(board.snapshot)
+    """The live /api/status document: the snapshot's, plus health, uptime and recent events/s."""
+    now = time.time()
+    doc = status_document(board.snapshot, now)
     doc["healthy"] = board.healthy()
-    return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in doc.items()}
+    doc["time"] = now
+    doc["uptime_seconds"] = now - board.started
+    doc["rates"] = _nulls([list(r) for r in list(board.rates)])
+    return doc
+
+
+def dashboard_page() -> bytes:
+    """The dashboard: one page shipped with the package, its script and styles inline."""
+    return (resources.files("oddsmill") / "web" / "dashboard.html").read_bytes()
 
 
 def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer, threading.Thread]:
@@ -180,9 +245,7 @@ def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer,
             elif path == "/api/status":
                 self._send(200, "application/json", json.dumps(status(board)).encode())
             elif path == "/":
-                self._send(
-                    200, "text/plain; charset=utf-8", b"oddsmill: /metrics (Prometheus), /api/status (JSON), /healthz\n"
-                )
+                self._send(200, "text/html; charset=utf-8", dashboard_page())
             else:
                 self._send(404, "text/plain; charset=utf-8", b"not found\n")
 

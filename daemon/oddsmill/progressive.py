@@ -16,6 +16,8 @@ from typing import Any
 import numpy as np
 
 CALIBRATION_BINS = 10
+HISTORY_POINTS = 512  # the history keeps at most this many points, thinning itself as it grows
+HISTORY_STRIDE = 50  # labelled events between two points, at first
 
 
 def log_loss_from_logit(z: np.ndarray, y: np.ndarray) -> np.ndarray:
@@ -39,26 +41,46 @@ class ProgressiveMetrics:
         self.count = 0
         self._z = np.zeros(window)
         self._y = np.zeros(window)
+        self._ll = np.zeros(window)  # the log-loss of each, so a history point costs one sum
         self._filled = 0
         self._head = 0
+        # (labelled events so far, progressive log-loss, windowed log-loss) every `stride` labelled
+        # events. Taken at exact counts, not at block ends, so a restarted daemon that replays its
+        # journal in other blocks has the same history. When full, every other point is dropped and
+        # the stride doubles: the whole life of the model stays in view at a coarser grain.
+        self.history: list[tuple[int, float, float]] = []
+        self.stride = HISTORY_STRIDE
 
     def update(self, z: np.ndarray, y: np.ndarray) -> None:
         """Record the published logits `z` of labelled events with outcomes `y`, in order."""
-        if z.shape[0] == 0:
-            return
+        while z.shape[0]:
+            due = self.stride - self.count % self.stride  # events until the next history point
+            if due > z.shape[0]:
+                self._add(z, y)
+                return
+            self._add(z[:due], y[:due])
+            self.history.append((self.count, self.log_loss, self.log_loss_window))
+            if len(self.history) >= HISTORY_POINTS:
+                self.history = self.history[1::2]
+                self.stride *= 2
+            z, y = z[due:], y[due:]
+
+    def _add(self, z: np.ndarray, y: np.ndarray) -> None:
         # added one by one, so that the sum does not depend on where blocks begin and end (a
         # restarted daemon replays its journal in other blocks than it first saw)
+        ll = log_loss_from_logit(z, y)
         total = self.sum
-        for v in log_loss_from_logit(z, y).tolist():
+        for v in ll.tolist():
             total += v
         self.sum = total
         self.count += int(z.shape[0])
         if z.shape[0] >= self.window:
-            z, y = z[-self.window :], y[-self.window :]
+            z, y, ll = z[-self.window :], y[-self.window :], ll[-self.window :]
         n = z.shape[0]
         pos = (self._head + np.arange(n)) % self.window
         self._z[pos] = z
         self._y[pos] = y
+        self._ll[pos] = ll
         self._head = int((self._head + n) % self.window)
         self._filled = min(self.window, self._filled + n)
 
@@ -71,8 +93,7 @@ class ProgressiveMetrics:
 
     @property
     def log_loss_window(self) -> float:
-        z, y = self._recent()
-        return float(np.mean(log_loss_from_logit(z, y))) if z.size else float("nan")
+        return float(np.mean(self._ll[: self._filled])) if self._filled else float("nan")
 
     @property
     def brier_window(self) -> float:
@@ -134,6 +155,8 @@ class ProgressiveMetrics:
             "filled": self._filled,
             "z": self._z[: self._filled].copy(),
             "y": self._y[: self._filled].copy(),
+            "history": np.array(self.history, dtype=np.float64).reshape(-1, 3),
+            "stride": self.stride,
         }
 
     @classmethod
@@ -142,6 +165,10 @@ class ProgressiveMetrics:
         n = int(d["filled"])
         m._z[:n] = np.asarray(d["z"], dtype=np.float64)
         m._y[:n] = np.asarray(d["y"], dtype=np.float64)
+        m._ll[:n] = log_loss_from_logit(m._z[:n], m._y[:n])
         m._filled, m._head = n, int(d["head"])
         m.sum, m.count = float(d["sum"]), int(d["count"])
+        if "history" in d:  # checkpoints written before the history was kept have none
+            m.history = [(int(c), float(a), float(b)) for c, a, b in np.asarray(d["history"]).reshape(-1, 3)]
+            m.stride = int(d["stride"])
         return m

@@ -44,6 +44,8 @@ log = logging.getLogger("oddsmill")
 
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status read may be
+RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them reads the whole vocabulary)
+RATE_SECONDS = 1.0  # events/s is sampled this often for the dashboard
 REPLAY_BLOCK = 4096
 
 
@@ -146,11 +148,21 @@ class Server:
         self.ready = threading.Event()
         self.last_fsync = time.monotonic()
         self.board = Board(CollectorRegistry())
+        self.last_ranking = self.last_rate = -1e9
         self._refresh()
 
     def _refresh(self) -> None:
-        self.board.snapshot = Snapshot.of(self.engine, self.last_checkpoint)
-        self.last_refresh = time.monotonic()
+        now = time.monotonic()
+        top = None
+        if now - self.last_ranking < RANKING_SECONDS:
+            top = (self.board.snapshot.intercept, self.board.snapshot.coefficients)
+        else:
+            self.last_ranking = now
+        self.board.snapshot = Snapshot.of(self.engine, self.last_checkpoint, coefficients=top)
+        self.last_refresh = now
+        if now - self.last_rate >= RATE_SECONDS:
+            self.board.sample_rates()
+            self.last_rate = now
 
     # -- state -----------------------------------------------------------------------------------
     def _load(self, learner: LearnerSettings) -> tuple[Engine, int, dict[str, Any] | None]:

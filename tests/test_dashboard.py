@@ -1,0 +1,90 @@
+"""The dashboard in a real browser: Debian's Chromium loads the page from a daemon fed the parcel demo
+stream; the figures it renders must equal /api/status, and its charts must hold the data points."""
+
+from __future__ import annotations
+
+import struct
+from collections.abc import Iterator
+from html.parser import HTMLParser
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from tests.conftest import FedDaemon
+from tests.tools import ARTIFACTS, chromium, require
+
+
+class Page(HTMLParser):
+    """The attributes the page's script leaves on what it drew."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.body: dict[str, str] = {}
+        self.figures: dict[str, str] = {}
+        self.series: dict[str, int] = {}
+        self.bins: list[dict[str, str]] = []
+        self.bars: list[dict[str, str]] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        a = {k: v or "" for k, v in attrs}
+        if tag == "body":
+            self.body = a
+        if "data-figure" in a:
+            self.figures[a["data-figure"]] = a.get("data-value", "")
+        if "data-series" in a:
+            self.series[a["data-series"]] = int(a["data-n"])
+        if "bin" in a.get("class", "").split():
+            self.bins.append(a)
+        if "bar" in a.get("class", "").split():
+            self.bars.append(a)
+
+
+@pytest.fixture(scope="module")
+def fed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FedDaemon]:
+    require("chromium")
+    daemon = FedDaemon(tmp_path_factory.mktemp("state"), n=6000)
+    yield daemon
+    daemon.close()
+
+
+def test_the_page_shows_the_figures_of_api_status(fed: FedDaemon, tmp_path: Path) -> None:
+    dom = chromium(fed.http + "/", "--dump-dom", user_data=tmp_path / "profile")
+    page = Page()
+    page.feed(dom)
+    status: dict[str, Any] = fed.status()  # the daemon is idle: these are the figures the page read
+    assert page.body["data-state"] == "live", "the page did not render a status"
+    assert int(page.body["data-step"]) == status["step"] == fed.learned > 0
+    f = page.figures
+    for key in ("log_loss", "log_loss_window", "brier_window", "calibration_error_window", "learning_rate"):
+        assert float(f[key]) == status[key], key  # JavaScript prints the shortest round-trip form
+    for key in ("step", "log_loss_count", "features", "pending_outcomes", "lost"):
+        assert int(f[key]) == status[key], key
+    assert int(f["rejected_total"]) == sum(status["rejected"].values())
+    assert f["healthy"] == "true"
+    assert 0 <= float(f["checkpoint_age_seconds"]) <= status["uptime_seconds"]
+
+    # the charts hold the data points
+    assert page.series["since start"] == page.series["recent"] == len(status["history"]) > 50
+    assert page.series["training"] >= 1 and page.series["scoring"] >= 1
+    used = [b for b in status["calibration_bins"] if b["count"]]
+    assert page.series["reliability"] == len(used) >= 3
+    assert [int(b["data-count"]) for b in page.bins] == [b["count"] for b in used]
+    for drawn, b in zip(page.bins, used, strict=True):
+        assert float(drawn["data-predicted"]) == b["mean_predicted"]
+        assert float(drawn["data-observed"]) == b["observed_rate"]
+    assert [b["data-feature"] for b in page.bars] == [c["feature"] for c in status["coefficients"]]
+    assert len(page.bars) == min(12, status["features"])
+
+
+def test_a_screenshot_of_the_page_is_saved(fed: FedDaemon, tmp_path: Path) -> None:
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    shot = ARTIFACTS / "dashboard.png"
+    shot.unlink(missing_ok=True)
+    chromium(fed.http + "/", "--window-size=1300,1250", f"--screenshot={shot}", user_data=tmp_path / "profile")
+    data = shot.read_bytes()
+    assert data[:8] == b"\x89PNG\r\n\x1a\n"
+    width, height = struct.unpack(">II", data[16:24])
+    assert (width, height) == (1300, 1250)
+    assert len(data) > 50_000, "the screenshot is nearly empty"
+    print(f"screenshot: {shot}")

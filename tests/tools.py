@@ -1,0 +1,51 @@
+"""Outside programs the integration tests drive: Chromium, Prometheus, promtool, tmux.
+
+`.ci/run` installs them from Debian's packages. Missing from a developer's machine, their tests
+skip; under CI (CI=true) a missing one fails its test, since CI is meant to have installed it.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+ARTIFACTS = Path(os.environ.get("ODDSMILL_ARTIFACTS", ROOT / "test-artifacts"))
+
+
+def require(program: str) -> str:
+    path = shutil.which(program)
+    if path is None:
+        message = f"{program} is not installed (.ci/run installs it from Debian's packages)"
+        if os.environ.get("CI") == "true":
+            pytest.fail(message)
+        pytest.skip(message)
+    return path
+
+
+def chromium(url: str, *args: str, user_data: Path, timeout: float = 60) -> str:
+    """Run headless Chromium on `url` (sandbox and background networking off) and return stdout.
+    `--virtual-time-budget` lets the page's script fetch and render before the DOM is read."""
+    exe = require("chromium")
+    cmd = [
+        exe,
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        f"--user-data-dir={user_data}",
+        "--virtual-time-budget=5000",
+        *args,
+        url,
+    ]
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout)
+    assert done.returncode == 0, f"chromium failed ({done.returncode}): {done.stderr[-2000:]}"
+    return done.stdout
