@@ -110,10 +110,9 @@ class Client:
 
 
 class FedDaemon:
-    """A daemon fed the first `n` messages of the parcel demo log, every answer received."""
+    """A daemon on random loopback ports with HTTP, to be fed the parcel demo log."""
 
-    def __init__(self, state_dir: Path, n: int = 4000, batch: int = 50) -> None:
-        from oddsmill.logs import read_bodies
+    def __init__(self, state_dir: Path) -> None:
         from oddsmill.server import ServerSettings
         from oddsmill.settings import LearnerSettings
 
@@ -128,6 +127,12 @@ class FedDaemon:
         self.server = self.running.server
         self.http = f"http://{self.server.bound['http']}"
         self.client = Client(self.running.ctx, self.server.bound["ingest"], self.server.bound["scores"])
+
+    def feed(self, n: int, batch: int = 50) -> None:
+        """Send the first `n` messages of the demo log, in batches; return once every answer is in
+        and the figures that /api/status reads have caught up."""
+        from oddsmill.logs import read_bodies
+
         sent = [body for _, body, _ in read_bodies([str(DEMO)])][:n]
         batches = [sent[lo : lo + batch] for lo in range(0, len(sent), batch)]
         for b in batches:
@@ -139,7 +144,7 @@ class FedDaemon:
         deadline = time.monotonic() + TIMEOUT_MS / 1000
         while time.monotonic() < deadline:
             doc = self.status()
-            if doc["step"] == self.learned and doc["rates"]:
+            if doc["step"] == self.learned and doc["rates"] and len(doc["coefficients"]) == min(12, doc["features"]):
                 break
             time.sleep(0.05)  # polling the daemon's own figures, not waiting for a guess of time
         else:

@@ -43,7 +43,8 @@ class Page(HTMLParser):
 @pytest.fixture(scope="module")
 def fed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FedDaemon]:
     require("chromium")
-    daemon = FedDaemon(tmp_path_factory.mktemp("state"), n=6000)
+    daemon = FedDaemon(tmp_path_factory.mktemp("state"))
+    daemon.feed(6000)
     yield daemon
     daemon.close()
 

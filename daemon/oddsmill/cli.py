@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import CheckpointError, ConfigError, InputFileError, OddsmillError
+from .errors import CheckpointError, ConfigError, InputFileError, OddsmillError, UsageError
 from .reference import Z95, AliasedError
 
 log = logging.getLogger("oddsmill")
@@ -35,10 +35,6 @@ LEARNER_FLAGS = {  # flag -> (setting, type)
     "max_features": int,
     "max_centred": int,
 }
-
-
-class UsageError(OddsmillError):
-    pass
 
 
 class _Parser(argparse.ArgumentParser):
@@ -151,6 +147,11 @@ def checkpoint_state(engine: Any) -> dict[str, Any]:
 
 
 def load_engine(target: str) -> Any:
+    return load_state(target)[0]
+
+
+def load_state(target: str) -> tuple[Any, float]:
+    """(engine, when its checkpoint was written) of a state directory or a checkpoint file."""
     from .engine import Engine
     from .storage import load_newest, read_checkpoint
 
@@ -165,7 +166,7 @@ def load_engine(target: str) -> Any:
     else:
         raise CheckpointError(f"{target}: no such file or directory")
     try:
-        return Engine.from_state_dict(state["engine"])
+        return Engine.from_state_dict(state["engine"]), float(state.get("created", 0.0))
     except (KeyError, TypeError, ValueError) as e:
         raise CheckpointError(f"{target}: the checkpoint's content is not an oddsmill state ({e})") from None
 
@@ -471,6 +472,54 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(args)
 
 
+# -- watching --------------------------------------------------------------------------------------
+def cmd_prometheus(args: argparse.Namespace) -> int:
+    from importlib import resources
+
+    name = {"rules": "rules.yml", "scrape": "scrape.yml"}[args.what]
+    text = (resources.files("oddsmill") / "prometheus" / name).read_text()
+    if args.what == "scrape":
+        _check_http(args.http)
+        text = text.replace('"127.0.0.1:7573"', json.dumps(args.http))
+    print(text, end="")
+    return 0
+
+
+def _check_http(http: str) -> None:
+    host, _, port = http.rpartition(":")
+    if not host or not port.isdigit() or "/" in http:
+        raise UsageError(f"--http must be HOST:PORT, got {http!r}")
+
+
+def cmd_watch(args: argparse.Namespace) -> int:
+    from .watch import watch
+
+    _check_http(args.http)
+    if not args.interval > 0:
+        raise UsageError(f"--interval must be > 0, got {args.interval}")
+    try:
+        return watch(args.http, args.interval, args.once)
+    except KeyboardInterrupt:
+        return 0
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from .report import report_document, write_html, write_png
+
+    out = Path(args.out)
+    if out.suffix.lower() not in (".html", ".htm"):
+        raise UsageError(f"--out must name an .html file, got {args.out!r}")
+    if not out.parent.is_dir():
+        raise UsageError(f"--out {args.out!r}: no such directory {str(out.parent)!r}")
+    engine, created = load_state(args.state)
+    doc = report_document(engine, created, args.state)
+    if args.png:
+        write_png(doc, out.with_suffix(".png"))  # first: a missing matplotlib writes nothing
+    write_html(doc, out)
+    print(f"wrote {out}" + (f" and {out.with_suffix('.png')}" if args.png else ""))
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="oddsmill", description="An online logistic-regression daemon and its tools.")
     p.add_argument("-v", "--verbose", action="store_true")
@@ -562,6 +611,23 @@ def build_parser() -> argparse.ArgumentParser:
         help="leave the daemon up after the summary (Ctrl-C stops it)",
     )
     d.set_defaults(func=cmd_demo)
+
+    w = sub.add_parser("watch", help="the dashboard's figures, live, in a terminal")
+    w.add_argument("--http", default="127.0.0.1:7573", metavar="HOST:PORT", help="the daemon's HTTP address")
+    w.add_argument("--interval", type=float, default=2.0, metavar="SECONDS", help="between refreshes")
+    w.add_argument("--once", action="store_true", help="print one screen and exit (1 if the daemon does not answer)")
+    w.set_defaults(func=cmd_watch)
+
+    rp = sub.add_parser("report", help="a checkpoint's dashboard as one self-contained HTML file")
+    rp.add_argument("state", metavar="STATE-OR-CHECKPOINT")
+    rp.add_argument("--out", required=True, metavar="FILE.html")
+    rp.add_argument("--png", action="store_true", help="also FILE.png: the log-loss and reliability charts")
+    rp.set_defaults(func=cmd_report)
+
+    pm = sub.add_parser("prometheus", help="print an example Prometheus scrape configuration or alert rules")
+    pm.add_argument("what", choices=["rules", "scrape"])
+    pm.add_argument("--http", default="127.0.0.1:7573", metavar="HOST:PORT", help="the daemon to scrape")
+    pm.set_defaults(func=cmd_prometheus)
     return p
 
 

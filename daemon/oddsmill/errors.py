@@ -10,6 +10,10 @@ class OddsmillError(Exception):
     """Root of every error oddsmill raises on purpose."""
 
 
+class UsageError(OddsmillError):
+    """A command was asked for something it cannot do: "--top must be >= 0, got -1"."""
+
+
 class ConfigError(OddsmillError, ValueError):
     """A setting is unknown or out of range: "l2 must be >= 0, got -1"."""
 

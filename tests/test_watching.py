@@ -1,0 +1,331 @@
+"""Watching a daemon from outside: a real Prometheus scraping it, the shipped alert rules checked
+by promtool, the terminal view driven under tmux, and the report rendered by Chromium."""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import os
+import socket
+import subprocess
+import time
+import urllib.parse
+import urllib.request
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from oddsmill.cli import main
+
+from tests.conftest import DEMO, FedDaemon
+from tests.test_dashboard import Page
+from tests.tools import ARTIFACTS, chromium, require
+
+
+def run_cli(*argv: str) -> tuple[int, str]:
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out):
+        code = main(list(argv))
+    return code, out.getvalue()
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port: int = s.getsockname()[1]
+        return port
+
+
+def wait_for(what: str, check: Any, timeout: float = 30.0) -> Any:
+    """Poll `check()` until it returns something truthy (the outside program's own answer, not a guess
+    of time)."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        got = check()
+        if got:
+            return got
+        time.sleep(0.1)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+# -- alert rules and the example configuration -------------------------------------------------------
+def test_the_shipped_rules_and_scrape_configuration_pass_promtool(tmp_path: Path) -> None:
+    promtool = require("promtool")
+    code, rules = run_cli("prometheus", "rules")
+    assert code == 0
+    (tmp_path / "oddsmill-rules.yml").write_text(rules)
+    code, scrape = run_cli("prometheus", "scrape", "--http", "10.1.2.3:9999")
+    assert code == 0 and '"10.1.2.3:9999"' in scrape
+    (tmp_path / "prometheus.yml").write_text(scrape)
+    done = subprocess.run(
+        [promtool, "check", "rules", "oddsmill-rules.yml"], cwd=tmp_path, capture_output=True, text=True
+    )
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "SUCCESS: 7 rules found" in done.stdout
+    done = subprocess.run([promtool, "check", "config", "prometheus.yml"], cwd=tmp_path, capture_output=True, text=True)
+    assert done.returncode == 0, done.stdout + done.stderr
+
+
+RULE_TESTS = """
+rule_files: [oddsmill-rules.yml]
+evaluation_interval: 1m
+tests:
+  # a model whose recent log-loss climbs from its long-run 0.40 to 0.60: drift fires after 15 minutes
+  - interval: 1m
+    input_series:
+      - series: 'oddsmill_log_loss{instance="d", job="oddsmill"}'
+        values: '0.40x40'
+      - series: 'oddsmill_log_loss_window{instance="d", job="oddsmill"}'
+        values: '0.40x10 0.60x30'
+      - series: 'oddsmill_log_loss_count_total{instance="d", job="oddsmill"}'
+        values: '50000+100x40'
+      - series: 'oddsmill_calibration_error_window{instance="d", job="oddsmill"}'
+        values: '0.01x40'
+    alert_rule_test:
+      - eval_time: 20m
+        alertname: OddsmillDrifting
+        exp_alerts: []
+      - eval_time: 30m
+        alertname: OddsmillDrifting
+        exp_alerts:
+          - exp_labels: {severity: warning, instance: d, job: oddsmill}
+            exp_annotations:
+              summary: "d: recent log-loss 0.600 is 25% above the long-run figure"
+      - eval_time: 30m
+        alertname: OddsmillMiscalibrated
+        exp_alerts: []
+  # a sequence gap, and checkpoints that stop at 10 minutes (alerting 15 + 5 minutes on)
+  - interval: 1m
+    input_series:
+      - series: 'oddsmill_events_lost_total{instance="d", job="oddsmill"}'
+        values: '0x10 3x20'
+      - series: 'oddsmill_checkpoint_last_success_timestamp_seconds{instance="d", job="oddsmill"}'
+        values: '0+60x10 600x30'
+    alert_rule_test:
+      - eval_time: 12m
+        alertname: OddsmillEventsLost
+        exp_alerts:
+          - exp_labels: {severity: warning, instance: d, job: oddsmill}
+            exp_annotations:
+              summary: "d: 3 messages lost in 10 minutes"
+      - eval_time: 25m
+        alertname: OddsmillEventsLost
+        exp_alerts: []
+      - eval_time: 12m
+        alertname: OddsmillCheckpointOld
+        exp_alerts: []
+      - eval_time: 35m
+        alertname: OddsmillCheckpointOld
+        exp_alerts:
+          - exp_labels: {severity: critical, instance: d, job: oddsmill}
+            exp_annotations:
+              summary: "d: last checkpoint 25m 0s ago"
+"""
+
+
+def test_the_alert_rules_fire_on_drift_gaps_and_an_old_checkpoint(tmp_path: Path) -> None:
+    # promtool's rule unit tests evaluate the shipped rules on synthetic series
+    promtool = require("promtool")
+    (tmp_path / "oddsmill-rules.yml").write_text(run_cli("prometheus", "rules")[1])
+    (tmp_path / "tests.yml").write_text(RULE_TESTS)
+    done = subprocess.run([promtool, "test", "rules", "tests.yml"], cwd=tmp_path, capture_output=True, text=True)
+    assert done.returncode == 0, done.stdout + done.stderr
+
+
+def test_a_bad_http_address_is_refused() -> None:
+    assert run_cli("prometheus", "scrape", "--http", "no-port")[0] == 2
+    assert run_cli("watch", "--http", "http://x/")[0] == 2
+
+
+# -- a real Prometheus -------------------------------------------------------------------------------
+class Prometheus:
+    def __init__(self, target: str, workdir: Path) -> None:
+        exe = require("prometheus")
+        self.port = free_port()
+        config = workdir / "prometheus.yml"
+        config.write_text(
+            "global: {scrape_interval: 1s, evaluation_interval: 1s}\n"
+            f"scrape_configs:\n  - job_name: oddsmill\n    static_configs:\n      - targets: ['{target}']\n"
+        )
+        self.log = open(workdir / "prometheus.log", "w")  # noqa: SIM115 (closed in close())
+        self.proc = subprocess.Popen(
+            [
+                exe,
+                f"--config.file={config}",
+                f"--storage.tsdb.path={workdir / 'data'}",
+                f"--web.listen-address=127.0.0.1:{self.port}",
+            ],
+            stdout=self.log,
+            stderr=subprocess.STDOUT,
+        )
+        wait_for("Prometheus to be ready", self._ready)
+
+    def _ready(self) -> bool:
+        assert self.proc.poll() is None, "prometheus exited; see prometheus.log"
+        try:
+            with urllib.request.urlopen(f"http://127.0.0.1:{self.port}/-/ready", timeout=2) as r:
+                return bool(r.status == 200)
+        except OSError:
+            return False
+
+    def query(self, promql: str) -> list[dict[str, Any]]:
+        url = f"http://127.0.0.1:{self.port}/api/v1/query?" + urllib.parse.urlencode({"query": promql})
+        with urllib.request.urlopen(url, timeout=10) as r:
+            doc = json.load(r)
+        assert doc["status"] == "success", doc
+        result: list[dict[str, Any]] = doc["data"]["result"]
+        return result
+
+    def value(self, promql: str) -> float | None:
+        result = self.query(promql)
+        return float(result[0]["value"][1]) if result else None
+
+    def close(self) -> None:
+        self.proc.terminate()
+        self.proc.wait(20)
+        self.log.close()
+
+
+@pytest.fixture
+def prometheus_and_daemon(tmp_path: Path) -> Iterator[tuple[Prometheus, FedDaemon]]:
+    require("prometheus")
+    daemon = FedDaemon(tmp_path / "state")
+    prom = Prometheus(daemon.server.bound["http"], tmp_path)
+    try:
+        yield prom, daemon
+    finally:
+        prom.close()
+        daemon.close()
+
+
+def test_prometheus_scrapes_the_daemon_and_agrees_with_its_figures(
+    prometheus_and_daemon: tuple[Prometheus, FedDaemon],
+) -> None:
+    prom, daemon = prometheus_and_daemon
+    # Prometheus has seen the fresh daemon at step 0 before any event is sent ...
+    wait_for("a first scrape", lambda: prom.value("oddsmill_updates_total") == 0.0)
+    daemon.feed(6000)
+    status = daemon.status()
+    # ... and then at its final step
+    wait_for("the last scrape", lambda: prom.value("oddsmill_updates_total") == float(status["step"]))
+    assert status["step"] == daemon.learned > 1000
+    counts = prom.query("oddsmill_log_loss_count_total[30s]")[0]["values"]
+    assert float(counts[0][1]) == 0.0, "the window must reach back to before the first event"
+    sums = prom.query("oddsmill_log_loss_sum_total[30s]")[0]["values"]
+    assert float(sums[-1][1]) == pytest.approx(status["log_loss_sum"], rel=1e-15)
+    assert float(counts[-1][1]) == status["log_loss_count"]
+    # over a window that holds the whole stream, the mean log-loss PromQL computes is the daemon's
+    # progressive log-loss
+    ratio = prom.value("rate(oddsmill_log_loss_sum_total[30s]) / rate(oddsmill_log_loss_count_total[30s])")
+    assert ratio == pytest.approx(status["log_loss"], rel=1e-9)
+    assert prom.value("oddsmill_log_loss") == pytest.approx(status["log_loss"], rel=1e-15)
+    assert prom.value('oddsmill_events_total{kind="outcome"}') == float(status["events"]["outcome"])
+    print(f"Prometheus: step {status['step']}, mean log-loss by rate() {ratio:.6f}, daemon {status['log_loss']:.6f}")
+
+
+# -- the terminal view ---------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def fed(tmp_path_factory: pytest.TempPathFactory) -> Iterator[FedDaemon]:
+    daemon = FedDaemon(tmp_path_factory.mktemp("state"))
+    daemon.feed(4000)
+    yield daemon
+    daemon.close()
+
+
+def test_watch_shows_the_figures_live_in_a_terminal(fed: FedDaemon) -> None:
+    tmux = require("tmux")
+    sock = f"oddsmill-test-{os.getpid()}"
+    status = fed.status()
+
+    def pane() -> str:
+        done = subprocess.run([tmux, "-L", sock, "capture-pane", "-p", "-t", "watch"], capture_output=True, text=True)
+        return done.stdout
+
+    cmd = f"oddsmill watch --http {fed.server.bound['http']} --interval 0.5"
+    subprocess.run([tmux, "-L", sock, "new-session", "-d", "-s", "watch", "-x", "110", "-y", "60", cmd], check=True)
+    try:
+        screen = wait_for("the watch screen", lambda: (s := pane()) and f"step {status['step']:,}" in s and s)
+        assert "healthy" in screen and "NOT HEALTHY" not in screen
+        assert f"recent {status['log_loss_window']:.4f}" in screen
+        assert f"since start {status['log_loss']:.4f}" in screen
+        assert f"calibration error {status['calibration_error_window']:.4f}" in screen
+        spark = next(
+            line for line in screen.splitlines() if line.startswith("  ") and set(line.strip()) <= set("▁▂▃▄▅▆▇█ ")
+        )
+        assert len(spark.strip()) >= 10
+        top = status["coefficients"][0]
+        assert top["feature"] in screen
+        # Ctrl-C ends it cleanly: the session closes with the program
+        subprocess.run([tmux, "-L", sock, "send-keys", "-t", "watch", "C-c"], check=True)
+        wait_for(
+            "watch to exit on Ctrl-C",
+            lambda: (
+                subprocess.run([tmux, "-L", sock, "has-session", "-t", "watch"], capture_output=True).returncode != 0
+            ),
+            timeout=10,
+        )
+    finally:
+        subprocess.run([tmux, "-L", sock, "kill-server"], capture_output=True)
+
+
+def test_watch_once_against_no_daemon_says_so_and_fails() -> None:
+    done = subprocess.run(
+        ["oddsmill", "watch", "--once", "--http", f"127.0.0.1:{free_port()}"],
+        capture_output=True,
+        text=True,
+        timeout=30,
+    )
+    assert done.returncode == 1
+    assert "not answering" in done.stderr
+
+
+# -- the report ----------------------------------------------------------------------------------------
+def test_report_renders_a_checkpoint_self_contained_with_a_png(tmp_path: Path) -> None:
+    state = tmp_path / "state"
+    assert run_cli("replay", str(DEMO), "--state", str(state))[0] == 0
+    out = tmp_path / "review.html"
+    code, said = run_cli("report", str(state), "--out", str(out), "--png")
+    assert code == 0, said
+    html = out.read_text()
+    for outside in ("src=", "href=", "http://", "https://", "@import"):  # nothing fetched from elsewhere
+        assert outside not in html.replace("http://www.w3.org/2000/svg", ""), outside
+    inspected = json.loads(run_cli("inspect", str(state), "--json")[1])
+
+    dom = chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile")
+    page = Page()
+    page.feed(dom)
+    m = inspected["metrics"]
+    assert page.body["data-state"] == "report"
+    assert int(page.body["data-step"]) == inspected["step"]
+    for key in ("log_loss", "log_loss_window", "brier_window", "calibration_error_window", "learning_rate"):
+        assert float(page.figures[key]) == m[key], key
+    assert int(page.figures["log_loss_count"]) == m["log_loss_count"]
+    assert page.series["since start"] > 50
+    assert [b["data-feature"] for b in page.bars] == [c["feature"] for c in inspected["coefficients"][:12]]
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    chromium(
+        out.as_uri(), "--window-size=1300,1250", f"--screenshot={ARTIFACTS / 'report.png'}", user_data=tmp_path / "p2"
+    )
+
+    # the PNG: decoded, the size asked for, and not blank: both charts drew lines on it
+    import matplotlib.image
+
+    png = out.with_suffix(".png")
+    image = matplotlib.image.imread(png)
+    assert image.shape[:2] == (420, 1100)
+    ink = image[:, :, :3].mean(axis=2) < 0.9
+    left, right = ink[60:380, 60:540], ink[60:380, 600:1080]
+    assert left.mean() > 0.01 and right.mean() > 0.01, (left.mean(), right.mean())
+    coloured = np.abs(image[:, :, 0] - image[:, :, 2]) > 0.2  # the series are drawn in colour
+    assert coloured.sum() > 1000
+    (ARTIFACTS / "report-charts.png").write_bytes(png.read_bytes())
+
+
+def test_report_refuses_a_bad_destination_and_a_missing_state(tmp_path: Path) -> None:
+    assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "r.html"))[0] == 2  # no checkpoint
+    assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "r.pdf"))[0] == 2
+    assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "nowhere" / "r.html"))[0] == 2
+    assert list(tmp_path.iterdir()) == []
