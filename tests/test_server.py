@@ -7,6 +7,7 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -89,7 +90,7 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def start(state: Path, ingest: str, scores: str) -> subprocess.Popen[str]:
+def start(state: Path, ingest: str, scores: str, *extra: str) -> subprocess.Popen[str]:
     proc = subprocess.Popen(
         [
             sys.executable,
@@ -106,18 +107,29 @@ def start(state: Path, ingest: str, scores: str) -> subprocess.Popen[str]:
             scores,
             "--scale-warmup",
             "200",
+            *extra,
         ],
         stderr=subprocess.PIPE,
         text=True,
         env={**os.environ, "PYTHONUNBUFFERED": "1"},
     )
     assert proc.stderr is not None
+    serving = threading.Event()
+    lines: list[str] = []
+
+    def read(stream: Any) -> None:  # drains the pipe for the daemon's whole life, so it never blocks
+        for line in stream:
+            lines.append(line)
+            if "serving:" in line:
+                serving.set()
+
+    threading.Thread(target=read, args=(proc.stderr,), daemon=True).start()
     deadline = time.monotonic() + 60
-    for line in proc.stderr:
-        if "serving:" in line:
-            return proc
-        assert time.monotonic() < deadline, "the daemon did not start"
-    raise AssertionError(f"the daemon exited with {proc.wait()}")
+    while not serving.wait(0.1):
+        if proc.poll() is not None:
+            raise AssertionError(f"the daemon exited with {proc.returncode}: {''.join(lines)}")
+        assert time.monotonic() < deadline, f"the daemon did not start: {''.join(lines)}"
+    return proc
 
 
 def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Path) -> None:

@@ -322,6 +322,7 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "journal_keep": int,
     "fsync": str,
     "fsync_ms": float,
+    "outage_hold_bytes": int,
 }
 
 
@@ -397,7 +398,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
     server.serve(stop)
-    return 0
+    return 0 if server.clean_exit else 1
 
 
 # -- send and listen ---------------------------------------------------------------------------------
@@ -567,6 +568,12 @@ def build_parser() -> argparse.ArgumentParser:
         help="fsync the journal every block, every --fsync-ms (default), or leave it to the OS",
     )
     s.add_argument("--fsync-ms", dest="fsync_ms", type=float, help="with --fsync interval (default 1000)")
+    s.add_argument(
+        "--outage-hold-bytes",
+        dest="outage_hold_bytes",
+        type=int,
+        help="while the state directory cannot be written, hold this much to learn later (default 256 MiB)",
+    )
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")

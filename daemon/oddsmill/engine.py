@@ -161,6 +161,35 @@ class Engine:
                 out.append((n, r))
         return out
 
+    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+        """Scores for the events with features, from the model as it stands, changing nothing: not
+        the vocabulary (unknown features count as absent), not the pending store, not a counter.
+        What the daemon answers while it cannot write its state; the items are learned later."""
+        lr = self.learner
+        b = BlockBuilder()
+        owners: list[tuple[int, Any, float]] = []
+        out: list[tuple[int, Score | Rejection]] = []
+        for n, (arrival, item) in enumerate(items):
+            if isinstance(item, ProtocolError):
+                out.append((n, Rejection(item.event_id, item.reason, item.detail)))
+                continue
+            for ev in _events(item):
+                if ev.x is None:
+                    continue
+                try:
+                    slots, values = lr.encode(ev.x, grow=False, event_id=ev.id)
+                except ProtocolError as e:
+                    out.append((n, Rejection(e.event_id, e.reason, e.detail)))
+                    continue
+                b.add(slots, values, K.OP_SCORE, 0.0, ev.w)
+                owners.append((n, ev.id, arrival))
+        logits = lr.score(b.build()) if len(b) else np.empty(0)
+        out.extend(
+            (n, Score(ident, float(z), lr.step, arrival)) for (n, ident, arrival), z in zip(owners, logits, strict=True)
+        )
+        out.sort(key=lambda r: r[0])  # stable: in item order, each item's own results in order
+        return out
+
     # -- helpers -------------------------------------------------------------------------------
     def _reject(self, ident: Any, reason: str, detail: str) -> Rejection:
         self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1

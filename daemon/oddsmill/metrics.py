@@ -19,7 +19,7 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from importlib import resources
 from typing import Any
 
-from prometheus_client import CollectorRegistry, Histogram, generate_latest
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 from prometheus_client.registry import Collector
@@ -122,6 +122,17 @@ class Board:
             buckets=(0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0),
             registry=registry,
         )
+        self.write_failures = Counter(
+            "oddsmill_write_failures",
+            "Times a write of the journal or a checkpoint failed (each begins an outage).",
+            registry=registry,
+        )
+        self.outage_dropped = Counter(
+            "oddsmill_outage_dropped",
+            "Messages dropped because the hold for a write outage was full.",
+            registry=registry,
+        )
+        self.held = 0  # messages held during a write outage, set by the loop
         registry.register(SnapshotCollector(self))
 
         self.heartbeat = time.time()  # set by the loop every time it comes round
@@ -183,6 +194,16 @@ class SnapshotCollector(Collector):
                 "When the last checkpoint was written.",
                 s.last_checkpoint,
             ),
+            (
+                "oddsmill_state_writable",
+                "1 while the journal and checkpoints can be written; 0 during a write outage.",
+                1.0 if s.writable else 0.0,
+            ),
+            (
+                "oddsmill_outage_held",
+                "Messages held during a write outage, to be journaled and learned when writes succeed.",
+                float(self.board.held),
+            ),
         ]
         for name, doc, value in gauges:
             yield GaugeMetricFamily(name, doc, value=value)
@@ -223,6 +244,7 @@ def status(board: Board) -> dict[str, Any]:
     doc["time"] = now
     doc["uptime_seconds"] = now - board.started
     doc["rates"] = _nulls([list(r) for r in list(board.rates)])
+    doc["outage_held"] = board.held
     return doc
 
 

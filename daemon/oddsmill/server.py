@@ -47,6 +47,7 @@ SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status r
 RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them reads the whole vocabulary)
 RATE_SECONDS = 1.0  # events/s is sampled this often for the dashboard
 REPLAY_BLOCK = 4096
+RETRY_SECONDS = 1.0  # while the state directory cannot be written, try again this often
 
 
 @dataclass(frozen=True)
@@ -72,11 +73,15 @@ class ServerSettings:
     # cut loses at most that much; "os": the operating system decides.
     fsync: str = "interval"
     fsync_ms: float = 1000.0
+    # While the state directory cannot be written (a full disk, a read-only remount, a failed fsync)
+    # the daemon keeps scoring and holds what arrives, up to this many bytes, to journal and learn
+    # once writes succeed again; beyond it, messages are dropped and counted.
+    outage_hold_bytes: int = 256 << 20
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
             raise ConfigError(f"ingest_kind must be sub or pull, got {self.ingest_kind!r}")
-        for name in ("block_max", "checkpoint_events", "segment_bytes", "window", "pending_limit"):
+        for name in ("block_max", "checkpoint_events", "segment_bytes", "window", "pending_limit", "outage_hold_bytes"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int) or v < 1:
                 raise ConfigError(f"{name} must be an integer >= 1, got {v!r}")
@@ -99,6 +104,14 @@ class ServerSettings:
             host, _, port = self.http.rpartition(":")
             if not host or not port.isdigit():
                 raise ConfigError(f"http must be HOST:PORT or off, got {self.http!r}")
+
+
+def warm_up(settings: LearnerSettings) -> None:
+    """Load the compiled kernel (about a second from numba's cache) before serving, so that the
+    first event is not answered a second late. A scratch learner: the real state is untouched."""
+    scratch = Learner(settings)
+    scratch.learn_one({"warm": 1.0, "up": "yes"}, 1)
+    scratch.predict_logit({"warm": 1.0})
 
 
 def check_bind(name: str, address: str, allow_insecure: bool) -> None:
@@ -132,6 +145,7 @@ class Server:
     ) -> None:
         self.settings = settings
         self.engine, self.records, position = self._load(learner or LearnerSettings())
+        warm_up(self.engine.learner.settings)
         self._loaded_position = position
         self._replay_journal(position)
         if warm_start:
@@ -146,7 +160,20 @@ class Server:
         self.last_checkpoint_step = self.engine.learner.step
         self.bound: dict[str, str] = {}
         self.ready = threading.Event()
+        self.clean_exit = True  # False when the daemon stopped with messages it could not save
         self.last_fsync = time.monotonic()
+        # Write failures. `base` is the journal offset up to which everything is known to be safe
+        # (synced, or with fsync = "os" handed to the operating system); `unsaved` are the records
+        # after it, already learned. After a failure the segment is cut back to `base` and they are
+        # written again: a failed fsync is never taken as having succeeded.
+        self.base = self.journal.tell()
+        self.base_records = self.records
+        self.unsaved: list[tuple[float, bytes]] = []
+        self.outage: str | None = None  # why writes fail, while they do
+        self.held: list[tuple[float, bytes]] = []  # arrived during an outage: journal, then learn
+        self.held_bytes = 0
+        self.dropping = False
+        self.last_retry = 0.0
         self.board = Board(CollectorRegistry())
         self.last_ranking = self.last_rate = -1e9
         self._refresh()
@@ -158,7 +185,10 @@ class Server:
             top = (self.board.snapshot.intercept, self.board.snapshot.coefficients)
         else:
             self.last_ranking = now
-        self.board.snapshot = Snapshot.of(self.engine, self.last_checkpoint, coefficients=top)
+        self.board.snapshot = Snapshot.of(
+            self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top
+        )
+        self.board.held = len(self.held)
         self.last_refresh = now
         if now - self.last_rate >= RATE_SECONDS:
             self.board.sample_rates()
@@ -216,8 +246,19 @@ class Server:
             return JournalWriter(last)
         return JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
 
-    def checkpoint(self) -> Path:
+    def checkpoint(self) -> Path | None:
+        """Write a checkpoint; None (and an outage begins) when the state directory refuses it."""
+        if self.outage is not None:
+            return None
+        try:
+            return self._checkpoint()
+        except OSError as e:
+            self._fail(e)
+            return None
+
+    def _checkpoint(self) -> Path:
         self.journal.sync()
+        self._saved()
         position = {"segment": self.journal.path.name, "offset": self.journal.tell(), "records": self.records}
         state = {
             "kind": "oddsmill-state",
@@ -295,24 +336,39 @@ class Server:
                     t0 = time.perf_counter()
                     self.handle(frames, pub)
                     self.board.batch_seconds.observe(time.perf_counter() - t0)
+                if self.outage is not None and time.monotonic() - self.last_retry >= RETRY_SECONDS:
+                    self._recover()
                 if time.monotonic() - self.last_refresh >= SNAPSHOT_SECONDS:
                     self._refresh()
                 due = self.engine.learner.step - self.last_checkpoint_step >= s.checkpoint_events
-                if due or time.time() - self.last_checkpoint >= s.checkpoint_seconds:
+                if self.outage is None and (due or time.time() - self.last_checkpoint >= s.checkpoint_seconds):
                     self.checkpoint()
-            self.checkpoint()
+            if self.outage is not None:
+                self._recover()
+            if self.outage is not None:
+                log.error(
+                    "stopping while the state directory cannot be written (%s): %d held messages are lost",
+                    self.outage,
+                    len(self.held),
+                )
+                self.clean_exit = False
+            else:
+                self.checkpoint()
             if httpd is not None:
                 httpd.shutdown()
                 httpd.server_close()
-        self.journal.close()
+        if self.outage is None:
+            self.journal.close()
 
     def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any]) -> None:
-        """One block: journal, then score and learn, then publish, in arrival order."""
+        """One block: journal, then score and learn, then publish, in arrival order. While the state
+        directory cannot be written: score with the model as it stands, and hold the block."""
         arrival = time.time()
         items: list[tuple[float, Item]] = []
         owner: list[int] = []  # message index of each item
         shapes: list[str] = []  # "one", "batch" or "cols" for each message
         rejects: list[Rejection] = []
+        raws: list[bytes] = []
         for i, frames in enumerate(messages):
             shapes.append("one")
             if len(frames) != 2:
@@ -325,8 +381,7 @@ class Server:
             except ProtocolError as e:
                 rejects.append(self._count(Rejection(None, e.reason, e.detail)))
                 continue
-            self.journal.append(arrival, frames[1])
-            self.records += 1
+            raws.append(frames[1])
             if isinstance(body, dict) and "batch" in body:
                 shapes[i] = "batch"
             decoded = decode_body(body)
@@ -335,12 +390,13 @@ class Server:
             for item in decoded:
                 items.append((arrival, item))
                 owner.append(i)
-        if items:
-            self._persist()
-            if self.journal.tell() >= self.settings.segment_bytes:
-                self.journal.close()
-                self.journal = JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
-        results = self.engine.process(items) if items else []
+        if raws and self.outage is None:
+            self._journal(arrival, raws)
+        if self.outage is None:
+            results = self.engine.process(items) if items else []
+        else:
+            self._hold(arrival, raws)
+            results = self.engine.score_only(items)
         scores: dict[int, list[Score]] = {}
         for n, r in results:
             if isinstance(r, Score):
@@ -355,15 +411,103 @@ class Server:
         for r in rejects:
             pub.send_multipart([b"rejects", msgpack.packb({"id": r.id, "reason": r.reason, "detail": r.detail})])
 
-    def _persist(self) -> None:
-        """The journal's block reaches the operating system (and the disk, as the policy says)."""
+    # -- writing, and what happens when it fails -------------------------------------------------
+    def _journal(self, arrival: float, raws: list[bytes]) -> None:
+        """Journal a block's messages before anything of it is learned or published."""
+        try:
+            for raw in raws:
+                self.journal.append(arrival, raw)
+            synced = self._persist()
+        except OSError as e:
+            self._fail(e)  # the caller holds this block
+            return
+        self.records += len(raws)
+        self.unsaved.extend((arrival, raw) for raw in raws)
+        if synced or self.settings.fsync == "os":  # handed to the OS is all "os" promises
+            self._saved()
+        if self.journal.tell() >= self.settings.segment_bytes:
+            try:
+                self.journal.sync()
+                self._saved()
+                self.journal.close()
+                self.journal = JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
+                self._saved()
+            except OSError as e:
+                self._fail(e)
+
+    def _saved(self) -> None:
+        """Everything journaled so far is safe (synced, or as safe as the policy asks)."""
+        self.base = self.journal.tell()
+        self.base_records = self.records
+        self.unsaved.clear()
+
+    def _fail(self, e: OSError) -> None:
+        """A write failed: stop learning and journaling, keep scoring, hold what arrives."""
+        self.journal.abandon()
+        self.outage = f"{e.strerror or e} ({type(e).__name__})"
+        self.last_retry = time.monotonic()
+        self.board.write_failures.inc()
+        log.error(
+            "cannot write the state directory %s: %s. Scoring goes on; learning and journaling pause "
+            "until writes succeed again (tried every %g s); /healthz answers 503",
+            self.settings.state_dir,
+            self.outage,
+            RETRY_SECONDS,
+        )
+        self.held, self.held_bytes = [], 0
+        self._refresh()
+
+    def _hold(self, arrival: float, raws: list[bytes]) -> None:
+        for raw in raws:
+            if self.held_bytes + len(raw) > self.settings.outage_hold_bytes:
+                self.board.outage_dropped.inc()
+                if not self.dropping:
+                    log.error("the hold for a write outage is full: dropping messages (counted)")
+                    self.dropping = True
+                continue
+            self.held.append((arrival, raw))
+            self.held_bytes += len(raw)
+
+    def _recover(self) -> None:
+        """Try the writes again: cut the segment back to what is known safe, write the unsaved and
+        the held records, sync; then learn the held ones (publishing nothing: they were scored)."""
+        self.last_retry = time.monotonic()
+        path = self.journal.path
+        journal = None
+        try:
+            JournalWriter.cut(path, self.base)
+            journal = JournalWriter(path)
+            for arrival, raw in self.unsaved + self.held:
+                journal.append(arrival, raw)
+            journal.sync()
+        except OSError as e:
+            if journal is not None:
+                journal.abandon()
+            self.outage = f"{e.strerror or e} ({type(e).__name__})"
+            return
+        held, self.held, self.held_bytes, self.dropping = self.held, [], 0, False
+        self.journal = journal
+        self.records = self.base_records + len(self.unsaved) + len(held)
+        self._saved()
+        self.outage = None
+        items = [(arrival, item) for arrival, raw in held for item in decode_body(unpack(raw))]
+        for lo in range(0, len(items), REPLAY_BLOCK):
+            self.engine.process(items[lo : lo + REPLAY_BLOCK])
+        log.warning("writes succeed again: journaled and learned %d messages held during the outage", len(held))
+        self.checkpoint()
+        self._refresh()
+
+    def _persist(self) -> bool:
+        """The journal's block reaches the operating system (and the disk, as the policy says);
+        True when it was synced."""
         policy = self.settings.fsync
         now = time.monotonic()
         if policy == "block" or (policy == "interval" and (now - self.last_fsync) * 1000 >= self.settings.fsync_ms):
             self.journal.sync()
             self.last_fsync = now
-        else:
-            self.journal.flush()
+            return True
+        self.journal.flush()
+        return False
 
     def _count(self, r: Rejection) -> Rejection:
         rej = self.engine.counters.rejected

@@ -113,11 +113,15 @@ def write_checkpoint(state_dir: Path, step: int, state: dict[str, Any], keep: in
     data = encode_checkpoint(state)
     final = state_dir / f"checkpoint-{step:012d}.omc"
     tmp = state_dir / f".{final.name}.tmp"
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, final)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, final)
+    except OSError:
+        tmp.unlink(missing_ok=True)  # a full disk keeps no half-written file
+        raise
     _fsync_dir(state_dir)
     for old in list_checkpoints(state_dir)[:-keep]:
         old.unlink(missing_ok=True)
@@ -162,34 +166,77 @@ def journal_record(arrival: float, raw_body: bytes) -> bytes:
 
 
 class JournalWriter:
-    """Appends records to a segment; `sync` flushes and fsyncs."""
+    """Appends records to a segment; `flush` hands them to the operating system, `sync` to the disk.
+
+    The buffer is the writer's own (the file is opened unbuffered), so after a failed write it knows
+    exactly which bytes reached the file, and `abandon` can drop the rest without writing it.
+    """
 
     def __init__(self, path: Path) -> None:
         new = not path.exists() or path.stat().st_size == 0
         self.path = path
-        self._f = open(path, "ab")
-        if new:
-            self._f.write(JOURNAL_MAGIC + struct.pack("<I", JOURNAL_VERSION))
+        self._fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        self._end = os.lseek(self._fd, 0, os.SEEK_END)  # bytes in the file
+        self._buf = bytearray()
+        if new:  # the header goes to the file at once, so that tell() is an offset the file has
+            self._buf += JOURNAL_MAGIC + struct.pack("<I", JOURNAL_VERSION)
+            try:
+                self.flush()
+            except OSError:
+                self.abandon()
+                raise
 
     def append(self, arrival: float, raw_body: bytes) -> None:
-        self._f.write(journal_record(arrival, raw_body))
+        self._buf += journal_record(arrival, raw_body)
 
     def flush(self) -> None:
         """Hand what was appended to the operating system: it survives the process dying."""
-        self._f.flush()
+        view = memoryview(self._buf)
+        done = 0
+        try:
+            while done < len(view):
+                done += os.write(self._fd, view[done:])
+        finally:
+            view.release()
+            self._end += done
+            del self._buf[:done]
 
     def sync(self) -> None:
         """flush, then fsync: it survives the machine losing power."""
-        self._f.flush()
-        os.fsync(self._f.fileno())
+        self.flush()
+        os.fsync(self._fd)
 
     def tell(self) -> int:
         """The byte offset just past the last record appended."""
-        self._f.flush()
-        return self._f.tell()
+        return self._end + len(self._buf)
 
     def close(self) -> None:
-        self._f.close()
+        if self._fd < 0:
+            return
+        try:
+            self.flush()
+        finally:
+            os.close(self._fd)
+            self._fd = -1
+
+    def abandon(self) -> None:
+        """Close after a failed write, dropping what is still buffered (it will be written again)."""
+        self._buf.clear()
+        if self._fd < 0:
+            return
+        try:
+            os.close(self._fd)
+        except OSError:
+            pass
+        self._fd = -1
+
+    @staticmethod
+    def cut(path: Path, offset: int) -> None:
+        """Cut a segment back to `offset` (the end of its last record known to be good), on disk."""
+        with open(path, "r+b") as f:
+            f.truncate(offset)
+            f.flush()
+            os.fsync(f.fileno())
 
     def __enter__(self) -> JournalWriter:
         return self
