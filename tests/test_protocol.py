@@ -6,7 +6,7 @@ import msgpack
 import numpy as np
 import pytest
 from oddsmill.errors import ProtocolError
-from oddsmill.protocol import Columns, Event, decode_body, unpack
+from oddsmill.protocol import MAX_DEPTH, MAX_ITEMS, MAX_MESSAGE, MAX_STR, Columns, Event, decode_body, unpack
 
 
 @pytest.mark.parametrize(
@@ -104,3 +104,21 @@ def test_a_feature_too_large_for_a_float_is_rejected() -> None:
     with pytest.raises(ProtocolError) as e:
         encode_features({"route_km": 10**400}, Vocabulary(max_features=10))
     assert e.value.reason == "non_finite"
+
+
+@pytest.mark.parametrize(
+    ("raw", "reason"),
+    [
+        (b"\x00" * (MAX_MESSAGE + 1), "too_large"),  # refused before decoding
+        (msgpack.packb({"x": {"note": "z" * (MAX_STR + 1)}}), "too_large"),
+        (msgpack.packb({"batch": [0] * (MAX_ITEMS + 1)}), "too_large"),
+        (b"\x91" * (MAX_DEPTH + 1) + b"\x01", "too_large"),  # nested deeper than the decoder's stack
+        (b"\xd4\x00\x00", "undecodable"),  # an extension type: not part of the protocol
+        (b"\xc1", "undecodable"),
+    ],
+)
+def test_limits_of_the_decoder(raw: bytes, reason: str) -> None:
+    with pytest.raises(ProtocolError) as e:
+        unpack(raw)
+    assert e.value.reason == reason
+    assert unpack(b"\x91" * MAX_DEPTH + b"\x01") is not None  # the deepest accepted

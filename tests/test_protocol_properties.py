@@ -35,7 +35,8 @@ def test_arbitrary_bytes_decode_or_raise_the_protocol_error(raw: bytes) -> None:
     try:
         body = unpack(raw)
     except ProtocolError as e:
-        assert e.reason == "undecodable"
+        # a header may claim a string or array beyond a limit before the bytes run out
+        assert e.reason in ("undecodable", "too_large")
         return
     for item in decode_body(body):
         assert isinstance(item, Event | Columns | ProtocolError)

@@ -27,8 +27,14 @@ COLUMN_KEYS = frozenset({"cols", "rows", "y", "id", "src", "seq", "ts"})
 NO_LABEL = 255  # the uint8 that means "no label" in a columnar block's y bin
 # explicit msgpack limits: no string, bytes, array or map in a body may be larger
 MAX_STR = 1 << 16
-MAX_BIN = 1 << 28
+MAX_BIN = 1 << 24
 MAX_ITEMS = 1 << 20
+MAX_DEPTH = 1024  # fixed in msgpack's C decoder (measured: 1,024 nested arrays decode, 1,025 do not)
+MAX_MESSAGE = 16 << 20  # bytes of one body; a longer one is refused as too_large, undecoded
+# ZeroMQ's maximum message size on the ingest socket: a peer that sends more is disconnected by
+# ZeroMQ itself (the daemon never sees it, so cannot count it); between MAX_MESSAGE and this, the
+# daemon sees the message and counts it as too_large
+TRANSPORT_LIMIT = 4 * MAX_MESSAGE
 
 
 class Event(NamedTuple):
@@ -86,7 +92,10 @@ def decode_body(body: object) -> list[Item]:
 
 
 def unpack(raw: bytes) -> object:
-    """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack."""
+    """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack,
+    ("too_large") when it or a part of it is beyond a limit."""
+    if len(raw) > MAX_MESSAGE:
+        raise ProtocolError("too_large", f"the body is {len(raw):,} bytes; at most {MAX_MESSAGE:,} are accepted")
     try:
         return msgpack.unpackb(
             raw,
@@ -98,8 +107,14 @@ def unpack(raw: bytes) -> object:
             max_map_len=MAX_ITEMS,
             max_ext_len=0,
         )
+    except msgpack.StackError:
+        raise ProtocolError(
+            "too_large", f"the body nests deeper than msgpack's decoder allows ({MAX_DEPTH} levels)"
+        ) from None
     except Exception as e:  # msgpack raises several types for bad bytes
-        raise ProtocolError("undecodable", f"the body is not valid msgpack ({e})") from None
+        if "exceeds max_" in str(e) and "max_ext_len" not in str(e):  # "70000 exceeds max_str_len(65536)"
+            raise ProtocolError("too_large", f"a part of the body is too large: {e}") from None
+        raise ProtocolError("undecodable", f"the body is not valid msgpack ({e or type(e).__name__})") from None
 
 
 def _read_id(body: Mapping[str, Any]) -> Any:

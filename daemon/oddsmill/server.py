@@ -28,7 +28,7 @@ from .engine import Engine, Rejection, Score
 from .errors import ConfigError, ProtocolError
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
-from .protocol import Columns, Item, decode_body, unpack
+from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
 from .settings import LearnerSettings
 from .storage import (
     JOURNAL_MAGIC,
@@ -294,6 +294,7 @@ class Server:
         with ctx.socket(kind) as ingest, ctx.socket(zmq.PUB) as pub:
             for sock in (ingest, pub):
                 sock.setsockopt(zmq.LINGER, 0)
+            ingest.setsockopt(zmq.MAXMSGSIZE, TRANSPORT_LIMIT)
             try:
                 ingest.bind(s.ingest)
                 pub.bind(s.scores)
