@@ -12,7 +12,8 @@ alone.
 
 from __future__ import annotations
 
+from .keys import CurveKeys
 from .producer import Producer
 from .subscriber import ScoreSubscriber
 
-__all__ = ["Producer", "ScoreSubscriber"]
+__all__ = ["CurveKeys", "Producer", "ScoreSubscriber"]

@@ -10,6 +10,8 @@ import msgpack
 import numpy as np
 import zmq
 
+from .keys import CurveKeys
+
 
 class Producer:
     """Streams events to an oddsmill daemon.
@@ -23,7 +25,8 @@ class Producer:
     With `src`, events are numbered (`src`, `seq` from 0; each event of a batch, and each columnar
     block, has its own number) so the daemon can count what was lost and drop repeats. With
     `batch > 1`, events are sent `batch` at a time as `{"batch": [...]}`; `flush` sends what is
-    waiting, and `close` flushes.
+    waiting, and `close` flushes. With `curve`, the connection is authenticated and encrypted (a
+    daemon that requires CURVE ignores a producer without an allowed key).
     """
 
     def __init__(
@@ -36,6 +39,7 @@ class Producer:
         batch: int = 1,
         wait_for_daemon: float = 10.0,
         context: zmq.Context[Any] | None = None,
+        curve: CurveKeys | None = None,
     ) -> None:
         if kind not in ("pub", "push"):
             raise ValueError(f"kind must be pub or push, got {kind!r}")
@@ -44,6 +48,8 @@ class Producer:
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.XPUB if kind == "pub" else zmq.PUSH)
         self._sock.setsockopt(zmq.LINGER, 2000)  # close waits this long for queued messages
+        if curve is not None:
+            curve.apply(self._sock)
         self._sock.connect(address)
         self._topic = topic.encode()
         self._src = src

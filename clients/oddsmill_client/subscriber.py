@@ -9,12 +9,15 @@ from typing import Any
 import msgpack
 import zmq
 
+from .keys import CurveKeys
+
 
 class ScoreSubscriber:
     """Subscribes to a daemon's score socket; `receive` returns (topic, decoded body).
 
     Columnar score blocks carry `p` and `logit` as float64 little-endian bytes; `decode_columns`
-    turns them into lists.
+    turns them into lists. With `curve`, the connection is authenticated and encrypted (a daemon
+    that requires CURVE sends nothing to a subscriber without an allowed key).
     """
 
     def __init__(
@@ -22,10 +25,13 @@ class ScoreSubscriber:
         address: str = "tcp://127.0.0.1:7572",
         topics: Sequence[str] = ("scores", "rejects"),
         context: zmq.Context[Any] | None = None,
+        curve: CurveKeys | None = None,
     ) -> None:
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.SUB)
         self._sock.setsockopt(zmq.LINGER, 0)
+        if curve is not None:
+            curve.apply(self._sock)
         for topic in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, topic.encode())
         self._sock.connect(address)

@@ -323,6 +323,8 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "fsync": str,
     "fsync_ms": float,
     "outage_hold_bytes": int,
+    "curve_secret": str,
+    "curve_clients": str,
 }
 
 
@@ -423,7 +425,7 @@ def cmd_send(args: argparse.Namespace) -> int:
     source = _stdin_bodies() if args.file == "-" else read_bodies([args.file])
     t0 = time.monotonic()
     sent = 0
-    with Producer(args.to, kind=args.kind, src=args.src, batch=args.batch) as out:
+    with Producer(args.to, kind=args.kind, src=args.src, batch=args.batch, curve=_client_curve(args)) as out:
         for _, body, where in source:
             if not isinstance(body, dict):
                 raise InputFileError(where, None, "a message must be a map")
@@ -437,12 +439,49 @@ def cmd_send(args: argparse.Namespace) -> int:
     return 0
 
 
+def _client_curve(args: argparse.Namespace) -> Any:
+    """CurveKeys from --curve-secret and --curve-server, or None."""
+    from oddsmill_client import CurveKeys
+
+    if bool(args.curve_secret) != bool(args.curve_server):
+        raise UsageError("--curve-secret and --curve-server go together")
+    if not args.curve_secret:
+        return None
+    try:
+        return CurveKeys.load(args.curve_secret, args.curve_server)
+    except (OSError, ValueError) as e:
+        raise UsageError(f"cannot read the CURVE keys: {e}") from None
+
+
+def _client_curve_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--curve-secret", metavar="FILE", help="this client's secret certificate (NAME.key_secret)")
+    p.add_argument("--curve-server", metavar="FILE", help="the daemon's public certificate (NAME.key)")
+
+
+def cmd_keys(args: argparse.Namespace) -> int:
+    import zmq.auth
+
+    out = Path(args.dir)
+    out.mkdir(parents=True, exist_ok=True)
+    public, secret = out / f"{args.name}.key", out / f"{args.name}.key_secret"
+    for path in (public, secret):
+        if path.exists():
+            raise UsageError(f"{path} exists already; not overwriting a key")
+    if not args.name or "/" in args.name or args.name.startswith("."):
+        raise UsageError(f"--name must be a plain file name, got {args.name!r}")
+    zmq.auth.create_certificates(str(out), args.name)
+    secret.chmod(0o600)
+    print(f"public key: {public}   (give this one out)")
+    print(f"secret key: {secret}   (keep this one; readable by its owner only)")
+    return 0
+
+
 def cmd_listen(args: argparse.Namespace) -> int:
     from oddsmill_client import ScoreSubscriber
     from oddsmill_client.subscriber import decode_columns
 
     received = 0
-    with ScoreSubscriber(args.source) as scores:
+    with ScoreSubscriber(args.source, curve=_client_curve(args)) as scores:
         while args.count is None or received < args.count:
             try:
                 topic, body = scores.receive(timeout=args.timeout)
@@ -574,6 +613,18 @@ def build_parser() -> argparse.ArgumentParser:
         type=int,
         help="while the state directory cannot be written, hold this much to learn later (default 256 MiB)",
     )
+    s.add_argument(
+        "--curve-secret",
+        dest="curve_secret",
+        metavar="FILE",
+        help="the daemon's secret certificate: require CURVE on both sockets (with --curve-clients)",
+    )
+    s.add_argument(
+        "--curve-clients",
+        dest="curve_clients",
+        metavar="DIR",
+        help="directory of the public certificates (*.key) of the clients allowed to connect",
+    )
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")
@@ -600,6 +651,7 @@ def build_parser() -> argparse.ArgumentParser:
     se.add_argument("--rate", type=float, default=0.0, help="events a second (0: as fast as possible)")
     se.add_argument("--src", default=None, help="number the messages under this producer name")
     se.add_argument("--batch", type=int, default=1, help="events a message")
+    _client_curve_options(se)
     se.set_defaults(func=cmd_send)
 
     li = sub.add_parser("listen", help="print live scores")
@@ -607,7 +659,13 @@ def build_parser() -> argparse.ArgumentParser:
     li.add_argument("--json", action="store_true", help="one JSON object a line")
     li.add_argument("--count", type=int, default=None, help="stop after this many messages")
     li.add_argument("--timeout", type=float, default=None, help="stop after this many seconds of silence")
+    _client_curve_options(li)
     li.set_defaults(func=cmd_listen)
+
+    k = sub.add_parser("keys", help="make a CURVE key pair for the daemon or a client")
+    k.add_argument("dir", metavar="DIR", help="where to write NAME.key (public) and NAME.key_secret")
+    k.add_argument("--name", default="oddsmill", help="the files' name (default oddsmill)")
+    k.set_defaults(func=cmd_keys)
 
     d = sub.add_parser("demo", help="the whole job on the parcel demo data, ending in a summary")
     d.add_argument("--data", help="a demo log other than the bundled one")

@@ -77,6 +77,12 @@ class ServerSettings:
     # the daemon keeps scoring and holds what arrives, up to this many bytes, to journal and learn
     # once writes succeed again; beyond it, messages are dropped and counted.
     outage_hold_bytes: int = 256 << 20
+    # CURVE (PROTOCOL 1): the daemon's secret certificate (written by `oddsmill keys`) and a directory
+    # of the public certificates of the clients allowed to connect. With both, every producer and
+    # subscriber must authenticate, and all traffic is encrypted; then the sockets may bind off
+    # loopback. The directory is read at start.
+    curve_secret: str = ""
+    curve_clients: str = ""
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
@@ -91,15 +97,19 @@ class ServerSettings:
             raise ConfigError(f"fsync_ms must be a number > 0, got {self.fsync_ms!r}")
         if isinstance(self.journal_keep, bool) or not isinstance(self.journal_keep, int) or self.journal_keep < -1:
             raise ConfigError(f"journal_keep must be an integer >= -1 (-1 keeps all), got {self.journal_keep!r}")
-        for name in ("ingest", "scores", "http", "ingest_kind", "topic"):
+        for name in ("ingest", "scores", "http", "ingest_kind", "topic", "curve_secret", "curve_clients"):
             if not isinstance(getattr(self, name), str):
                 raise ConfigError(f"{name} must be a string, got {getattr(self, name)!r}")
         for name in ("checkpoint_seconds", "pending_ttl"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
                 raise ConfigError(f"{name} must be a number > 0, got {v!r}")
+        if bool(self.curve_secret) != bool(self.curve_clients):
+            raise ConfigError("curve_secret and curve_clients go together: give both, or neither")
+        if self.curve_secret:
+            load_curve(self.curve_secret, self.curve_clients)
         for name in ("ingest", "scores"):
-            check_bind(name, getattr(self, name), self.allow_insecure_bind)
+            check_bind(name, getattr(self, name), self.allow_insecure_bind, bool(self.curve_secret))
         if self.http != "off":
             host, _, port = self.http.rpartition(":")
             if not host or not port.isdigit():
@@ -114,8 +124,26 @@ def warm_up(settings: LearnerSettings) -> None:
     scratch.predict_logit({"warm": 1.0})
 
 
-def check_bind(name: str, address: str, allow_insecure: bool) -> None:
-    """PROTOCOL 1: ZeroMQ sockets bind to loopback unless the operator opts out explicitly."""
+def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
+    """The daemon's (public, secret) CURVE keys, after checking the allowed clients' directory."""
+    import zmq.auth
+
+    try:
+        public, secret = zmq.auth.load_certificate(secret_file)
+    except (OSError, ValueError) as e:
+        raise ConfigError(f"curve_secret {secret_file!r}: cannot read a certificate ({e})") from None
+    if secret is None:
+        raise ConfigError(f"curve_secret {secret_file!r} holds no secret key: give the .key_secret file")
+    clients = Path(clients_dir)
+    if not clients.is_dir():
+        raise ConfigError(f"curve_clients {clients_dir!r} is not a directory")
+    if not any(p.suffix == ".key" for p in clients.iterdir()):
+        log.warning("curve_clients %s holds no public key (*.key): no client can connect", clients_dir)
+    return public, secret
+
+
+def check_bind(name: str, address: str, allow_insecure: bool, curve: bool = False) -> None:
+    """PROTOCOL 1: ZeroMQ sockets bind to loopback unless CURVE is on or the operator opts out."""
     parts = urlsplit(address)
     if parts.scheme in ("ipc", "inproc"):
         return
@@ -128,13 +156,13 @@ def check_bind(name: str, address: str, allow_insecure: bool) -> None:
             loopback = ipaddress.ip_address(host).is_loopback
         except ValueError:
             loopback = False
-    if loopback:
+    if loopback or curve:
         return
     if not allow_insecure:
         raise ConfigError(
             f"{name} {address!r} is not a loopback address; binding off the machine needs CURVE keys "
-            "(not available in this version) or --allow-insecure-bind, which lets anyone who can reach "
-            "the port feed or read the model"
+            "(--curve-secret and --curve-clients; `oddsmill keys` makes them) or --allow-insecure-bind, "
+            "which lets anyone who can reach the port feed or read the model"
         )
     log.warning("%s binds to %s without authentication or encryption (--allow-insecure-bind)", name, address)
 
@@ -295,10 +323,24 @@ class Server:
             for sock in (ingest, pub):
                 sock.setsockopt(zmq.LINGER, 0)
             ingest.setsockopt(zmq.MAXMSGSIZE, TRANSPORT_LIMIT)
+            auth = None
+            if s.curve_secret:
+                from zmq.auth.thread import ThreadAuthenticator
+
+                public, secret = load_curve(s.curve_secret, s.curve_clients)
+                auth = ThreadAuthenticator(ctx, log=logging.getLogger("oddsmill.auth"))
+                auth.start()
+                auth.configure_curve(domain="*", location=s.curve_clients)
+                for sock in (ingest, pub):
+                    sock.curve_secretkey = secret
+                    sock.curve_publickey = public
+                    sock.curve_server = True
             try:
                 ingest.bind(s.ingest)
                 pub.bind(s.scores)
             except zmq.ZMQError as e:
+                if auth is not None:
+                    auth.stop()
                 raise ConfigError(f"cannot bind ({e}): ingest {s.ingest}, scores {s.scores}") from None
             if kind == zmq.SUB:
                 ingest.setsockopt(zmq.SUBSCRIBE, s.topic.encode())
@@ -315,12 +357,13 @@ class Server:
                     raise ConfigError(f"cannot serve HTTP on {s.http} ({e.strerror})") from None
                 self.bound["http"] = f"{host}:{httpd.server_address[1]}"
             log.info(
-                "serving: ingest %s (%s), scores %s, http %s, step %d",
+                "serving: ingest %s (%s), scores %s, http %s, step %d%s",
                 self.bound["ingest"],
                 s.ingest_kind,
                 self.bound["scores"],
                 self.bound.get("http", "off"),
                 self.engine.learner.step,
+                f", CURVE with the clients of {s.curve_clients}" if auth else "",
             )
             self.ready.set()
             poller = zmq.Poller()
@@ -358,6 +401,8 @@ class Server:
             if httpd is not None:
                 httpd.shutdown()
                 httpd.server_close()
+            if auth is not None:
+                auth.stop()
         if self.outage is None:
             self.journal.close()
 

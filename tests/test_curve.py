@@ -1,0 +1,122 @@
+"""CURVE (PROTOCOL 1): with keys configured, only allowed clients feed or read the daemon.
+
+Keys are made by `oddsmill keys`; the daemon allows the public keys in a directory. An unknown
+producer's events are never learned (nor journaled), and an unknown subscriber receives nothing,
+while an allowed client on the same daemon is served. With CURVE, binding off loopback is allowed."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+from typing import Any
+
+import pytest
+import zmq
+from oddsmill.errors import ConfigError
+from oddsmill.server import ServerSettings
+from oddsmill.settings import LearnerSettings
+from oddsmill.storage import list_journal, read_journal
+from oddsmill_client import CurveKeys, Producer, ScoreSubscriber
+
+from tests.conftest import RunningServer
+from tests.test_watching import run_cli
+
+
+@pytest.fixture
+def keys(tmp_path: Path) -> dict[str, Path]:
+    for where, name in (("daemon", "daemon"), ("alice", "alice"), ("mallory", "mallory")):
+        code, said = run_cli("keys", str(tmp_path / where), "--name", name)
+        assert code == 0 and "secret key" in said
+    allowed = tmp_path / "allowed"
+    allowed.mkdir()
+    shutil.copy(tmp_path / "alice" / "alice.key", allowed)
+    assert (tmp_path / "alice" / "alice.key_secret").stat().st_mode & 0o077 == 0  # owner only
+    assert run_cli("keys", str(tmp_path / "alice"), "--name", "alice")[0] == 2  # never overwrites
+    return {
+        "daemon_secret": tmp_path / "daemon" / "daemon.key_secret",
+        "daemon_public": tmp_path / "daemon" / "daemon.key",
+        "allowed": allowed,
+        "alice": tmp_path / "alice" / "alice.key_secret",
+        "mallory": tmp_path / "mallory" / "mallory.key_secret",
+    }
+
+
+def test_only_allowed_clients_feed_or_read_the_daemon(tmp_path: Path, keys: dict[str, Path]) -> None:
+    settings = ServerSettings(
+        state_dir=tmp_path / "state",
+        ingest="tcp://127.0.0.1:*",
+        scores="tcp://127.0.0.1:*",
+        http="off",
+        curve_secret=str(keys["daemon_secret"]),
+        curve_clients=str(keys["allowed"]),
+    )
+    running = RunningServer(settings, LearnerSettings())
+    server, ctx = running.server, running.ctx
+    alice = CurveKeys.load(keys["alice"], keys["daemon_public"])
+    mallory = CurveKeys.load(keys["mallory"], keys["daemon_public"])
+    ingest, scores = server.bound["ingest"], server.bound["scores"]
+    try:
+        # an unknown producer never gets the daemon's subscription, with a wrong key or with none
+        with pytest.raises(TimeoutError):
+            Producer(ingest, curve=mallory, wait_for_daemon=2.0, context=ctx)
+        with pytest.raises(TimeoutError):
+            Producer(ingest, wait_for_daemon=2.0, context=ctx)
+        # nor is a PUSH from one delivered, though ZeroMQ lets it queue
+        intruder = ctx.socket(zmq.PUSH)
+        intruder.setsockopt(zmq.LINGER, 0)
+        mallory.apply(intruder)
+        intruder.connect(ingest)
+
+        spy = ScoreSubscriber(scores, curve=mallory, context=ctx)
+        plain_spy = ScoreSubscriber(scores, context=ctx)
+        with (
+            ScoreSubscriber(scores, curve=alice, context=ctx) as mine,
+            Producer(ingest, curve=alice, context=ctx) as out,
+        ):
+            mine.await_daemon(out)
+            step0 = server.engine.learner.step
+            for i in range(50):
+                intruder.send_multipart(
+                    [b"events", b"\x82\xa1x\x81\xa5stolen\xcb?\xf0\x00\x00\x00\x00\x00\x00\xa1y\x01"]
+                )
+                out.send({"id": f"P{i}", "x": {"route_km": 10.0 + i}, "y": i % 2})
+            got = [mine.receive(timeout=10.0) for _ in range(50)]
+        assert [body["id"] for _, body in got] == [f"P{i}" for i in range(50)]
+        assert server.engine.learner.step == step0 + 50  # alice's events, and nothing else
+        for who in (spy, plain_spy):
+            with pytest.raises(TimeoutError):
+                who.receive(timeout=1.0)
+            who.close()
+        intruder.close()
+    finally:
+        running.close()
+    journaled = [body for seg in list_journal(tmp_path / "state") for _, _, body in read_journal(seg)]
+    assert not any("stolen" in str(body) for body in journaled)
+    assert "stolen" not in server.engine.learner.state_dict()["names"]
+
+
+def test_curve_allows_binding_off_loopback_and_refuses_half_a_configuration(
+    tmp_path: Path, keys: dict[str, Path]
+) -> None:
+    with pytest.raises(ConfigError, match="not a loopback address"):
+        ServerSettings(state_dir=tmp_path, ingest="tcp://0.0.0.0:7571")
+    ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://0.0.0.0:7571",
+        scores="tcp://0.0.0.0:7572",
+        curve_secret=str(keys["daemon_secret"]),
+        curve_clients=str(keys["allowed"]),
+    )
+    with pytest.raises(ConfigError, match="go together"):
+        ServerSettings(state_dir=tmp_path, curve_secret=str(keys["daemon_secret"]))
+    with pytest.raises(ConfigError, match="no secret key"):
+        ServerSettings(state_dir=tmp_path, curve_secret=str(keys["daemon_public"]), curve_clients=str(keys["allowed"]))
+    with pytest.raises(ConfigError, match="not a directory"):
+        ServerSettings(state_dir=tmp_path, curve_secret=str(keys["daemon_secret"]), curve_clients=str(tmp_path / "no"))
+
+
+def test_the_send_and_listen_commands_take_client_keys(keys: dict[str, Path]) -> None:
+    code = run_cli("listen", "--curve-secret", str(keys["alice"]), "--timeout", "0.1", "--count", "1")[0]
+    assert code == 2  # --curve-server missing
+    args: Any = ["listen", "--curve-secret", str(keys["alice"]), "--curve-server", str(keys["daemon_public"])]
+    assert run_cli(*args, "--timeout", "0.2", "--count", "1")[0] == 0  # nobody there: silence, then exit
