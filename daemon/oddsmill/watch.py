@@ -8,7 +8,7 @@ daemon does, and over any terminal.
 >>> sparkline([3.0, 1.0, 2.0, None, 4.0])
 '▆▁▃ █'
 >>> sparkline([0.5, 0.5])
-'▄▄'
+'▅▅'
 """
 
 from __future__ import annotations
