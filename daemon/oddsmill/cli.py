@@ -325,6 +325,8 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "outage_hold_bytes": int,
     "curve_secret": str,
     "curve_clients": str,
+    "ingest_hwm": int,
+    "scores_hwm": int,
 }
 
 
@@ -625,6 +627,8 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="DIR",
         help="directory of the public certificates (*.key) of the clients allowed to connect",
     )
+    s.add_argument("--ingest-hwm", dest="ingest_hwm", type=int, help="ingest queue, messages (default 1000)")
+    s.add_argument("--scores-hwm", dest="scores_hwm", type=int, help="queue per subscriber, messages (default 1000)")
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")

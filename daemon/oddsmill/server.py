@@ -83,11 +83,26 @@ class ServerSettings:
     # loopback. The directory is read at start.
     curve_secret: str = ""
     curve_clients: str = ""
+    # ZeroMQ high-water marks, in messages. ingest_hwm queues on the daemon's receiving side: past it
+    # (plus the producer's own send queue), a PUB producer's messages are dropped by ZeroMQ (counted
+    # as lost when numbered with src/seq), and a PUSH producer blocks. scores_hwm queues for each
+    # subscriber: a subscriber that falls further behind misses scores.
+    ingest_hwm: int = 1000
+    scores_hwm: int = 1000
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
             raise ConfigError(f"ingest_kind must be sub or pull, got {self.ingest_kind!r}")
-        for name in ("block_max", "checkpoint_events", "segment_bytes", "window", "pending_limit", "outage_hold_bytes"):
+        for name in (
+            "block_max",
+            "checkpoint_events",
+            "segment_bytes",
+            "window",
+            "pending_limit",
+            "outage_hold_bytes",
+            "ingest_hwm",
+            "scores_hwm",
+        ):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int) or v < 1:
                 raise ConfigError(f"{name} must be an integer >= 1, got {v!r}")
@@ -323,6 +338,8 @@ class Server:
             for sock in (ingest, pub):
                 sock.setsockopt(zmq.LINGER, 0)
             ingest.setsockopt(zmq.MAXMSGSIZE, TRANSPORT_LIMIT)
+            ingest.setsockopt(zmq.RCVHWM, s.ingest_hwm)
+            pub.setsockopt(zmq.SNDHWM, s.scores_hwm)
             auth = None
             if s.curve_secret:
                 from zmq.auth.thread import ThreadAuthenticator

@@ -1,0 +1,74 @@
+"""Loss made visible: a producer that overruns the daemon over PUB/SUB loses messages to ZeroMQ's
+high-water marks; numbered with src/seq, every one lost is counted, and what was learned plus what
+was lost is exactly what was sent."""
+
+from __future__ import annotations
+
+import json
+import time
+import urllib.request
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import zmq
+from oddsmill.server import ServerSettings
+from oddsmill.settings import LearnerSettings
+
+from tests.conftest import RunningServer, sparse_stream
+
+
+def status(http: str) -> dict[str, Any]:
+    with urllib.request.urlopen(f"http://{http}/api/status", timeout=5) as r:
+        doc: dict[str, Any] = json.load(r)
+    return doc
+
+
+def test_an_overrun_shows_as_lost_events(tmp_path: Path) -> None:
+    settings = ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://127.0.0.1:*",
+        scores="tcp://127.0.0.1:*",
+        http="127.0.0.1:0",
+        ingest_hwm=20,  # a short queue, so that a burst overruns it
+        fsync="block",  # and a slow daemon: every block synced
+    )
+    running = RunningServer(settings, LearnerSettings(scale_warmup=100))
+    http = running.server.bound["http"]
+    ctx: zmq.Context[Any] = running.ctx
+    pub = ctx.socket(zmq.XPUB)  # a producer as the protocol allows, with raw pyzmq
+    pub.setsockopt(zmq.LINGER, 0)
+    pub.setsockopt(zmq.SNDHWM, 20)
+    pub.connect(running.server.bound["ingest"])
+    assert pub.poll(10_000), "the daemon did not subscribe"
+    assert pub.recv() == b"\x01events"
+    events = [{"x": x, "y": y} for x, y in sparse_stream(2000, seed=14)]
+    n = 40_000
+    packed = [msgpack.packb(dict(events[i % len(events)], src="burst", seq=i)) for i in range(n)]
+    for body in packed:  # as fast as Python sends: faster than the daemon learns
+        pub.send_multipart([b"events", body])
+
+    # once the daemon has drained the burst, one more message closes any gap at the end
+    last = -1
+    deadline = time.monotonic() + 30
+    while True:
+        seen = status(http)["events"]["train"]
+        if seen == last:
+            break
+        assert time.monotonic() < deadline, "the daemon never went quiet"
+        last = seen
+        time.sleep(0.5)  # the daemon's figures refresh every 0.25 s: two refreshes without a change
+    pub.send_multipart([b"events", msgpack.packb(dict(events[0], src="burst", seq=n))])
+    deadline = time.monotonic() + 10
+    while True:
+        doc = status(http)
+        if doc["events"]["train"] + doc["lost"] == n + 1 or time.monotonic() > deadline:
+            break
+        time.sleep(0.05)
+    pub.close()
+    running.close()
+    learned, lost = doc["events"]["train"], doc["lost"]
+    print(f"sent {n + 1:,}; learned {learned:,}; counted lost {lost:,}")
+    assert lost > 0, "the burst did not overrun the daemon: nothing to show"
+    assert learned + lost == n + 1
+    assert running.server.engine.learner.step == learned
