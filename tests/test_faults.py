@@ -292,3 +292,43 @@ def test_kill_9_twenty_times_during_a_live_stream(tmp_path: Path, caplog: pytest
     ctx.term()
     assert len(list_checkpoints(tmp_path)) >= 1
     print(f"{rounds} kills; {sent_upto:,} messages sent; {engine.learner.step:,} events learned")
+
+
+def test_a_corrupt_newest_checkpoint_falls_back_to_the_previous_and_the_journal(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    from oddsmill.server import Server
+    from oddsmill.storage import list_checkpoints
+
+    settings = ServerSettings(
+        state_dir=tmp_path,
+        ingest="tcp://127.0.0.1:*",
+        ingest_kind="pull",
+        scores="tcp://127.0.0.1:*",
+        http="off",
+        checkpoint_events=300,
+    )
+    learner = LearnerSettings(scale_warmup=100)
+    running = RunningServer(settings, learner)
+    client = Client(running.ctx, running.server.bound["ingest"], running.server.bound["scores"])
+    sent = [b for b in bodies(1500, seed=16) if "x" in b and "y" in b]
+    for lo in range(0, len(sent), 100):
+        for b in sent[lo : lo + 100]:
+            client.send(b)
+        client.receive(len(sent[lo : lo + 100]))
+    client.close()
+    running.close()
+    checkpoints = list_checkpoints(tmp_path)
+    assert len(checkpoints) >= 2
+    newest = checkpoints[-1]
+    data = bytearray(newest.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    newest.write_bytes(bytes(data))
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        recovered = Server(ServerSettings(state_dir=tmp_path, http="off"), learner)
+    recovered.journal.close()
+    assert any("damaged checkpoint" in r.getMessage() and newest.name in r.getMessage() for r in caplog.records)
+    engine, _ = replay_journal(tmp_path, learner)
+    assert recovered.engine.learner.step == engine.learner.step == running.server.engine.learner.step
+    mine, theirs = recovered.engine.learner.state_dict(), engine.learner.state_dict()
+    assert mine["slots"].tobytes() == theirs["slots"].tobytes()
