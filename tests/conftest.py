@@ -47,6 +47,20 @@ def phishing_data() -> list[tuple[dict[str, float], int]]:
     return phishing()
 
 
+def loopback(state_dir: Path, **settings: Any) -> Any:
+    """ServerSettings on random loopback ports, PULL ingest (nothing dropped) and no HTTP, unless
+    `settings` say otherwise."""
+    from oddsmill.server import ServerSettings
+
+    defaults: dict[str, Any] = {
+        "ingest": "tcp://127.0.0.1:*",
+        "ingest_kind": "pull",
+        "scores": "tcp://127.0.0.1:*",
+        "http": "off",
+    }
+    return ServerSettings(state_dir=state_dir, **{**defaults, **settings})
+
+
 class RunningServer:
     """A daemon serving in a thread of this process, on the ports its settings name."""
 
@@ -113,16 +127,9 @@ class FedDaemon:
     """A daemon on random loopback ports with HTTP, to be fed the parcel demo log."""
 
     def __init__(self, state_dir: Path) -> None:
-        from oddsmill.server import ServerSettings
         from oddsmill.settings import LearnerSettings
 
-        settings = ServerSettings(
-            state_dir=state_dir,
-            ingest="tcp://127.0.0.1:*",
-            ingest_kind="pull",
-            scores="tcp://127.0.0.1:*",
-            http="127.0.0.1:0",
-        )
+        settings = loopback(state_dir, http="127.0.0.1:0")
         self.running = RunningServer(settings, LearnerSettings())
         self.server = self.running.server
         self.http = f"http://{self.server.bound['http']}"

@@ -16,10 +16,9 @@ from oddsmill.engine import Engine
 from oddsmill.learner import Learner
 from oddsmill.metrics import REASONS
 from oddsmill.protocol import MAX_MESSAGE, MAX_STR, decode_body
-from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 
-from tests.conftest import Client, RunningServer, sparse_stream
+from tests.conftest import Client, RunningServer, loopback, sparse_stream
 
 
 def malformed(reason: str, rnd: random.Random, k: int) -> list[bytes]:
@@ -62,13 +61,7 @@ def malformed(reason: str, rnd: random.Random, k: int) -> list[bytes]:
 
 def test_malformed_messages_are_counted_and_change_nothing(tmp_path: Path) -> None:
     rnd = random.Random(11)
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="127.0.0.1:0",
-    )
+    settings = loopback(tmp_path, http="127.0.0.1:0")
     learner = LearnerSettings(scale_warmup=100)
     running = RunningServer(settings, learner)
     server = running.server

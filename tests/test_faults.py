@@ -22,7 +22,7 @@ from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import Client, RunningServer
+from tests.conftest import Client, RunningServer, loopback
 from tests.test_server import bodies, replay_journal
 
 
@@ -72,14 +72,7 @@ def assert_state_is_the_replay_of_the_journal(state: Path, learner: LearnerSetti
 def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
 ) -> None:
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="127.0.0.1:0",
-        fsync="block",
-    )
+    settings = loopback(tmp_path, http="127.0.0.1:0", fsync="block")
     learner = LearnerSettings(scale_warmup=100)
     running = RunningServer(settings, learner)
     server = running.server
@@ -153,16 +146,7 @@ def small_disk(tmp_path: Path) -> Iterator[Path]:
 
 def test_a_full_disk_pauses_learning_and_resumes_when_space_returns(small_disk: Path) -> None:
     state = small_disk / "state"
-    settings = ServerSettings(
-        state_dir=state,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="127.0.0.1:0",
-        fsync="interval",
-        fsync_ms=50.0,
-        checkpoint_events=2000,
-    )
+    settings = loopback(state, http="127.0.0.1:0", fsync="interval", fsync_ms=50.0, checkpoint_events=2000)
     learner = LearnerSettings(scale_warmup=100)
     running = RunningServer(settings, learner)
     server = running.server
@@ -300,14 +284,7 @@ def test_a_corrupt_newest_checkpoint_falls_back_to_the_previous_and_the_journal(
     from oddsmill.server import Server
     from oddsmill.storage import list_checkpoints
 
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="off",
-        checkpoint_events=300,
-    )
+    settings = loopback(tmp_path, checkpoint_events=300)
     learner = LearnerSettings(scale_warmup=100)
     running = RunningServer(settings, learner)
     client = Client(running.ctx, running.server.bound["ingest"], running.server.bound["scores"])

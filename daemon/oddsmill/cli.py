@@ -562,6 +562,12 @@ def cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_bench(args: argparse.Namespace) -> int:
+    from .bench import bench
+
+    return bench(args)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="oddsmill", description="An online logistic-regression daemon and its tools.")
     p.add_argument("-v", "--verbose", action="store_true")
@@ -692,6 +698,14 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--out", required=True, metavar="FILE.html")
     rp.add_argument("--png", action="store_true", help="also FILE.png: the log-loss and reliability charts")
     rp.set_defaults(func=cmd_report)
+
+    b = sub.add_parser("bench", help="throughput and latency against the I/O floor and a river peer, side by side")
+    b.add_argument("--events", type=int, default=20_000, help="events for one-a-message (x5 for blocks)")
+    b.add_argument("--rate", type=float, default=10_000.0, help="offered load for the latency, events/s")
+    b.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (two runs each)")
+    b.add_argument("--shapes", default="one,batch,cols", help="any of one, batch, cols, comma-separated")
+    b.add_argument("--json", action="store_true")
+    b.set_defaults(func=cmd_bench)
 
     pm = sub.add_parser("prometheus", help="print an example Prometheus scrape configuration or alert rules")
     pm.add_argument("what", choices=["rules", "scrape"])

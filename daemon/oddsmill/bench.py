@@ -1,0 +1,367 @@
+"""`oddsmill bench`: throughput and latency, side by side in one run, on loopback.
+
+Three servers, each a process of its own, measured in turn under the same load:
+
+- the floor: receives, decodes and publishes a constant score; the cost of the I/O alone;
+- the peer: the daemon a user would write by hand, with river's LogisticRegression, pyzmq, msgpack;
+- oddsmill itself, on the defaults.
+
+Throughput, in three shapes of traffic (one event a message with 20 named numeric features,
+batches of 500, columnar blocks of 500 rows): a producer process of its own pushes N events as fast
+as the server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the
+scores; events/s is taken between the first and the last score. Latency: one event a message at a
+fixed offered load, from each send to its score at this process's subscriber (floor and oddsmill,
+alternated twice so drift falls on both). Peak memory is each server's VmHWM. The ratios are what
+to read: absolute figures drift on a shared machine.
+
+    oddsmill bench [--events N] [--rate R] [--seconds S] [--json]
+    python -m oddsmill.bench ...     (from a checkout: PYTHONPATH=daemon:clients)
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+import zmq
+
+BLOCK = 500  # events a batch or columnar block
+FEATURES = [f"f{j:02d}" for j in range(20)]
+
+FLOOR = r"""
+import sys, msgpack, numpy as np, zmq
+ctx = zmq.Context()
+sub, pub = ctx.socket(zmq.PULL), ctx.socket(zmq.PUB)
+pub.setsockopt(zmq.SNDHWM, 0)
+sub.bind(sys.argv[1]); pub.bind(sys.argv[2])
+print("serving:", flush=True)
+while True:
+    topic, raw = sub.recv_multipart()
+    body = msgpack.unpackb(raw)
+    if "batch" in body:
+        out = {"batch": [{"id": e.get("id"), "p": 0.5, "logit": 0.0, "step": 0, "ts": 0.0} for e in body["batch"]]}
+    elif "cols" in body:
+        n = len(body["rows"]) // (8 * len(body["cols"]))
+        z = np.zeros(n)
+        out = {"id": body.get("id"), "p": (z + 0.5).tobytes(), "logit": z.tobytes(), "step": 0, "ts": 0.0}
+    else:
+        out = {"id": body.get("id"), "p": 0.5, "logit": 0.0, "step": 0, "ts": 0.0}
+    pub.send_multipart([b"scores", msgpack.packb(out)])
+"""
+
+PEER = r"""
+import math, sys, msgpack, numpy as np, zmq
+from river import linear_model
+model = linear_model.LogisticRegression()
+ctx = zmq.Context()
+sub, pub = ctx.socket(zmq.PULL), ctx.socket(zmq.PUB)
+pub.setsockopt(zmq.SNDHWM, 0)
+sub.bind(sys.argv[1]); pub.bind(sys.argv[2])
+step = 0
+
+def one(ident, x, y):
+    global step
+    p = model.predict_proba_one(x).get(True, 0.5)
+    if y is not None:
+        model.learn_one(x, bool(y))
+        step += 1
+    return {"id": ident, "p": p, "logit": math.log(p / (1 - p)) if 0 < p < 1 else 0.0, "step": step, "ts": 0.0}
+
+print("serving:", flush=True)
+while True:
+    topic, raw = sub.recv_multipart()
+    body = msgpack.unpackb(raw)
+    if "batch" in body:
+        out = {"batch": [one(e.get("id"), e["x"], e.get("y")) for e in body["batch"]]}
+    elif "cols" in body:
+        cols = body["cols"]
+        rows = np.frombuffer(body["rows"], dtype="<f8").reshape(-1, len(cols))
+        ys = body.get("y") or bytes([255]) * len(rows)
+        scored = [one(None, dict(zip(cols, r.tolist())), None if ys[k] == 255 else ys[k]) for k, r in enumerate(rows)]
+        p = np.array([s["p"] for s in scored])
+        out = {"id": body.get("id"), "p": p.tobytes(), "logit": np.log(p / (1 - p)).tobytes(), "step": step, "ts": 0.0}
+    else:
+        out = one(body.get("id"), body["x"], body.get("y"))
+    pub.send_multipart([b"scores", msgpack.packb(out)])
+"""
+
+PRODUCER = r"""
+import sys, msgpack, numpy as np, zmq
+address, shape, n = sys.argv[1], sys.argv[2], int(sys.argv[3])
+names = [f"f{j:02d}" for j in range(20)]
+rng = np.random.default_rng(1)
+X = rng.normal(size=(n, 20))
+y = (rng.random(n) < 1 / (1 + np.exp(-X[:, :5].sum(axis=1) * 0.5))).astype(int)
+if shape == "one":
+    bodies = [msgpack.packb({"x": dict(zip(names, X[i].tolist())), "y": int(y[i])}) for i in range(n)]
+elif shape == "batch":
+    bodies = [msgpack.packb({"batch": [{"x": dict(zip(names, X[i].tolist())), "y": int(y[i])}
+                                       for i in range(lo, min(n, lo + 500))]}) for lo in range(0, n, 500)]
+else:
+    bodies = [msgpack.packb({"cols": names, "rows": np.ascontiguousarray(X[lo:lo + 500], dtype="<f8").tobytes(),
+                             "y": bytes(y[lo:lo + 500].tolist())}) for lo in range(0, n, 500)]
+ctx = zmq.Context()
+push = ctx.socket(zmq.PUSH)
+push.connect(address)
+print("ready", flush=True)
+sys.stdin.readline()
+for b in bodies:
+    push.send_multipart([b"events", b])
+push.close(linger=-1)
+ctx.term()
+"""
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def peak_memory_kib(pid: int) -> int:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1])
+    return 0
+
+
+class Running:
+    """One server process on fresh loopback ports."""
+
+    def __init__(self, kind: str, ingest_kind: str) -> None:
+        self.ingest = f"tcp://127.0.0.1:{free_port()}"
+        self.scores = f"tcp://127.0.0.1:{free_port()}"
+        if kind == "floor" or kind == "peer":
+            code = FLOOR if kind == "floor" else PEER
+            if ingest_kind == "sub":
+                code = code.replace("zmq.PULL", "zmq.SUB").replace(
+                    "sub.bind(sys.argv[1]);", "sub.bind(sys.argv[1]); sub.setsockopt(zmq.SUBSCRIBE, b'events');"
+                )
+            cmd = [sys.executable, "-c", code, self.ingest, self.scores]
+            stream = "stdout"
+        else:
+            self.state = tempfile.mkdtemp(prefix="oddsmill-bench-")
+            cmd = [sys.executable, "-m", "oddsmill.cli", "serve", "--state", self.state, "--ingest", self.ingest]
+            cmd += ["--ingest-kind", ingest_kind, "--scores", self.scores, "--http", "off"]
+            cmd += ["--scores-hwm", "100000000"]
+            stream = "stderr"
+        self.proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        lines = []
+        for line in getattr(self.proc, stream):
+            lines.append(line)
+            if "serving:" in line:
+                break
+        else:
+            raise RuntimeError(f"the {kind} server did not start: {''.join(lines)}")
+        for pipe in (self.proc.stdout, self.proc.stderr):  # drained for the server's life: it never blocks
+            if pipe is not None:
+                threading.Thread(target=pipe.read, daemon=True).start()
+
+    def stop(self) -> int:
+        peak = peak_memory_kib(self.proc.pid)
+        self.proc.terminate()
+        self.proc.wait(20)
+        return peak
+
+
+def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
+    server = Running(kind, "pull")
+    ctx: zmq.Context[Any] = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.RCVHWM, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"scores")
+    sub.connect(server.scores)
+    probe = ctx.socket(zmq.PUSH)
+    probe.connect(server.ingest)
+    x = dict(zip(FEATURES, [0.0] * 20, strict=True))
+    while True:  # the subscription is in place once a probe's score comes back
+        probe.send_multipart([b"events", msgpack.packb({"x": x})])
+        if sub.poll(100):
+            break
+    while sub.poll(300):
+        sub.recv_multipart()
+    probe.close(0)
+    producer = subprocess.Popen(
+        [sys.executable, "-c", PRODUCER, server.ingest, shape, str(n)],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+        text=True,
+    )
+    assert producer.stdout is not None and producer.stdin is not None
+    producer.stdout.readline()  # "ready": its messages are packed
+    producer.stdin.write("go\n")
+    producer.stdin.flush()
+    per_message = 1 if shape == "one" else BLOCK
+    messages = (n + per_message - 1) // per_message
+    got = 0
+    first = last = 0.0
+    while got < messages:
+        if not sub.poll(60_000):
+            raise RuntimeError(f"{kind}, {shape}: {got} of {messages} answers, then silence")
+        sub.recv_multipart()
+        last = time.perf_counter()
+        if got == 0:
+            first = last
+        got += 1
+    producer.wait(60)
+    sub.close(0)
+    ctx.term()
+    peak = server.stop()
+    counted = n - per_message  # events between the first score and the last
+    return {"events_per_s": counted / (last - first), "peak_memory_mib": peak / 1024}
+
+
+def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
+    """Send-to-score times of one-event messages at `rate`, over PUB/SUB as a live producer sends."""
+    server = Running(kind, "sub")
+    ctx: zmq.Context[Any] = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.SUBSCRIBE, b"scores")
+    sub.connect(server.scores)
+    pub = ctx.socket(zmq.XPUB)
+    pub.connect(server.ingest)
+    pub.recv()  # the server's subscription has arrived
+    while True:
+        pub.send_multipart([b"events", msgpack.packb({"id": -1, "x": {"probe": 1.0}})])
+        if sub.poll(100):
+            sub.recv_multipart()
+            break
+    while sub.poll(300):
+        sub.recv_multipart()
+    rng = np.random.default_rng(0)
+    n = int(rate * seconds)
+    sent = np.zeros(n)
+    got: list[float] = []
+    done = threading.Event()
+
+    def receive() -> None:
+        while len(got) < n and sub.poll(5000):
+            _, raw = sub.recv_multipart()
+            now = time.perf_counter()
+            ident = msgpack.unpackb(raw)["id"]
+            if isinstance(ident, int) and 0 <= ident < n:
+                got.append(now - sent[ident])
+        done.set()
+
+    t = threading.Thread(target=receive)
+    t.start()
+    t0 = time.perf_counter()
+    for i in range(n):
+        delay = t0 + i / rate - time.perf_counter()
+        if delay > 0:
+            time.sleep(delay)
+        body = msgpack.packb(
+            {"id": i, "x": dict(zip(FEATURES, rng.normal(size=20).tolist(), strict=True)), "y": i % 3 == 0}
+        )
+        sent[i] = time.perf_counter()
+        pub.send_multipart([b"events", body])
+    done.wait(30)
+    t.join(5)
+    sub.close(0)
+    pub.close(0)
+    ctx.term()
+    server.stop()
+    return np.array(got)
+
+
+def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -> dict[str, Any]:
+    result: dict[str, Any] = {"throughput": {}, "latency": {}}
+    for shape in shapes:
+        n = events if shape == "one" else events * 5
+        row: dict[str, Any] = {}
+        for kind in ("floor", "peer", "oddsmill"):
+            row[kind] = throughput(kind, shape, n if kind != "peer" or shape == "one" else n // 5)
+            print(f"  {shape:<6} {kind:<9} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
+        row["oddsmill_to_floor"] = row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
+        row["oddsmill_to_peer"] = row["oddsmill"]["events_per_s"] / row["peer"]["events_per_s"]
+        result["throughput"][shape] = row
+    runs: dict[str, list[np.ndarray]] = {"floor": [], "oddsmill": []}
+    for _ in range(2):
+        for kind in ("floor", "oddsmill"):
+            runs[kind].append(latency(kind, rate, seconds))
+    for kind, parts in runs.items():
+        lat = np.concatenate(parts)
+        result["latency"][kind] = {
+            "received": int(lat.size),
+            "median_ms": float(np.median(lat) * 1e3),
+            "p99_ms": float(np.percentile(lat, 99) * 1e3),
+        }
+    lat_r = result["latency"]
+    lat_r["median_ratio"] = lat_r["oddsmill"]["median_ms"] / lat_r["floor"]["median_ms"]
+    lat_r["p99_ratio"] = lat_r["oddsmill"]["p99_ms"] / lat_r["floor"]["p99_ms"]
+    lat_r["offered_events_per_s"] = rate
+    return result
+
+
+def report(result: dict[str, Any], out: Any) -> None:
+    print("\nthroughput (events/s; side by side in this run)", file=out)
+    print(
+        f"  {'shape':<8}{'floor':>12}{'peer':>12}{'oddsmill':>12}{'/floor':>9}{'/peer':>9}  peak MiB (oddsmill)",
+        file=out,
+    )
+    names = {"one": "one", "batch": "batch500", "cols": "cols500"}
+    for shape, row in result["throughput"].items():
+        print(
+            f"  {names[shape]:<8}{row['floor']['events_per_s']:>12,.0f}{row['peer']['events_per_s']:>12,.0f}"
+            f"{row['oddsmill']['events_per_s']:>12,.0f}{row['oddsmill_to_floor']:>8.2f}x{row['oddsmill_to_peer']:>8.1f}x"
+            f"  {row['oddsmill']['peak_memory_mib']:.0f}",
+            file=out,
+        )
+    lat = result["latency"]
+    print(f"\nscore latency at {lat['offered_events_per_s']:,.0f} events/s offered, one event a message:", file=out)
+    for kind in ("floor", "oddsmill"):
+        r = lat[kind]
+        print(
+            f"  {kind:<9} received {r['received']:>7,}  median {r['median_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms",
+            file=out,
+        )
+    print(f"  oddsmill / floor: median {lat['median_ratio']:.2f}x, p99 {lat['p99_ratio']:.2f}x", file=out)
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(prog="oddsmill bench", description=__doc__.split("\n\n")[0])
+    ap.add_argument("--events", type=int, default=20_000, help="events for one-a-message (x5 for blocks)")
+    ap.add_argument("--rate", type=float, default=10_000.0, help="offered load for the latency, events/s")
+    ap.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (two runs each)")
+    ap.add_argument("--shapes", default="one,batch,cols")
+    ap.add_argument("--json", action="store_true")
+    args = ap.parse_args(argv)
+    return bench(args)
+
+
+def bench(args: argparse.Namespace) -> int:
+    shapes = [s for s in args.shapes.split(",") if s]
+    bad = [s for s in shapes if s not in ("one", "batch", "cols")]
+    if bad or args.events < 2 * BLOCK or not args.rate > 0 or not args.seconds > 0:
+        print(
+            f"oddsmill bench: bad arguments (shapes {bad}, events >= {2 * BLOCK}, rate and seconds > 0)",
+            file=sys.stderr,
+        )
+        return 2
+    try:
+        import river  # noqa: F401
+    except ImportError:
+        print("oddsmill bench: the peer needs river: pip install 'oddsmill[bench]'", file=sys.stderr)
+        return 2
+    progress = sys.stderr
+    print("oddsmill bench: throughput by shape of traffic ...", file=progress, flush=True)
+    result = run(args.events, args.rate, args.seconds, shapes, progress)
+    if args.json:
+        print(json.dumps(result, indent=2))
+    else:
+        report(result, sys.stdout)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

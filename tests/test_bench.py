@@ -1,0 +1,32 @@
+"""`oddsmill bench` runs end to end on a small load: a smoke test of the benchmark, not a timed test
+(its figures are ratios measured side by side; they are reported, not asserted)."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+
+def test_bench_measures_every_server_and_reports_ratios() -> None:
+    cmd = [sys.executable, "-m", "oddsmill.cli", "bench", "--events", "2000", "--shapes", "one,cols"]
+    done = subprocess.run(
+        [*cmd, "--rate", "2000", "--seconds", "0.5", "--json"], capture_output=True, text=True, timeout=300
+    )
+    assert done.returncode == 0, done.stderr[-3000:]
+    result = json.loads(done.stdout)
+    for shape in ("one", "cols"):
+        row = result["throughput"][shape]
+        for kind in ("floor", "peer", "oddsmill"):
+            assert row[kind]["events_per_s"] > 0 and row[kind]["peak_memory_mib"] > 10
+        assert row["oddsmill_to_floor"] == row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
+    lat = result["latency"]
+    assert lat["floor"]["received"] == lat["oddsmill"]["received"] == 2 * 1000  # every score came back
+    assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
+    print(json.dumps(result["throughput"], indent=1))
+
+
+def test_bench_refuses_bad_arguments() -> None:
+    cmd = [sys.executable, "-m", "oddsmill.cli", "bench", "--shapes", "one,rows"]
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2 and "bad arguments" in done.stderr
