@@ -9,10 +9,10 @@ Three servers, each a process of its own, measured in turn under the same load:
 Throughput, in three shapes of traffic (one event a message with 20 named numeric features,
 batches of 500, columnar blocks of 500 rows): a producer process of its own pushes N events as fast
 as the server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the
-scores; events/s is taken between the first and the last score. Latency: one event a message at a
-fixed offered load, from each send to its score at this process's subscriber (floor and oddsmill,
-alternated twice so drift falls on both). Peak memory is each server's VmHWM. The ratios are what
-to read: absolute figures drift on a shared machine.
+scores; events/s is the events over the time from the producer's start to the last score.
+Latency: one event a message at a fixed offered load, from each send to its score at this
+process's subscriber (floor and oddsmill, alternated twice so drift falls on both). Peak memory is
+each server's VmHWM. The ratios are what to read: absolute figures drift on a shared machine.
 
     oddsmill bench [--events N] [--rate R] [--seconds S] [--json]
     python -m oddsmill.bench ...     (from a checkout: PYTHONPATH=daemon:clients)
@@ -199,26 +199,23 @@ def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
     )
     assert producer.stdout is not None and producer.stdin is not None
     producer.stdout.readline()  # "ready": its messages are packed
-    producer.stdin.write("go\n")
-    producer.stdin.flush()
     per_message = 1 if shape == "one" else BLOCK
     messages = (n + per_message - 1) // per_message
     got = 0
-    first = last = 0.0
+    first = time.perf_counter()
+    producer.stdin.write("go\n")
+    producer.stdin.flush()
     while got < messages:
         if not sub.poll(60_000):
             raise RuntimeError(f"{kind}, {shape}: {got} of {messages} answers, then silence")
         sub.recv_multipart()
-        last = time.perf_counter()
-        if got == 0:
-            first = last
         got += 1
+    last = time.perf_counter()
     producer.wait(60)
     sub.close(0)
     ctx.term()
     peak = server.stop()
-    counted = n - per_message  # events between the first score and the last
-    return {"events_per_s": counted / (last - first), "peak_memory_mib": peak / 1024}
+    return {"events_per_s": n / (last - first), "peak_memory_mib": peak / 1024}
 
 
 def latency(kind: str, rate: float, seconds: float) -> np.ndarray:

@@ -143,33 +143,77 @@ class Block:
 
 
 class BlockBuilder:
-    """Collects encoded events, then hands the kernel one block."""
+    """Collects encoded events, then hands the kernel one block. Events come one at a time (`add`,
+    into Python lists) or many at once as arrays (`add_rows`, for a columnar block); `build` joins
+    them in the order they came."""
 
     def __init__(self) -> None:
-        self.ptr: list[int] = [0]
+        self.n: list[int] = []  # features of each event
         self.idx: list[int] = []
         self.val: list[float] = []
         self.op: list[int] = []
         self.y: list[float] = []
         self.w: list[float] = []
+        self._chunks: list[tuple[np.ndarray, ...]] = []  # (n, idx, val, op, y, w) arrays, in order
+        self._events = 0
 
     def __len__(self) -> int:
-        return len(self.op)
+        return self._events
 
     def add(self, slots: list[int], values: list[float], op: int, y: float, w: float) -> None:
         self.idx.extend(slots)
         self.val.extend(values)
-        self.ptr.append(len(self.idx))
+        self.n.append(len(slots))
         self.op.append(op)
         self.y.append(y)
         self.w.append(w)
+        self._events += 1
+
+    def add_rows(self, slots: np.ndarray, rows: np.ndarray, op: np.ndarray, y: np.ndarray) -> None:
+        """Events that share their slots: row r has the values rows[r] at `slots`; weight 1."""
+        self._flush()
+        m, k = rows.shape
+        self._chunks.append(
+            (
+                np.full(m, k, dtype=np.int64),
+                np.tile(slots.astype(np.int64), m),
+                np.ascontiguousarray(rows, dtype=np.float64).ravel(),
+                op.astype(np.int8),
+                y.astype(np.float64),
+                np.ones(m),
+            )
+        )
+        self._events += m
+
+    def _flush(self) -> None:
+        if self.n:
+            self._chunks.append(
+                (
+                    np.asarray(self.n, dtype=np.int64),
+                    np.asarray(self.idx, dtype=np.int64),
+                    np.asarray(self.val, dtype=np.float64),
+                    np.asarray(self.op, dtype=np.int8),
+                    np.asarray(self.y, dtype=np.float64),
+                    np.asarray(self.w, dtype=np.float64),
+                )
+            )
+            self.n, self.idx, self.val, self.op, self.y, self.w = [], [], [], [], [], []
 
     def build(self) -> Block:
-        return Block(
-            ptr=np.asarray(self.ptr, dtype=np.int64),
-            idx=np.asarray(self.idx, dtype=np.int64),
-            val=np.asarray(self.val, dtype=np.float64),
-            op=np.asarray(self.op, dtype=np.int8),
-            y=np.asarray(self.y, dtype=np.float64),
-            w=np.asarray(self.w, dtype=np.float64),
-        )
+        self._flush()
+        if len(self._chunks) == 1:
+            n, idx, val, op, y, w = self._chunks[0]
+        else:
+            empty = (
+                np.zeros(0, np.int64),
+                np.zeros(0, np.int64),
+                np.zeros(0),
+                np.zeros(0, np.int8),
+                np.zeros(0),
+                np.zeros(0),
+            )
+            n, idx, val, op, y, w = (np.concatenate(parts) for parts in zip(empty, *self._chunks, strict=True))
+            self._chunks = [(n, idx, val, op, y, w)]
+        ptr = np.zeros(n.shape[0] + 1, dtype=np.int64)
+        np.cumsum(n, out=ptr[1:])
+        return Block(ptr=ptr, idx=idx, val=val, op=op, y=y, w=w)

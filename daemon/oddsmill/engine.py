@@ -105,6 +105,9 @@ class Engine:
             clock = arrival
             if self.pending:
                 self._expire(clock)
+            if isinstance(item, Columns) and self._plain(item):
+                step = self._add_columns(n, arrival, item, b, slots_meta, results, steps, step)
+                continue
             for ev in _events(item):
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
@@ -189,6 +192,59 @@ class Engine:
         )
         out.sort(key=lambda r: r[0])  # stable: in item order, each item's own results in order
         return out
+
+    # -- columnar blocks, whole ---------------------------------------------------------------
+    def _plain(self, item: Columns) -> bool:
+        """Whether a columnar block can be encoded whole, with the same result as row by row: no row
+        is a scoring request to hold (an id without a label), and the vocabulary has room for every
+        new name. (The decoder has refused blocks with a name twice or a value not finite.)"""
+        cols = item.cols
+        if item.ids is not None and bool(np.isnan(item.y).any()):
+            return False
+        vocab = self.learner.vocab
+        new = sum(1 for c in cols if c not in vocab.index)
+        return len(vocab) + new <= vocab.max_features
+
+    def _add_columns(
+        self,
+        n: int,
+        arrival: float,
+        item: Columns,
+        b: BlockBuilder,
+        slots_meta: list[tuple[Any, float, PendingEntry | None, float | None]],
+        results: list[tuple[int, Score | Rejection | int]],
+        steps: list[int],
+        step: int,
+    ) -> int:
+        """The rows of a plain columnar block into the block, as `process` would add them one by
+        one (the same slots, values, order and counts), with the per-row work done by numpy."""
+        rows, ids = item.rows, item.ids
+        m = rows.shape[0]
+        if m == 0:
+            return step
+        # the first row gives the new names their slots, in column order, as row by row
+        slots, _ = self.learner.encode(dict.fromkeys(item.cols, 0.0), grow=True)
+        first = len(b)
+        labels = item.y
+        unlabelled = np.isnan(labels)
+        b.add_rows(
+            np.asarray(slots, dtype=np.int64),
+            rows,
+            np.where(unlabelled, K.OP_SCORE, K.OP_TRAIN),
+            np.where(unlabelled, 0.0, labels),
+        )
+        for pos, label in enumerate(labels.tolist()):
+            ident = ids[pos] if ids is not None else None
+            results.append((n, first + pos))
+            steps.append(step)
+            if label == label:  # labelled: learned
+                slots_meta.append((ident, arrival, None, label))
+                step += 1
+                self.counters.train += 1
+            else:
+                slots_meta.append((ident, arrival, None, None))
+                self.counters.score += 1
+        return step
 
     # -- helpers -------------------------------------------------------------------------------
     def _reject(self, ident: Any, reason: str, detail: str) -> Rejection:
