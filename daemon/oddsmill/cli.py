@@ -94,6 +94,33 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
     return LearnerSettings(**values), "average_start" in values, window
 
 
+def candidates_of(args: argparse.Namespace, base: Any) -> list[Any]:
+    """The race's candidates: `--candidates auto` (a grid around the learner settings), or the
+    `[candidates.NAME]` tables of --config (learner settings over the [learner] table); [] if none."""
+    from .race import Candidate, auto_candidates, check_candidates
+    from .settings import LearnerSettings
+
+    choice = getattr(args, "candidates", None)
+    if choice is not None and choice != "auto":
+        raise UsageError(f"--candidates takes auto (or give [candidates.NAME] tables in --config), got {choice!r}")
+    tables = read_config(args.config).get("candidates", {}) if args.config else {}
+    if choice == "auto" and tables:
+        raise UsageError("--candidates auto and [candidates] tables in the config: choose one")
+    if choice == "auto":
+        return auto_candidates(base)
+    out = []
+    for name, table in tables.items():
+        if not isinstance(table, dict):
+            raise ConfigError(f"{args.config}: candidates.{name} must be a table of learner settings")
+        try:
+            out.append(Candidate(name, LearnerSettings.from_dict({**base.to_dict(), **table})))
+        except (TypeError, ValueError) as e:
+            raise ConfigError(f"{args.config}: candidates.{name}: {e}") from None
+    if out:
+        check_candidates(out)
+    return out
+
+
 def read_config(path: str) -> dict[str, Any]:
     """The TOML file of --config: a [learner] table and, for serve, a [server] table."""
     try:
@@ -104,8 +131,10 @@ def read_config(path: str) -> dict[str, Any]:
     except tomllib.TOMLDecodeError as e:
         raise ConfigError(f"{path}: not valid TOML ({e})") from None
     for key, value in doc.items():
-        if key not in ("learner", "server") or not isinstance(value, dict):
-            raise ConfigError(f"{path}: unknown table or key {key!r}; the file has [learner] and [server] tables")
+        if key not in ("learner", "server", "candidates") or not isinstance(value, dict):
+            raise ConfigError(
+                f"{path}: unknown table or key {key!r}; the file has [learner], [server] and [candidates.NAME] tables"
+            )
     return doc
 
 
@@ -117,6 +146,9 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if args.epochs < 1:
         raise UsageError(f"--epochs must be >= 1, got {args.epochs}")
     settings, given, window = learner_settings(args)
+    candidates = candidates_of(args, settings)
+    if candidates:
+        return replay_race(args, candidates, window)
     engine, tail = new_engine(settings, args.epochs, given, window=window)
     report = replay(engine, args.logs, args.epochs, tail)
     state = Path(args.state)
@@ -131,6 +163,35 @@ def cmd_replay(args: argparse.Namespace) -> int:
     print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
+    print(f"checkpoint {path}")
+    return 0
+
+
+def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) -> int:
+    """`replay --candidates`: the race on a log, offline; the table, and a checkpoint serve resumes."""
+    from .offline import read_items, run_logs
+    from .race import Race
+    from .storage import write_checkpoint
+
+    if args.epochs != 1:
+        raise UsageError("--candidates races over one pass of the logs: leave out --epochs")
+    race = Race(candidates, window)
+    run_logs(race, read_items(args.logs))
+    state = checkpoint_state(race.engine)
+    state["race"] = race.state_dict()
+    path = write_checkpoint(Path(args.state), race.engine.learner.step, state)
+    if args.json:
+        print(json.dumps({"candidates": race.table(), "switches": race.switches}, indent=2))
+        return 0
+    print(f"{'candidate':<28}{'log-loss':>10}{'recent':>10}  serving")
+    for row in sorted(race.table(), key=lambda r: r["log_loss_window"]):
+        mark = "<- serves" if row["serving"] else ""
+        print(f"{row['candidate']:<28}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}  {mark}")
+    for sw in race.switches:
+        print(
+            f"switch at labelled event {sw['at']:,}: {sw['from']} -> {sw['to']} "
+            f"(recent log-loss {sw['from_log_loss_window']:.5f} -> {sw['to_log_loss_window']:.5f})"
+        )
     print(f"checkpoint {path}")
     return 0
 
@@ -327,6 +388,8 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "curve_clients": str,
     "ingest_hwm": int,
     "scores_hwm": int,
+    "race_margin": float,
+    "race_patience": int,
 }
 
 
@@ -355,7 +418,8 @@ def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None
             values[key] = flag
     state = values.pop("state")
     warm = values.pop("warm_start")
-    return ServerSettings(state_dir=Path(state), window=window, **values), learner, warm
+    candidates = tuple(candidates_of(args, learner))
+    return ServerSettings(state_dir=Path(state), window=window, candidates=candidates, **values), learner, warm
 
 
 def print_config(server: Any, learner: Any) -> None:
@@ -378,8 +442,14 @@ def print_config(server: Any, learner: Any) -> None:
     print("\n[server]")
     print(f"state = {toml(server.state_dir)}")
     for f in fields(server):
-        if f.name not in ("state_dir", "window", "topic"):
+        if f.name not in ("state_dir", "window", "topic", "candidates"):
             print(f"{f.name} = {toml(getattr(server, f.name))}")
+    base = learner.to_dict()
+    for c in server.candidates:
+        print(f"\n[candidates.{json.dumps(c.name)}]")
+        for key, value in c.settings.to_dict().items():
+            if value != base[key] and value is not None:
+                print(f"{key} = {toml(value)}")
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
@@ -577,6 +647,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("logs", nargs="+", metavar="LOG")
     r.add_argument("--state", required=True, metavar="DIR")
     r.add_argument("--epochs", type=int, default=1)
+    r.add_argument("--candidates", metavar="auto", help="race a grid of settings (or [candidates.NAME] in --config)")
+    r.add_argument("--json", action="store_true", help="with candidates: the race's table as JSON")
     _learner_options(r)
     r.set_defaults(func=cmd_replay)
 
@@ -635,6 +707,9 @@ def build_parser() -> argparse.ArgumentParser:
     )
     s.add_argument("--ingest-hwm", dest="ingest_hwm", type=int, help="ingest queue, messages (default 1000)")
     s.add_argument("--scores-hwm", dest="scores_hwm", type=int, help="queue per subscriber, messages (default 1000)")
+    s.add_argument("--candidates", metavar="auto", help="race a grid of settings (or [candidates.NAME] in --config)")
+    s.add_argument("--race-margin", dest="race_margin", type=float, help="relative lead a challenger needs (0.02)")
+    s.add_argument("--race-patience", dest="race_patience", type=int, help="labelled events it must hold it (2000)")
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")

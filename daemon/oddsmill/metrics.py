@@ -68,6 +68,8 @@ class Snapshot:
     coefficients: list[dict[str, Any]] = field(default_factory=list)  # largest effect first
     history: list[tuple[int, float, float]] = field(default_factory=list)  # (labelled, progressive, window)
     renormalisations: int = 0
+    candidates: list[dict[str, Any]] = field(default_factory=list)  # a race's candidates, if racing
+    switches: list[dict[str, Any]] = field(default_factory=list)
 
     @classmethod
     def of(
@@ -76,6 +78,7 @@ class Snapshot:
         last_checkpoint: float,
         writable: bool = True,
         coefficients: tuple[float, list[dict[str, Any]]] | None = None,
+        race: Any = None,
     ) -> Snapshot:
         """The figures of `engine` now. `coefficients` reuses an earlier (intercept, top list): the
         ranking costs a pass over the whole vocabulary, so the loop refreshes it less often."""
@@ -104,7 +107,22 @@ class Snapshot:
             coefficients=top,
             history=list(m.history),
             renormalisations=lr.renormalisations,
+            candidates=[] if race is None else _candidates(race),
+            switches=[] if race is None else list(race.switches),
         )
+
+
+def _candidates(race: Any) -> list[dict[str, Any]]:
+    return [
+        {
+            "name": name,
+            "serving": k == race.serving,
+            "log_loss": e.metrics.log_loss,
+            "log_loss_window": e.metrics.log_loss_window,
+            "history": [[c, w] for c, _, w in e.metrics.history],
+        }
+        for k, (name, e) in enumerate(zip(race.names, race.engines, strict=True))
+    ]
 
 
 class Board:
@@ -213,6 +231,29 @@ class SnapshotCollector(Collector):
         for why in ("expired", "evicted"):
             dropped.add_metric([why], s.pending_dropped.get(why, 0))
         yield dropped
+        if s.candidates:  # a race: one series a configured candidate (at most 16)
+            families = {
+                "log_loss": GaugeMetricFamily(
+                    "oddsmill_candidate_log_loss", "Progressive log-loss of each candidate.", labels=["candidate"]
+                ),
+                "log_loss_window": GaugeMetricFamily(
+                    "oddsmill_candidate_log_loss_window",
+                    "Windowed progressive log-loss of each candidate.",
+                    labels=["candidate"],
+                ),
+                "serving": GaugeMetricFamily(
+                    "oddsmill_candidate_serving",
+                    "1 for the candidate whose scores are published.",
+                    labels=["candidate"],
+                ),
+            }
+            for c in s.candidates:
+                for key, fam in families.items():
+                    fam.add_metric([c["name"]], float(c[key]))
+            yield from families.values()
+            yield CounterMetricFamily(
+                "oddsmill_candidate_switches", "Times another candidate took over serving.", value=len(s.switches)
+            )
 
 
 def status_document(snapshot: Snapshot, now: float) -> dict[str, Any]:

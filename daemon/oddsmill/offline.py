@@ -10,7 +10,7 @@ import sys
 import time
 from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, replace
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -55,8 +55,14 @@ def read_items(paths: list[str]) -> Iterator[tuple[float, Item]]:
             yield arrival, item
 
 
+class Processor(Protocol):
+    """An engine, a race, or a server: anything that learns blocks of items."""
+
+    def process(self, items: list[tuple[float, Item]]) -> Any: ...
+
+
 def run_logs(
-    engine: Engine,
+    engine: Processor,
     items: Iterable[tuple[float, Item]],
     progress: Callable[[int], None] | None = None,
 ) -> int:

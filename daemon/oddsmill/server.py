@@ -29,6 +29,7 @@ from .errors import ConfigError, ProtocolError
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
+from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
 from .storage import (
     JOURNAL_MAGIC,
@@ -89,6 +90,12 @@ class ServerSettings:
     # subscriber: a subscriber that falls further behind misses scores.
     ingest_hwm: int = 1000
     scores_hwm: int = 1000
+    # A race of candidate learners (race.py): empty for a single learner. A challenger serves once
+    # its windowed log-loss beats the serving one's by race_margin (relative) for race_patience
+    # labelled events in a row.
+    candidates: tuple[Candidate, ...] = ()
+    race_margin: float = MARGIN
+    race_patience: int = PATIENCE
 
     def __post_init__(self) -> None:
         if self.ingest_kind not in ("sub", "pull"):
@@ -119,6 +126,14 @@ class ServerSettings:
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, int | float) or not v > 0:
                 raise ConfigError(f"{name} must be a number > 0, got {v!r}")
+        if self.candidates:
+            check_candidates(list(self.candidates))
+        if isinstance(self.race_margin, bool) or not isinstance(self.race_margin, int | float):
+            raise ConfigError(f"race_margin must be a number in [0, 1), got {self.race_margin!r}")
+        if not 0 <= self.race_margin < 1:
+            raise ConfigError(f"race_margin must be in [0, 1), got {self.race_margin!r}")
+        if isinstance(self.race_patience, bool) or not isinstance(self.race_patience, int) or self.race_patience < 1:
+            raise ConfigError(f"race_patience must be an integer >= 1, got {self.race_patience!r}")
         if bool(self.curve_secret) != bool(self.curve_clients):
             raise ConfigError("curve_secret and curve_clients go together: give both, or neither")
         if self.curve_secret:
@@ -187,6 +202,7 @@ class Server:
         self, settings: ServerSettings, learner: LearnerSettings | None = None, warm_start: list[str] | None = None
     ) -> None:
         self.settings = settings
+        self.race: Race | None = None
         self.engine, self.records, position = self._load(learner or LearnerSettings())
         warm_up(self.engine.learner.settings)
         self._loaded_position = position
@@ -194,7 +210,7 @@ class Server:
         if warm_start:
             from .offline import read_items, run_logs
 
-            run_logs(self.engine, read_items(warm_start))
+            run_logs(self, read_items(warm_start))
             log.info("warm start: learned %d events from %s", self.engine.learner.step, ", ".join(warm_start))
         self.journal = self._open_journal()
         # journal positions of the checkpoints on disk, oldest first (retention reads the oldest)
@@ -229,7 +245,7 @@ class Server:
         else:
             self.last_ranking = now
         self.board.snapshot = Snapshot.of(
-            self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top
+            self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top, race=self.race
         )
         self.board.held = len(self.held)
         self.last_refresh = now
@@ -243,13 +259,30 @@ class Server:
         s.state_dir.mkdir(parents=True, exist_ok=True)
         found = load_newest(s.state_dir)
         if found is None:
+            if s.candidates:
+                self.race = Race(
+                    list(s.candidates), s.window, s.pending_limit, s.pending_ttl, s.race_margin, s.race_patience
+                )
+                return self.race.engine, 0, None
             engine = Engine(Learner(learner), s.window, s.pending_limit, s.pending_ttl)
             return engine, 0, None
         state, path = found
-        engine = Engine.from_state_dict(state["engine"])
+        if "race" in state:
+            self.race = Race.from_state_dict(state["race"])
+            engine = self.race.engine
+        else:
+            engine = Engine.from_state_dict(state["engine"])
         position = state.get("journal")
         log.info("resuming from %s at step %d", path.name, engine.learner.step)
         return engine, int(position["records"]) if position else 0, position
+
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+        """Score and learn a block: the engine's results, or in a race the serving candidate's."""
+        if self.race is None:
+            return self.engine.process(items)
+        results = self.race.process(items)
+        self.engine = self.race.engine  # the serving candidate may have changed
+        return results
 
     def _replay_journal(self, position: dict[str, Any] | None) -> None:
         """Learn the journal records after the checkpoint's position, in blocks, publishing nothing."""
@@ -268,10 +301,10 @@ class Server:
                 replayed += 1
                 batch.extend((arrival, item) for item in decode_body(body))
                 if len(batch) >= REPLAY_BLOCK:
-                    self.engine.process(batch)
+                    self.process(batch)
                     batch = []
             if batch:
-                self.engine.process(batch)
+                self.process(batch)
         if replayed:
             log.info("replayed %d journal records after the checkpoint; step %d", replayed, self.engine.learner.step)
 
@@ -309,6 +342,8 @@ class Server:
             "engine": self.engine.state_dict(),
             "journal": position,
         }
+        if self.race is not None:
+            state["race"] = self.race.state_dict()
         path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
         self.positions = (self.positions + [position])[-KEEP:]
         self._retire_segments()
@@ -456,7 +491,7 @@ class Server:
         if raws and self.outage is None:
             self._journal(arrival, raws)
         if self.outage is None:
-            results = self.engine.process(items) if items else []
+            results = self.process(items) if items else []
         else:
             self._hold(arrival, raws)
             results = self.engine.score_only(items)
@@ -555,7 +590,7 @@ class Server:
         self.outage = None
         items = [(arrival, item) for arrival, raw in held for item in decode_body(unpack(raw))]
         for lo in range(0, len(items), REPLAY_BLOCK):
-            self.engine.process(items[lo : lo + REPLAY_BLOCK])
+            self.process(items[lo : lo + REPLAY_BLOCK])
         log.warning("writes succeed again: journaled and learned %d messages held during the outage", len(held))
         self.checkpoint()
         self._refresh()

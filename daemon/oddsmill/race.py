@@ -1,0 +1,174 @@
+"""A race of candidate learners on one stream; the best one serves.
+
+Every candidate is a full engine of its own (learner, feature encoding, pending outcomes, progressive
+metrics) fed the same messages, so each is scored progressively on every labelled event (predict,
+then learn) and each equals a single-learner run with its settings, bit for bit. One candidate
+serves: its scores are the ones published. Another takes over only when its windowed progressive
+log-loss has been better than the serving one's by `margin` (relative) for `patience` labelled
+events in a row, checked after every block: no flapping. A switch changes which scores are
+published, and nothing in any candidate. The first candidate serves at the start.
+
+Switches are considered after every block. A restarted daemon replays its journal in other blocks
+than the live run saw, so after a restart the race may switch a few events earlier or later than
+it did live; every candidate's state is exact all the same.
+
+>>> grid = auto_candidates(LearnerSettings())
+>>> len(grid), grid[0].name, grid[4].name
+(9, 'eta0=0.5,l2=0.0001', 'eta0=0.125,l2=1e-05')
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, replace
+from typing import Any
+
+from .engine import Engine, Rejection, Score
+from .errors import ConfigError
+from .learner import Learner
+from .protocol import Item
+from .settings import LearnerSettings
+
+log = logging.getLogger("oddsmill")
+
+MAX_CANDIDATES = 16
+MARGIN = 0.02  # a challenger must be this much better (relative windowed log-loss) ...
+PATIENCE = 2000  # ... for this many labelled events in a row
+
+
+@dataclass(frozen=True)
+class Candidate:
+    name: str
+    settings: LearnerSettings
+
+
+def auto_candidates(base: LearnerSettings) -> list[Candidate]:
+    """Three initial rates by three L2 strengths around `base`: a quarter, the same, four times the
+    rate; a tenth, the same, ten times the L2. `base` itself comes first: it serves at the start."""
+    out = []
+    for eta0 in (base.eta0, base.eta0 / 4, base.eta0 * 4):
+        for l2 in (base.l2, base.l2 / 10, base.l2 * 10):
+            out.append(Candidate(f"eta0={eta0:g},l2={l2:g}", replace(base, eta0=eta0, l2=l2)))
+    return out
+
+
+def check_candidates(candidates: list[Candidate]) -> None:
+    if not 1 <= len(candidates) <= MAX_CANDIDATES:
+        raise ConfigError(f"a race has 1 to {MAX_CANDIDATES} candidates, got {len(candidates)}")
+    names = [c.name for c in candidates]
+    if len(set(names)) != len(names):
+        raise ConfigError(f"candidate names must differ, got {names}")
+    for name in names:
+        if not name or len(name) > 64 or any(ch in name for ch in '"\\\n'):
+            raise ConfigError(f"candidate name {name!r}: 1 to 64 characters, no quotes, backslashes or newlines")
+
+
+class Race:
+    def __init__(
+        self,
+        candidates: list[Candidate],
+        window: int = 10_000,
+        pending_limit: int = 1_000_000,
+        pending_ttl: float = 7 * 24 * 3600.0,
+        margin: float = MARGIN,
+        patience: int = PATIENCE,
+    ) -> None:
+        check_candidates(candidates)
+        if not 0 <= margin < 1:
+            raise ConfigError(f"margin must be in [0, 1), got {margin!r}")
+        if patience < 1:
+            raise ConfigError(f"patience must be >= 1, got {patience!r}")
+        self.names = [c.name for c in candidates]
+        self.engines = [Engine(Learner(c.settings), window, pending_limit, pending_ttl) for c in candidates]
+        self.margin, self.patience = margin, patience
+        self.serving = 0
+        self.switches: list[dict[str, Any]] = []  # each switch: at which labelled event, from, to, figures
+        self.leader: int | None = None  # the challenger now ahead by the margin, and since when
+        self.leading_since = 0
+
+    @property
+    def engine(self) -> Engine:
+        """The serving candidate's engine."""
+        return self.engines[self.serving]
+
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+        """Every candidate runs the block; the serving one's results are returned (to publish)."""
+        results = [e.process(items) for e in self.engines]
+        served = results[self.serving]
+        self._consider()
+        return served
+
+    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+        return self.engine.score_only(items)
+
+    def _consider(self) -> None:
+        labelled = self.engine.metrics.count
+        windows = [e.metrics.log_loss_window for e in self.engines]
+        best = min(range(len(windows)), key=lambda k: windows[k] if math.isfinite(windows[k]) else math.inf)
+        current = windows[self.serving]
+        ahead = best != self.serving and math.isfinite(current) and windows[best] < current * (1 - self.margin)
+        if not ahead:
+            self.leader = None
+            return
+        if self.leader != best:
+            self.leader, self.leading_since = best, labelled
+            return
+        if labelled - self.leading_since >= self.patience:
+            record = {
+                "at": labelled,
+                "from": self.names[self.serving],
+                "to": self.names[best],
+                "from_log_loss_window": current,
+                "to_log_loss_window": windows[best],
+            }
+            self.switches.append(record)
+            log.info(
+                "race: %s serves from labelled event %d (recent log-loss %.5f against %.5f for %s)",
+                record["to"],
+                labelled,
+                windows[best],
+                current,
+                record["from"],
+            )
+            self.serving, self.leader = best, None
+
+    def table(self) -> list[dict[str, Any]]:
+        """Each candidate's figures, the serving one marked."""
+        return [
+            {
+                "candidate": name,
+                "serving": k == self.serving,
+                "log_loss": e.metrics.log_loss,
+                "log_loss_window": e.metrics.log_loss_window,
+                "step": e.learner.step,
+                "learner": e.learner.settings.to_dict(),
+            }
+            for k, (name, e) in enumerate(zip(self.names, self.engines, strict=True))
+        ]
+
+    def state_dict(self) -> dict[str, Any]:
+        return {
+            "names": list(self.names),
+            "engines": [e.state_dict() for e in self.engines],
+            "serving": self.serving,
+            "switches": list(self.switches),
+            "leader": -1 if self.leader is None else self.leader,
+            "leading_since": self.leading_since,
+            "margin": self.margin,
+            "patience": self.patience,
+        }
+
+    @classmethod
+    def from_state_dict(cls, d: dict[str, Any]) -> Race:
+        race = cls.__new__(cls)
+        race.names = [str(n) for n in d["names"]]
+        race.engines = [Engine.from_state_dict(e) for e in d["engines"]]
+        race.margin, race.patience = float(d["margin"]), int(d["patience"])
+        race.serving = int(d["serving"])
+        race.switches = [dict(s) for s in d["switches"]]
+        race.leader = None if int(d["leader"]) < 0 else int(d["leader"])
+        race.leading_since = int(d["leading_since"])
+        if len(race.names) != len(race.engines) or not 0 <= race.serving < len(race.engines):
+            raise ValueError("a race's names, engines and serving index do not agree")
+        return race

@@ -1,0 +1,119 @@
+"""The race of candidates (race.py) on invented streams: each candidate equals a single-learner run
+bit for bit, the serving one ends near the best in hindsight on a stationary stream, and after an
+abrupt change the race moves to a faster-adapting candidate."""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from oddsmill.engine import Engine, Score
+from oddsmill.learner import Learner
+from oddsmill.progressive import sigmoid
+from oddsmill.protocol import decode_body
+from oddsmill.race import Candidate, Race, auto_candidates
+from oddsmill.settings import LearnerSettings
+
+from tests.conftest import sparse_stream
+
+
+def drifting(n: int, change: int, seed: int) -> list[dict[str, Any]]:
+    """Invented parcels whose lateness depends on distance and depot, until event `change`, when
+    the signs flip (a new routing system, say)."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for i in range(n):
+        km, depot = float(rng.gamma(3, 14)), str(rng.choice(["Harbourside", "Millbrook", "Eastgate"]))
+        sign = 1.0 if i < change else -1.0
+        z = sign * (0.04 * (km - 40) + (1.0 if depot == "Millbrook" else -0.5))
+        out.append({"x": {"route_km": km, "depot": depot}, "y": int(rng.random() < sigmoid(np.array(z)))})
+    return out
+
+
+def blocks(bodies: list[dict[str, Any]], size: int) -> list[list[tuple[float, Any]]]:
+    items = [(0.0, it) for b in bodies for it in decode_body(b)]
+    return [items[lo : lo + size] for lo in range(0, len(items), size)]
+
+
+SPEEDS = [
+    Candidate("steady", LearnerSettings(schedule="power", eta0=0.5, scale_warmup=200)),
+    Candidate("quick", LearnerSettings(schedule="constant", eta0=0.05, average=False, scale_warmup=200)),
+    Candidate("sluggish", LearnerSettings(schedule="power", eta0=0.02, scale_warmup=200)),
+]
+
+
+def test_each_candidate_equals_a_single_learner_run_and_switching_changes_none() -> None:
+    bodies = drifting(12_000, change=6_000, seed=1)
+    race = Race(SPEEDS, window=1000, patience=500)
+    alone = [Engine(Learner(c.settings), 1000) for c in SPEEDS]
+    for block in blocks(bodies, 257):
+        served = race.process(block)
+        assert len(served) == len(block)  # one answer an item: never two candidates' scores for one event
+        assert all(isinstance(r, Score) for _, r in served)
+        for e in alone:
+            e.process(block)
+    assert race.switches, "the change should have moved the race"
+    for mine, theirs in zip(race.engines, alone, strict=True):
+        a, b = mine.learner.state_dict(), theirs.learner.state_dict()
+        assert a["scalars"].tobytes() == b["scalars"].tobytes()
+        assert a["slots"].tobytes() == b["slots"].tobytes()
+        assert mine.metrics.sum == theirs.metrics.sum
+
+
+def test_a_restored_race_continues_exactly(tmp_path: Path) -> None:
+    bodies = drifting(6_000, change=3_000, seed=2)
+    parts = blocks(bodies, 300)
+    whole = Race(SPEEDS, window=1000, patience=500)
+    halves = Race(SPEEDS, window=1000, patience=500)
+    for k, block in enumerate(parts):
+        whole.process(block)
+        if k == len(parts) // 2:
+            from oddsmill.storage import decode_checkpoint, encode_checkpoint
+
+            halves = Race.from_state_dict(decode_checkpoint(encode_checkpoint(halves.state_dict())))
+        halves.process(block)
+    assert whole.serving == halves.serving and whole.switches == halves.switches
+    for a, b in zip(whole.engines, halves.engines, strict=True):
+        assert a.learner.state_dict()["slots"].tobytes() == b.learner.state_dict()["slots"].tobytes()
+
+
+def test_on_a_stationary_stream_the_serving_candidate_ends_near_the_best() -> None:
+    bodies = [{"x": x, "y": y} for x, y in sparse_stream(30_000, seed=3)]
+    race = Race(auto_candidates(LearnerSettings(scale_warmup=200)), window=5000)
+    for block in blocks(bodies, 500):
+        race.process(block)
+    windows = [e.metrics.log_loss_window for e in race.engines]
+    best = min(windows)
+    serving = windows[race.serving]
+    print(f"serving {race.names[race.serving]} {serving:.5f}; best {race.names[windows.index(best)]} {best:.5f}")
+    assert serving <= best * 1.02
+
+
+def test_after_an_abrupt_change_the_race_moves_to_a_quicker_candidate() -> None:
+    change = 8_000
+    bodies = drifting(20_000, change=change, seed=4)
+    race = Race(SPEEDS, window=1000, patience=500)
+    served_window: list[tuple[int, float, float]] = []  # (labelled, serving's window, sluggish's window)
+    for block in blocks(bodies, 100):
+        race.process(block)
+        m = race.engine.metrics
+        served_window.append((m.count, m.log_loss_window, race.engines[2].metrics.log_loss_window))
+    after = [s for s in race.switches if s["at"] > change]
+    assert after, f"no switch after the change: {race.switches}"
+    first = after[0]
+    print(
+        f"change at {change:,}; switch at {first['at']:,} to {first['to']} "
+        f"(recent log-loss {first['to_log_loss_window']:.4f} against {first['from_log_loss_window']:.4f})"
+    )
+    assert first["to"] == "quick"
+    assert first["at"] - change <= 3000, "the race took too long to move"
+    # the served window recovers sooner than the sluggish candidate's
+    recovered = {
+        k: next(c for c, s, g in served_window if c > change and (s if k == "served" else g) < 0.6)
+        for k in ("served", "sluggish")
+        if any(c > change and (s if k == "served" else g) < 0.6 for c, s, g in served_window)
+    }
+    print(f"recent log-loss back under 0.6 at: {recovered}")
+    assert recovered["served"] < recovered.get("sluggish", math.inf)
