@@ -5,6 +5,7 @@ abrupt change the race moves to a faster-adapting candidate."""
 from __future__ import annotations
 
 import math
+import time
 from pathlib import Path
 from typing import Any
 
@@ -117,3 +118,63 @@ def test_after_an_abrupt_change_the_race_moves_to_a_quicker_candidate() -> None:
     }
     print(f"recent log-loss back under 0.6 at: {recovered}")
     assert recovered["served"] < recovered.get("sluggish", math.inf)
+
+
+def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_path: Path) -> None:
+    import urllib.request
+
+    from oddsmill.server import Server
+
+    from tests.conftest import Client, RunningServer, loopback
+    from tests.test_dashboard import Page
+    from tests.tools import chromium
+
+    settings = loopback(tmp_path, http="127.0.0.1:0", candidates=tuple(SPEEDS), race_patience=500, window=1000)
+    running = RunningServer(settings, LearnerSettings())
+    server = running.server
+    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+    bodies = drifting(6_000, change=3_000, seed=5)
+    published: list[float] = []
+    for lo in range(0, len(bodies), 200):
+        client.send({"batch": bodies[lo : lo + 200]})
+        published.extend(s["logit"] for s in client.receive(1)[0][1]["batch"])
+    assert server.race is not None and server.race.switches
+    http = server.bound["http"]
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline:  # the figures refresh a few times a second
+        with urllib.request.urlopen(f"http://{http}/metrics", timeout=5) as r:
+            exposition = r.read().decode()
+        if f"oddsmill_candidate_switches_total {len(server.race.switches)}.0" in exposition:
+            break
+        time.sleep(0.05)
+    serving = [line for line in exposition.splitlines() if line.startswith("oddsmill_candidate_serving{")]
+    assert len(serving) == 3 and sum(float(line.split()[-1]) for line in serving) == 1.0
+    assert f'oddsmill_candidate_serving{{candidate="{server.race.names[server.race.serving]}"}} 1.0' in exposition
+    page = Page()
+    page.feed(chromium(f"http://{http}/", "--dump-dom", user_data=tmp_path / "profile"))
+    assert {name for name in page.series if name.startswith(("steady", "quick", "sluggish"))} == {
+        "steady",
+        "quick",
+        "sluggish",
+    } - {server.race.names[server.race.serving]} | {server.race.names[server.race.serving] + " (serving)"}
+    from tests.tools import ARTIFACTS
+
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    shot = f"--screenshot={ARTIFACTS / 'dashboard-race.png'}"
+    chromium(f"http://{http}/", "--window-size=1300,1600", shot, user_data=tmp_path / "p2")
+    client.close()
+    running.close()
+    # the published scores are, event by event, those of the candidate serving at the time: replayed
+    # offline in the same blocks, the race publishes the same
+    offline = Race(SPEEDS, window=1000, patience=500)
+    again: list[float] = []
+    for lo in range(0, len(bodies), 200):
+        items = [(0.0, it) for it in decode_body({"batch": bodies[lo : lo + 200]})]
+        again.extend(r.logit for _, r in offline.process(items) if isinstance(r, Score))
+    assert again == published[-len(again) :]
+    # a restart resumes every candidate and the serving choice
+    resumed = Server(loopback(tmp_path, candidates=tuple(SPEEDS), race_patience=500, window=1000), LearnerSettings())
+    resumed.journal.close()
+    assert resumed.race is not None and resumed.race.serving == server.race.serving
+    for a, b in zip(resumed.race.engines, server.race.engines, strict=True):
+        assert a.learner.state_dict()["slots"].tobytes() == b.learner.state_dict()["slots"].tobytes()

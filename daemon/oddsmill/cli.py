@@ -211,8 +211,9 @@ def load_engine(target: str) -> Any:
     return load_state(target)[0]
 
 
-def load_state(target: str) -> tuple[Any, float]:
-    """(engine, when its checkpoint was written) of a state directory or a checkpoint file."""
+def load_state(target: str) -> tuple[Any, float, Any]:
+    """(engine, when its checkpoint was written, the race or None) of a state directory or a
+    checkpoint file; in a race, the engine is the serving candidate's."""
     from .engine import Engine
     from .storage import load_newest, read_checkpoint
 
@@ -226,8 +227,12 @@ def load_state(target: str) -> tuple[Any, float]:
         state = read_checkpoint(p)
     else:
         raise CheckpointError(f"{target}: no such file or directory")
+    from .race import Race
+
     try:
-        return Engine.from_state_dict(state["engine"]), float(state.get("created", 0.0))
+        race = Race.from_state_dict(state["race"]) if "race" in state else None
+        engine = race.engine if race is not None else Engine.from_state_dict(state["engine"])
+        return engine, float(state.get("created", 0.0)), race
     except (KeyError, TypeError, ValueError) as e:
         raise CheckpointError(f"{target}: the checkpoint's content is not an oddsmill state ({e})") from None
 
@@ -323,8 +328,11 @@ def inspect_json(engine: Any) -> dict[str, Any]:
 
 
 def cmd_inspect(args: argparse.Namespace) -> int:
-    engine = load_engine(args.state)
+    engine, _, race = load_state(args.state)
     doc = inspect_json(engine)
+    if race is not None:
+        doc["candidates"] = race.table()
+        doc["switches"] = race.switches
     if args.top is not None:
         if args.top < 0:
             raise UsageError(f"--top must be >= 0, got {args.top}")
@@ -358,6 +366,12 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
         f"pending outcomes {m['pending_outcomes']:,}"
     )
+    if race is not None:
+        print(f"\nrace of {len(race.names)} candidates ({len(race.switches)} switches); the model below serves")
+        print(f"  {'candidate':<28}{'log-loss':>10}{'recent':>10}")
+        for row in doc["candidates"]:
+            mark = "  <- serves" if row["serving"] else ""
+            print(f"  {row['candidate']:<28}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}{mark}")
     print(f"\n{'feature':<32}{'coef (raw units)':>18}{'odds ratio':>12}")
     print(f"{'(intercept)':<32}{doc['intercept']['coef']:>18.5g}")
     for r in doc["coefficients"]:
@@ -623,8 +637,8 @@ def cmd_report(args: argparse.Namespace) -> int:
         raise UsageError(f"--out must name an .html file, got {args.out!r}")
     if not out.parent.is_dir():
         raise UsageError(f"--out {args.out!r}: no such directory {str(out.parent)!r}")
-    engine, created = load_state(args.state)
-    doc = report_document(engine, created, args.state)
+    engine, created, race = load_state(args.state)
+    doc = report_document(engine, created, args.state, race)
     if args.png:
         write_png(doc, out.with_suffix(".png"))  # first: a missing matplotlib writes nothing
     write_html(doc, out)

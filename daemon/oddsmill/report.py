@@ -20,9 +20,9 @@ from .metrics import Snapshot, dashboard_page, status_document
 MARKER = b'<script>\n"use strict";'
 
 
-def report_document(engine: Engine, created: float, source: str) -> dict[str, Any]:
+def report_document(engine: Engine, created: float, source: str, race: Any = None) -> dict[str, Any]:
     """The /api/status document of a model at rest, as of when its checkpoint was written."""
-    doc = status_document(Snapshot.of(engine, last_checkpoint=created), now=created)
+    doc = status_document(Snapshot.of(engine, last_checkpoint=created, race=race), now=created)
     doc["time"] = created
     doc["report"] = {"source": source, "written": created}
     return doc
