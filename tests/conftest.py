@@ -148,14 +148,17 @@ class FedDaemon:
         assert all(topic == b"scores" for topic, _ in answers)
         self.learned = self.server.engine.learner.step
         # the figures are a snapshot refreshed a few times a second, and events/s needs two samples
-        deadline = time.monotonic() + TIMEOUT_MS / 1000
+        deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             doc = self.status()
             if doc["step"] == self.learned and doc["rates"] and len(doc["coefficients"]) == min(12, doc["features"]):
                 break
             time.sleep(0.05)  # polling the daemon's own figures, not waiting for a guess of time
         else:
-            raise AssertionError("the daemon's figures did not catch up")
+            raise AssertionError(
+                f"the daemon's figures did not catch up: step {doc['step']} of {self.learned}, "
+                f"{len(doc['rates'])} rates, {len(doc['coefficients'])} coefficients of {doc['features']} features"
+            )
 
     def status(self) -> dict[str, Any]:
         import json
