@@ -144,7 +144,10 @@ class FedDaemon:
         batches = [sent[lo : lo + batch] for lo in range(0, len(sent), batch)]
         for b in batches:
             self.client.send({"batch": b})
-        answers = self.client.receive(sum(1 for b in batches if any("x" in e for e in b)))
+        # then a scoring request (scored, not learned): its answer comes after every batch is processed,
+        # including batches of outcomes only, which get no answer of their own
+        self.client.send({"x": {"route_km": 10.0}})
+        answers = self.client.receive(sum(1 for b in batches if any("x" in e for e in b)) + 1)
         assert all(topic == b"scores" for topic, _ in answers)
         self.learned = self.server.engine.learner.step
         # the figures are a snapshot refreshed a few times a second, and events/s needs two samples

@@ -12,10 +12,9 @@ from typing import Any
 
 import msgpack
 import zmq
-from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 
-from tests.conftest import RunningServer, sparse_stream
+from tests.conftest import RunningServer, loopback, sparse_stream
 
 
 def status(http: str) -> dict[str, Any]:
@@ -25,10 +24,9 @@ def status(http: str) -> dict[str, Any]:
 
 
 def test_an_overrun_shows_as_lost_events(tmp_path: Path) -> None:
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        scores="tcp://127.0.0.1:*",
+    settings = loopback(
+        tmp_path,
+        ingest_kind="sub",  # PUB/SUB: ZeroMQ drops what overruns the queues
         http="127.0.0.1:0",
         ingest_hwm=20,  # a short queue, so that a burst overruns it
         fsync="block",  # and a slow daemon: every block synced

@@ -326,14 +326,10 @@ def report(result: dict[str, Any], out: Any) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(prog="oddsmill bench", description=__doc__.split("\n\n")[0])
-    ap.add_argument("--events", type=int, default=20_000, help="events for one-a-message (x5 for blocks)")
-    ap.add_argument("--rate", type=float, default=10_000.0, help="offered load for the latency, events/s")
-    ap.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (two runs each)")
-    ap.add_argument("--shapes", default="one,batch,cols")
-    ap.add_argument("--json", action="store_true")
-    args = ap.parse_args(argv)
-    return bench(args)
+    """`python -m oddsmill.bench ...`: the same as `oddsmill bench ...`."""
+    from .cli import main as cli
+
+    return cli(["bench", *(sys.argv[1:] if argv is None else argv)])
 
 
 def bench(args: argparse.Namespace) -> int:
