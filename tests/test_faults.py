@@ -309,3 +309,46 @@ def test_a_corrupt_newest_checkpoint_falls_back_to_the_previous_and_the_journal(
     assert recovered.engine.learner.step == engine.learner.step == running.server.engine.learner.step
     mine, theirs = recovered.engine.learner.state_dict(), engine.learner.state_dict()
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
+
+
+def test_a_failure_to_start_a_new_segment_holds_only_what_follows(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The journal rotates to a new segment after a block is safe in the old one; if the new segment
+    cannot be created, that block is learned, the following are held, and nothing is written twice."""
+    import msgpack
+    from oddsmill import server as server_module
+
+    real = server_module.JournalWriter
+    failing = {"on": False}
+
+    class FlakyWriter(real):  # type: ignore[misc, valid-type]
+        def __init__(self, path: Path) -> None:
+            if failing["on"] and not path.exists():
+                raise OSError(errno.ENOSPC, "No space left on device (injected)")
+            super().__init__(path)
+
+    monkeypatch.setattr(server_module, "JournalWriter", FlakyWriter)
+    learner = LearnerSettings(scale_warmup=100)
+    running = RunningServer(loopback(tmp_path, http="127.0.0.1:0", segment_bytes=30_000), learner)
+    server, http = running.server, running.server.bound["http"]
+    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+    sent = [b for b in bodies(3000, seed=17) if "x" in b and "y" in b]
+    failing["on"] = True
+    for lo in range(0, 1000, 50):
+        for b in sent[lo : lo + 50]:
+            client.send(b)
+        client.receive(50)
+    wait_for("the outage", lambda: health(http) == 503)
+    failing["on"] = False
+    wait_for("recovery", lambda: health(http) == 200)
+    for b in sent[1000:]:
+        client.send(b)
+    client.receive(len(sent) - 1000)
+    client.close()
+    running.close()
+    records = journaled(tmp_path)
+    assert records[-len(sent) :] == [msgpack.packb(b) for b in sent]  # each once, in order
+    assert len(list_journal(tmp_path)) >= 2
+    assert server.engine.learner.step == len(sent)
+    assert_state_is_the_replay_of_the_journal(tmp_path, learner)

@@ -488,9 +488,10 @@ class Server:
             for item in decoded:
                 items.append((arrival, item))
                 owner.append(i)
-        if raws and self.outage is None:
-            self._journal(arrival, raws)
-        if self.outage is None:
+        journaled = self.outage is None
+        if raws and journaled:
+            journaled = self._journal(arrival, raws)
+        if journaled:  # (a write that fails after this block is in the journal holds only later blocks)
             results = self.process(items) if items else []
         else:
             self._hold(arrival, raws)
@@ -510,15 +511,16 @@ class Server:
             pub.send_multipart([b"rejects", msgpack.packb({"id": r.id, "reason": r.reason, "detail": r.detail})])
 
     # -- writing, and what happens when it fails -------------------------------------------------
-    def _journal(self, arrival: float, raws: list[bytes]) -> None:
-        """Journal a block's messages before anything of it is learned or published."""
+    def _journal(self, arrival: float, raws: list[bytes]) -> bool:
+        """Journal a block's messages before anything of it is learned or published; False when
+        the write failed and the block is not in the journal."""
         try:
             for raw in raws:
                 self.journal.append(arrival, raw)
             synced = self._persist()
         except OSError as e:
             self._fail(e)  # the caller holds this block
-            return
+            return False
         self.records += len(raws)
         self.unsaved.extend((arrival, raw) for raw in raws)
         if synced or self.settings.fsync == "os":  # handed to the OS is all "os" promises
@@ -531,7 +533,8 @@ class Server:
                 self.journal = JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
                 self._saved()
             except OSError as e:
-                self._fail(e)
+                self._fail(e)  # this block is safe in the old segment: only what follows is held
+        return True
 
     def _saved(self) -> None:
         """Everything journaled so far is safe (synced, or as safe as the policy asks)."""
