@@ -352,3 +352,23 @@ def test_a_failure_to_start_a_new_segment_holds_only_what_follows(
     assert len(list_journal(tmp_path)) >= 2
     assert server.engine.learner.step == len(sent)
     assert_state_is_the_replay_of_the_journal(tmp_path, learner)
+
+
+def test_the_http_port_is_on_loopback_by_default_and_changes_nothing(tmp_path: Path) -> None:
+    """PROTOCOL 1: HTTP binds to loopback unless told otherwise, and serves reads only: every other
+    method is refused on every path, and the model is the same afterwards."""
+    import http.client
+
+    assert ServerSettings(state_dir=tmp_path).http.startswith("127.0.0.1:")
+    running = RunningServer(loopback(tmp_path, http="127.0.0.1:0"), LearnerSettings())
+    host, port = running.server.bound["http"].rsplit(":", 1)
+    before = running.server.engine.learner.state_dict()["slots"].tobytes()
+    for method in ("POST", "PUT", "DELETE", "PATCH"):
+        for path in ("/", "/metrics", "/healthz", "/api/status"):
+            conn = http.client.HTTPConnection(host, int(port), timeout=5)
+            conn.request(method, path, body=b'{"step": 0}')
+            status = conn.getresponse().status
+            conn.close()
+            assert status == 501, (method, path, status)  # not implemented: there is nothing to change
+    assert running.server.engine.learner.state_dict()["slots"].tobytes() == before
+    running.close()
