@@ -14,7 +14,7 @@ from oddsmill.server import Server, ServerSettings, _score_body
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import journal_record, list_journal, load_newest
 
-from tests.conftest import DEMO, RunningServer
+from tests.conftest import DEMO, RunningServer, loopback
 from tests.test_server import Client, bodies
 
 
@@ -88,16 +88,7 @@ def test_journal_record_bytes() -> None:
 
 def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
     learner = LearnerSettings(scale_warmup=200)
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="off",
-        checkpoint_events=100,
-        segment_bytes=4096,
-        journal_keep=0,
-    )
+    settings = loopback(tmp_path, checkpoint_events=100, segment_bytes=4096, journal_keep=0)
     running = RunningServer(settings, learner)
     server, ctx = running.server, running.ctx
     client = Client(ctx, server.bound["ingest"], server.bound["scores"])

@@ -18,11 +18,10 @@ import zmq
 from oddsmill.engine import Engine, Score
 from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body
-from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import Client, RunningServer, sparse_stream
+from tests.conftest import Client, RunningServer, loopback, sparse_stream
 
 
 def bodies(n: int, seed: int) -> list[dict[str, Any]]:
@@ -50,13 +49,7 @@ def replay_journal(state: Path, settings: LearnerSettings) -> tuple[Engine, list
 
 
 def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Path) -> None:
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        checkpoint_events=500,
-    )
+    settings = loopback(tmp_path, checkpoint_events=500)
     learner = LearnerSettings(scale_warmup=200)
     running = RunningServer(settings, learner)
     server, ctx = running.server, running.ctx
@@ -170,13 +163,7 @@ def test_http_metrics_status_and_health(tmp_path: Path) -> None:
     from prometheus_client.parser import text_string_to_metric_families
     from sklearn.metrics import log_loss  # Source: scikit-learn's log_loss on the published scores
 
-    settings = ServerSettings(
-        state_dir=tmp_path,
-        ingest="tcp://127.0.0.1:*",
-        ingest_kind="pull",
-        scores="tcp://127.0.0.1:*",
-        http="127.0.0.1:0",
-    )
+    settings = loopback(tmp_path, http="127.0.0.1:0")
     running = RunningServer(settings, LearnerSettings(scale_warmup=200))
     server, ctx = running.server, running.ctx
     base = f"http://{server.bound['http']}"
