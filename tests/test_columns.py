@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from oddsmill.engine import Engine, Rejection, Score
+from oddsmill.engine import ColumnScores, Engine, Rejection, each_score
 from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body
 from oddsmill.settings import LearnerSettings
@@ -52,9 +52,13 @@ def test_a_columnar_block_equals_its_rows_one_by_one(schedule: str) -> None:
     for block in blocks(3):
         got = whole.process([(0.0, item) for item in decode_body(block)])
         want = one_by_one.process([(0.0, item) for e in as_events(block) for item in decode_body(e)])
-        assert [(r.id, r.logit) for _, r in got if isinstance(r, Score)] == [
-            (r.id, r.logit) for _, r in want if isinstance(r, Score)
+        # the same id, score and step for every row (a block learned whole answers in one
+        # ColumnScores, unrolled here)
+        assert [(r.id, r.logit, r.step, r.ts) for r in each_score(got)] == [
+            (r.id, r.logit, r.step, r.ts) for r in each_score(want)
         ]
+        held = "id" in block and NO_LABEL in bytes(block["y"])  # type: ignore[arg-type]
+        assert any(isinstance(r, ColumnScores) for _, r in got) == (not held)
         assert not any(isinstance(r, Rejection) for _, r in got + want)
     a, b = whole.learner.state_dict(), one_by_one.learner.state_dict()
     assert a["names"] == b["names"]

@@ -10,7 +10,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from oddsmill.engine import Engine, Score
+import pytest
+from oddsmill.engine import Engine, Score, each_score
+from oddsmill.errors import ConfigError
 from oddsmill.learner import Learner
 from oddsmill.progressive import sigmoid
 from oddsmill.protocol import decode_body
@@ -61,6 +63,81 @@ def test_each_candidate_equals_a_single_learner_run_and_switching_changes_none()
         assert a["scalars"].tobytes() == b["scalars"].tobytes()
         assert a["slots"].tobytes() == b["slots"].tobytes()
         assert mine.metrics.sum == theirs.metrics.sum
+
+
+def mixed(n: int, seed: int) -> list[tuple[float, dict[str, Any]]]:
+    """(arrival, body) of every kind: training events, scoring requests held by id and their
+    outcomes (some late, some for ids never held), columnar blocks (learned whole, and with held
+    rows), a repeated sequence number and a bad event, with arrival times that let requests expire."""
+    rnd = np.random.default_rng(seed)
+    stream = sparse_stream(n, seed)
+    out: list[tuple[float, dict[str, Any]]] = []
+    waiting: list[tuple[str, int]] = []
+    last_seq = 0
+    for i, (x, y) in enumerate(stream):
+        t = float(i + (1000 if i >= n // 2 else 0))  # a quiet hour halfway: what is held expires
+        kind = i % 10
+        if kind < 5:
+            out.append((t, {"x": x, "y": y, "src": "depot-a", "seq": i}))
+            last_seq = i
+        elif kind < 8:
+            out.append((t, {"id": f"P{i}", "x": x}))
+            waiting.append((f"P{i}", y))
+        elif kind == 8 and waiting:
+            k = int(rnd.integers(len(waiting)))
+            ident, label = waiting.pop(k)
+            out.append((t, {"id": ident, "y": label}))
+            out.append((t, {"id": f"never-{i}", "y": 1}))
+        else:
+            rows = rnd.normal(size=(6, 2)) * [30.0, 5.0]
+            cols: dict[str, Any] = {"cols": ["route_km", "stops_before"], "rows": rows.astype("<f8").tobytes()}
+            labels = (rnd.random(6) < 0.4).astype(np.uint8)
+            if i % 20 == 9:  # rows held by id: learned row by row
+                labels[::2] = 255
+                cols["id"] = [f"C{i}-{r}" for r in range(6)]
+            cols["y"] = labels.tobytes()
+            out.append((t, cols))
+            out.append((t, {"x": {"route_km": float("nan")}, "y": 1}))
+            out.append((t, {"x": x, "y": y, "src": "depot-a", "seq": last_seq}))  # a duplicate
+    return out
+
+
+def test_candidates_sharing_one_encoding_equal_engines_of_their_own() -> None:
+    """The race prepares each block once (one vocabulary, counters, sequence checks) and mirrors
+    the pending store into every candidate; each must end exactly where an engine of its own on
+    the same blocks ends: weights, metrics, held requests with the scores published for them."""
+    stream = mixed(6_000, seed=5)
+    race = Race(SPEEDS, window=500, pending_limit=100, pending_ttl=400.0, patience=200)
+    alone = [Engine(Learner(c.settings), 500, 100, 400.0) for c in SPEEDS]
+    served, expected = [], []
+    for lo in range(0, len(stream), 97):
+        block = [(t, it) for t, body in stream[lo : lo + 97] for it in decode_body(body)]
+        serving = race.serving
+        served.extend((r.id, r.logit, r.step) for r in each_score(race.process(block)))
+        for k, e in enumerate(alone):
+            got = e.process(block)
+            if k == serving:
+                expected.extend((r.id, r.logit, r.step) for r in each_score(got))
+    assert served == expected
+    c = race.engine.counters
+    assert c.pending_expired > 0 and c.pending_evicted > 0 and c.outcome > 0
+    assert c.rejected["unknown_outcome"] > 0 and c.rejected["duplicate"] > 0 and c.rejected["non_finite"] > 0
+    for mine, theirs in zip(race.engines, alone, strict=True):
+        a, b = mine.state_dict(), theirs.state_dict()
+        for key in ("scalars", "slots", "flags", "centred_list", "warmup_queue"):
+            assert a["learner"][key].tobytes() == b["learner"][key].tobytes(), key
+        assert a["learner"]["names"] == b["learner"]["names"]
+        assert a["pending"] == b["pending"]  # the same ids in the same order, each with its own score
+        assert a["counters"] == b["counters"] and a["last_seq"] == b["last_seq"]
+        assert mine.metrics.sum == theirs.metrics.sum and mine.metrics.count == theirs.metrics.count
+    # the candidates' held scores differ: each holds the score it published itself
+    logits = [[e[4] for e in eng.state_dict()["pending"]] for eng in race.engines]
+    assert logits[0] != logits[1]
+
+
+def test_candidates_must_share_the_vocabulary_cap() -> None:
+    with pytest.raises(ConfigError, match="one max_features"):
+        Race([Candidate("a", LearnerSettings()), Candidate("b", LearnerSettings(max_features=10))])
 
 
 def test_a_restored_race_continues_exactly(tmp_path: Path) -> None:

@@ -40,10 +40,45 @@ class Score:
 
 
 @dataclass(frozen=True)
+class ColumnScores:
+    """The scores of a columnar block learned whole, one a row in row order, with no Python object
+    a row: the daemon publishes the arrays as they are. `steps` holds each row's step (its body
+    carries the first, PROTOCOL 3)."""
+
+    ids: tuple[Any, ...] | None
+    logits: np.ndarray
+    steps: np.ndarray
+    ts: float
+
+    @property
+    def step(self) -> int:
+        return int(self.steps[0])
+
+    def rows(self) -> list[Score]:
+        """The same scores as one `Score` a row."""
+        ids = self.ids if self.ids is not None else (None,) * self.logits.shape[0]
+        return [Score(i, z, s, self.ts) for i, z, s in zip(ids, self.logits.tolist(), self.steps.tolist(), strict=True)]
+
+
+@dataclass(frozen=True)
 class Rejection:
     id: Any
     reason: str
     detail: str
+
+
+Result = Score | ColumnScores | Rejection  # what `Engine.process` answers for an item
+
+
+def each_score(results: list[tuple[int, Result]]) -> list[Score]:
+    """The scores among results, one a row, in order (columnar blocks unrolled)."""
+    out: list[Score] = []
+    for _, r in results:
+        if isinstance(r, Score):
+            out.append(r)
+        elif isinstance(r, ColumnScores):
+            out.extend(r.rows())
+    return out
 
 
 @dataclass
@@ -55,6 +90,25 @@ class Counters:
     rejected: dict[str, int] = field(default_factory=dict)
     pending_expired: int = 0
     pending_evicted: int = 0
+
+
+DROP, JOIN, HOLD = 0, 1, 2  # what `prepare` did to the pending store, for `follow` to do the same
+
+
+class Plan:
+    """A block prepared for the kernel: the events in order, what each item answers (a rejection
+    now, or a place in the block), and the pending store's changes."""
+
+    __slots__ = ("block", "results", "holds", "joins", "ops", "step")
+
+    def __init__(self, step: int) -> None:
+        self.block = BlockBuilder()
+        self.step = step  # the learner's step before the block
+        # (item index, Rejection | (position, id, arrival) | (first position, rows, ids, arrival))
+        self.results: list[tuple[int, Any]] = []
+        self.holds: list[tuple[int, PendingEntry]] = []  # scoring requests held: their score is set after the run
+        self.joins: list[tuple[int, PendingEntry]] = []  # outcomes: learned with these held entries
+        self.ops: list[tuple[int, Any, int, Any]] = []  # (DROP, -, -, count) | (JOIN|HOLD, id, position, entry)
 
 
 class Engine:
@@ -75,16 +129,21 @@ class Engine:
         self.counters = Counters()
         self.last_seq: dict[str, int] = {}
 
-    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
-        """Run items (arrival time, decoded item) as one block; returns (index of the item, score
-        or rejection) in order. Rejections change nothing but their counter."""
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
+        """Run items (arrival time, decoded item) as one block; returns (index of the item, score,
+        the scores of a columnar block, or rejection) in order. Rejections change nothing but their
+        counter."""
+        plan = self.prepare(items)
+        out = self.finish(plan, plan.holds, plan.joins, publish=True)
+        assert out is not None
+        return out
+
+    def prepare(self, items: list[tuple[float, Item]]) -> Plan:
+        """Everything of a block but the kernel: sequence checks, encoding, the pending store and
+        the counters. `finish` then runs the kernel and keeps the metrics."""
         lr = self.learner
-        b = BlockBuilder()
-        # per block position: (id, arrival, held pending entry or None, label or None)
-        slots_meta: list[tuple[Any, float, PendingEntry | None, float | None]] = []
-        results: list[tuple[int, Score | Rejection | int]] = []  # int: position in the block
-        steps: list[int] = []
-        step = lr.step
+        plan = Plan(lr.step)
+        b, results, ops = plan.block, plan.results, plan.ops
         for n, (arrival, item) in enumerate(items):
             if isinstance(item, ProtocolError):
                 results.append((n, self._reject(item.event_id, item.reason, item.detail)))
@@ -104,9 +163,11 @@ class Engine:
             # producers' and need not agree with each other or with this clock.
             clock = arrival
             if self.pending:
-                self._expire(clock)
+                dropped = self._expire(clock)
+                if dropped:
+                    ops.append((DROP, None, -1, dropped))
             if isinstance(item, Columns) and self._plain(item):
-                step = self._add_columns(n, arrival, item, b, slots_meta, results, steps, step)
+                self._add_columns(n, arrival, item, plan)
                 continue
             for ev in _events(item):
                 if ev.x is None:  # an outcome
@@ -117,10 +178,10 @@ class Engine:
                         )
                         continue
                     assert ev.y is not None
+                    pos = len(b)
                     b.add(held.slots, held.values, K.OP_LEARN, float(ev.y), held.w)
-                    slots_meta.append((ev.id, arrival, held, float(ev.y)))
-                    steps.append(step)
-                    step += 1
+                    plan.joins.append((pos, held))
+                    ops.append((JOIN, ev.id, pos, held))
                     self.counters.outcome += 1
                     continue
                 try:
@@ -128,50 +189,93 @@ class Engine:
                 except ProtocolError as e:
                     results.append((n, self._reject(e.event_id, e.reason, e.detail)))
                     continue
-                results.append((n, len(b)))
-                steps.append(step)
+                pos = len(b)
+                results.append((n, (pos, ev.id, arrival)))
                 if ev.y is not None:
                     b.add(slots, values, K.OP_TRAIN, float(ev.y), ev.w)
-                    slots_meta.append((ev.id, arrival, None, float(ev.y)))
-                    step += 1
                     self.counters.train += 1
                 else:
                     b.add(slots, values, K.OP_SCORE, 0.0, ev.w)
-                    held = None
                     if ev.id is not None:
                         held = PendingEntry(slots, values, ev.w, float("nan"), clock)
-                        self._hold(ev.id, held)
-                    slots_meta.append((ev.id, arrival, held, None))
+                        plan.holds.append((pos, held))
+                        ops.append((HOLD, ev.id, pos, held))
+                        evicted = self._hold(ev.id, held)
+                        if evicted:
+                            ops.append((DROP, None, -1, evicted))
                     self.counters.score += 1
-        if len(b) == 0:
-            return [(n, r) for n, r in results if not isinstance(r, int)]
-        logits = lr.run(b.build())
-        # metrics on labelled events: the score that was published for each
-        zs, ys = [], []
-        for pos, (_, _, held, label) in enumerate(slots_meta):
-            if held is not None and label is None:
-                held.logit = float(logits[pos])
-            if label is not None:
-                zs.append(held.logit if held is not None else float(logits[pos]))
-                ys.append(label)
-        self.metrics.update(np.asarray(zs, dtype=np.float64), np.asarray(ys, dtype=np.float64))
-        out: list[tuple[int, Score | Rejection]] = []
-        for n, r in results:
-            if isinstance(r, int):
-                ident, arrival, _, _ = slots_meta[r]
-                out.append((n, Score(ident, float(logits[r]), steps[r], arrival)))
+        return plan
+
+    def follow(
+        self, plan: Plan, leader: Engine
+    ) -> tuple[list[tuple[int, PendingEntry]], list[tuple[int, PendingEntry]]]:
+        """Take a block another engine prepared, as a candidate of a race sharing its vocabulary,
+        counters and sequence numbers: grow to the shared vocabulary and do to this engine's own
+        pending store what `prepare` did to the leader's (its entries keep this engine's scores).
+        Returns this engine's (holds, joins) for `finish`."""
+        self.learner.follow_vocabulary(leader.learner)
+        holds: list[tuple[int, PendingEntry]] = []
+        joins: list[tuple[int, PendingEntry]] = []
+        pending = self.pending
+        for kind, ident, pos, arg in plan.ops:
+            if kind == DROP:
+                for _ in range(arg):
+                    pending.popitem(last=False)
+            elif kind == JOIN:
+                joins.append((pos, pending.pop(ident)))
             else:
+                entry = PendingEntry(arg.slots, arg.values, arg.w, float("nan"), arg.clock)
+                pending.pop(ident, None)
+                pending[ident] = entry
+                holds.append((pos, entry))
+        return holds, joins
+
+    def finish(
+        self,
+        plan: Plan,
+        holds: list[tuple[int, PendingEntry]],
+        joins: list[tuple[int, PendingEntry]],
+        publish: bool,
+    ) -> list[tuple[int, Result]] | None:
+        """Run the kernel over a prepared block, keep the metrics on the labelled events (with the
+        score that was published for each), and, when `publish`, return the results in order."""
+        if len(plan.block) == 0:
+            return [(n, r) for n, r in plan.results if not isinstance(r, tuple)] if publish else None
+        block = plan.block.build()
+        logits = self.learner.run(block)
+        for pos, entry in holds:  # before the joins: an outcome may follow its request in one block
+            entry.logit = float(logits[pos])
+        labelled = block.op != K.OP_SCORE
+        zs = logits
+        if joins:
+            zs = logits.copy()
+            for pos, entry in joins:
+                zs[pos] = entry.logit
+        self.metrics.update(zs[labelled], block.y[labelled])
+        if not publish:
+            return None
+        # the step of each event: the events learned before it
+        steps = np.cumsum(labelled) - labelled + plan.step
+        out: list[tuple[int, Result]] = []
+        for n, r in plan.results:
+            if not isinstance(r, tuple):
                 out.append((n, r))
+            elif len(r) == 3:
+                pos, ident, arrival = r
+                out.append((n, Score(ident, float(logits[pos]), int(steps[pos]), arrival)))
+            else:
+                start, m, ids, arrival = r
+                out.append((n, ColumnScores(ids, logits[start : start + m], steps[start : start + m], arrival)))
         return out
 
-    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Scores for the events with features, from the model as it stands, changing nothing: not
         the vocabulary (unknown features count as absent), not the pending store, not a counter.
         What the daemon answers while it cannot write its state; the items are learned later."""
         lr = self.learner
         b = BlockBuilder()
         owners: list[tuple[int, Any, float]] = []
-        out: list[tuple[int, Score | Rejection]] = []
+        out: list[tuple[int, Result]] = []
         for n, (arrival, item) in enumerate(items):
             if isinstance(item, ProtocolError):
                 out.append((n, Rejection(item.event_id, item.reason, item.detail)))
@@ -205,26 +309,17 @@ class Engine:
         new = sum(1 for c in cols if c not in vocab.index)
         return len(vocab) + new <= vocab.max_features
 
-    def _add_columns(
-        self,
-        n: int,
-        arrival: float,
-        item: Columns,
-        b: BlockBuilder,
-        slots_meta: list[tuple[Any, float, PendingEntry | None, float | None]],
-        results: list[tuple[int, Score | Rejection | int]],
-        steps: list[int],
-        step: int,
-    ) -> int:
-        """The rows of a plain columnar block into the block, as `process` would add them one by
+    def _add_columns(self, n: int, arrival: float, item: Columns, plan: Plan) -> None:
+        """The rows of a plain columnar block into the block, as `prepare` would add them one by
         one (the same slots, values, order and counts), with the per-row work done by numpy."""
-        rows, ids = item.rows, item.ids
+        rows = item.rows
         m = rows.shape[0]
         if m == 0:
-            return step
+            return
         # the first row gives the new names their slots, in column order, as row by row
         slots, _ = self.learner.encode(dict.fromkeys(item.cols, 0.0), grow=True)
-        first = len(b)
+        b = plan.block
+        start = len(b)
         labels = item.y
         unlabelled = np.isnan(labels)
         b.add_rows(
@@ -233,18 +328,10 @@ class Engine:
             np.where(unlabelled, K.OP_SCORE, K.OP_TRAIN),
             np.where(unlabelled, 0.0, labels),
         )
-        for pos, label in enumerate(labels.tolist()):
-            ident = ids[pos] if ids is not None else None
-            results.append((n, first + pos))
-            steps.append(step)
-            if label == label:  # labelled: learned
-                slots_meta.append((ident, arrival, None, label))
-                step += 1
-                self.counters.train += 1
-            else:
-                slots_meta.append((ident, arrival, None, None))
-                self.counters.score += 1
-        return step
+        scored = int(np.count_nonzero(unlabelled))
+        self.counters.train += m - scored
+        self.counters.score += scored
+        plan.results.append((n, (start, m, item.ids, arrival)))
 
     # -- helpers -------------------------------------------------------------------------------
     def _reject(self, ident: Any, reason: str, detail: str) -> Rejection:
@@ -264,20 +351,28 @@ class Engine:
         self.last_seq[item.src] = item.seq
         return True
 
-    def _hold(self, ident: Any, entry: PendingEntry) -> None:
+    def _hold(self, ident: Any, entry: PendingEntry) -> int:
+        """Hold a scoring request; returns how many of the oldest were evicted for room."""
         self.pending.pop(ident, None)
         self.pending[ident] = entry
+        evicted = 0
         while len(self.pending) > self.pending_limit:
             self.pending.popitem(last=False)
-            self.counters.pending_evicted += 1
+            evicted += 1
+        self.counters.pending_evicted += evicted
+        return evicted
 
-    def _expire(self, now: float) -> None:
+    def _expire(self, now: float) -> int:
+        """Drop the held requests past their time-to-live; returns how many."""
+        expired = 0
         while self.pending:
             first = next(iter(self.pending.values()))
             if first.clock >= now - self.pending_ttl:
                 break
             self.pending.popitem(last=False)
-            self.counters.pending_expired += 1
+            expired += 1
+        self.counters.pending_expired += expired
+        return expired
 
     # -- state -----------------------------------------------------------------------------------
     def state_dict(self) -> dict[str, Any]:

@@ -131,6 +131,20 @@ class Learner:
             self._sc[K.S_NSLOTS] = len(self.vocab)
         return slots, values
 
+    def follow_vocabulary(self, leader: Learner) -> None:
+        """Take the slots `leader` created in the vocabulary this learner shares with it (a race's
+        candidates encode once): the same capacity, grown at the same step, and the same numeric
+        flags, so the state is what encoding the events itself would have left."""
+        if self.vocab is not leader.vocab:
+            raise ValueError("follow_vocabulary needs the leader's own vocabulary object")
+        n = len(self.vocab)
+        old = int(self._sc[K.S_NSLOTS])
+        if n <= old:
+            return
+        self._grow(leader._sl.shape[0])
+        self._fl[old:n] |= leader._fl[old:n] & K.F_NUMERIC
+        self._sc[K.S_NSLOTS] = n
+
     # -- the kernel ------------------------------------------------------------------------------
     def run(self, block: Block) -> np.ndarray:
         """Score and learn a block in order (kernel.learn_block); returns the published logits."""

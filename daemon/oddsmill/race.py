@@ -1,8 +1,12 @@
 """A race of candidate learners on one stream; the best one serves.
 
-Every candidate is a full engine of its own (learner, feature encoding, pending outcomes, progressive
-metrics) fed the same messages, so each is scored progressively on every labelled event (predict,
-then learn) and each equals a single-learner run with its settings, bit for bit. One candidate
+Every candidate is a full engine (learner, pending outcomes, progressive metrics) fed the same
+messages, so each is scored progressively on every labelled event (predict, then learn) and each
+equals a single-learner run with its settings, bit for bit. The work that does not depend on the
+settings is done once a block: the first candidate's engine checks sequence numbers, encodes the
+features into one block and keeps the counters; the candidates share its vocabulary, counters and
+sequence numbers, and each runs the kernel over that same block (`Engine.prepare`, `follow`,
+`finish`). So the candidates must share `max_features`, the one setting of the encoding. One candidate
 serves: its scores are the ones published. Another takes over only when its windowed progressive
 log-loss has been better than the serving one's by `margin` (relative) for `patience` labelled
 events in a row, checked after every block: no flapping. A switch changes which scores are
@@ -24,7 +28,7 @@ import math
 from dataclasses import dataclass, replace
 from typing import Any
 
-from .engine import Engine, Rejection, Score
+from .engine import Engine, Result
 from .errors import ConfigError
 from .learner import Learner
 from .protocol import Item
@@ -59,6 +63,11 @@ def check_candidates(candidates: list[Candidate]) -> None:
     names = [c.name for c in candidates]
     if len(set(names)) != len(names):
         raise ConfigError(f"candidate names must differ, got {names}")
+    caps = {c.settings.max_features for c in candidates}
+    if len(caps) > 1:
+        raise ConfigError(
+            f"the candidates of a race share one feature encoding, so one max_features; got {sorted(caps)}"
+        )
     for name in names:
         if not name or len(name) > 64 or any(ch in name for ch in '"\\\n'):
             raise ConfigError(f"candidate name {name!r}: 1 to 64 characters, no quotes, backslashes or newlines")
@@ -81,6 +90,7 @@ class Race:
             raise ConfigError(f"patience must be >= 1, got {patience!r}")
         self.names = [c.name for c in candidates]
         self.engines = [Engine(Learner(c.settings), window, pending_limit, pending_ttl) for c in candidates]
+        self._share()
         self.margin, self.patience = margin, patience
         self.serving = 0
         self.switches: list[dict[str, Any]] = []  # each switch: at which labelled event, from, to, figures
@@ -92,14 +102,32 @@ class Race:
         """The serving candidate's engine."""
         return self.engines[self.serving]
 
-    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
-        """Every candidate runs the block; the serving one's results are returned (to publish)."""
-        results = [e.process(items) for e in self.engines]
-        served = results[self.serving]
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
+        """Every candidate runs the block; the serving one's results are returned (to publish).
+        The block is prepared (checked and encoded) once, by the first candidate's engine."""
+        lead = self.engines[0]
+        plan = lead.prepare(items)
+        served: list[tuple[int, Result]] | None = None
+        for k, e in enumerate(self.engines):
+            holds, joins = (plan.holds, plan.joins) if k == 0 else e.follow(plan, lead)
+            out = e.finish(plan, holds, joins, publish=k == self.serving)
+            if out is not None:
+                served = out
+        assert served is not None
         self._consider()
         return served
 
-    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+    def _share(self) -> None:
+        """The candidates share the first one's vocabulary, counters and sequence numbers."""
+        lead = self.engines[0]
+        for e in self.engines[1:]:
+            if e.learner.vocab.names != lead.learner.vocab.names:
+                raise ValueError("a race's candidates disagree on the vocabulary")
+            e.learner.vocab = lead.learner.vocab
+            e.counters = lead.counters
+            e.last_seq = lead.last_seq
+
+    def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         return self.engine.score_only(items)
 
     def _consider(self) -> None:
@@ -171,4 +199,5 @@ class Race:
         race.leading_since = int(d["leading_since"])
         if len(race.names) != len(race.engines) or not 0 <= race.serving < len(race.engines):
             raise ValueError("a race's names, engines and serving index do not agree")
+        race._share()
         return race

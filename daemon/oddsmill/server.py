@@ -24,7 +24,7 @@ import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry
 
-from .engine import Engine, Rejection, Score
+from .engine import ColumnScores, Engine, Rejection, Result, Score
 from .errors import ConfigError, ProtocolError
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
@@ -276,7 +276,7 @@ class Server:
         log.info("resuming from %s at step %d", path.name, engine.learner.step)
         return engine, int(position["records"]) if position else 0, position
 
-    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Score | Rejection]]:
+    def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Score and learn a block: the engine's results, or in a race the serving candidate's."""
         if self.race is None:
             return self.engine.process(items)
@@ -496,10 +496,12 @@ class Server:
         else:
             self._hold(arrival, raws)
             results = self.engine.score_only(items)
-        scores: dict[int, list[Score]] = {}
+        scores: dict[int, list[Score] | ColumnScores] = {}
         for n, r in results:
             if isinstance(r, Score):
-                scores.setdefault(owner[n], []).append(r)
+                scores.setdefault(owner[n], []).append(r)  # type: ignore[union-attr]
+            elif isinstance(r, ColumnScores):
+                scores[owner[n]] = r  # a columnar message is one item
             else:
                 rejects.append(r)
         for i in sorted(scores):
@@ -624,7 +626,17 @@ def _p(z: float) -> float:
     return float(1.0 / (1.0 + np.exp(-z))) if z >= 0 else float(np.exp(z) / (1.0 + np.exp(z)))
 
 
-def _score_body(scores: list[Score], shape: str) -> dict[str, Any]:
+def _score_body(scores: list[Score] | ColumnScores, shape: str) -> dict[str, Any]:
+    if isinstance(scores, ColumnScores):
+        z = scores.logits.astype("<f8", copy=False)
+        m = z.shape[0]
+        return {
+            "id": list(scores.ids) if scores.ids is not None else [None] * m,
+            "p": np.exp(-np.logaddexp(0.0, -z)).astype("<f8").tobytes(),
+            "logit": z.tobytes(),
+            "step": scores.step,
+            "ts": scores.ts,
+        }
     if shape == "cols":
         z = np.array([s.logit for s in scores], dtype="<f8")
         p = np.exp(-np.logaddexp(0.0, -z)).astype("<f8")
