@@ -142,10 +142,35 @@ class Block:
         return int(self.ptr.shape[0] - 1)
 
 
+@dataclass
+class Rows:
+    """Events that share their slots, as the rows of a columnar block: row r has the values rows[r]
+    at `slots`, weight 1. The kernel runs them as they are (kernel.learn_rows)."""
+
+    slots: np.ndarray  # int64, k
+    rows: np.ndarray  # float64, C order, m x k
+    op: np.ndarray  # int8, m
+    y: np.ndarray  # float64, m
+
+    def __len__(self) -> int:
+        return int(self.rows.shape[0])
+
+    def as_block(self) -> Block:
+        m, k = self.rows.shape
+        return Block(
+            ptr=np.arange(0, (m + 1) * k, k, dtype=np.int64),
+            idx=np.tile(self.slots, m),
+            val=self.rows.ravel(),
+            op=self.op,
+            y=self.y,
+            w=np.ones(m),
+        )
+
+
 class BlockBuilder:
     """Collects encoded events, then hands the kernel one block. Events come one at a time (`add`,
-    into Python lists) or many at once as arrays (`add_rows`, for a columnar block); `build` joins
-    them in the order they came."""
+    into Python lists) or many at once as arrays (`add_rows`, for a columnar block); `segments`
+    gives them in the order they came as CSR blocks and runs of rows, `build` as one CSR block."""
 
     def __init__(self) -> None:
         self.n: list[int] = []  # features of each event
@@ -154,7 +179,7 @@ class BlockBuilder:
         self.op: list[int] = []
         self.y: list[float] = []
         self.w: list[float] = []
-        self._chunks: list[tuple[np.ndarray, ...]] = []  # (n, idx, val, op, y, w) arrays, in order
+        self._chunks: list[Block | Rows] = []  # in order
         self._events = 0
 
     def __len__(self) -> int:
@@ -172,48 +197,60 @@ class BlockBuilder:
     def add_rows(self, slots: np.ndarray, rows: np.ndarray, op: np.ndarray, y: np.ndarray) -> None:
         """Events that share their slots: row r has the values rows[r] at `slots`; weight 1."""
         self._flush()
-        m, k = rows.shape
         self._chunks.append(
-            (
-                np.full(m, k, dtype=np.int64),
-                np.tile(slots.astype(np.int64), m),
-                np.ascontiguousarray(rows, dtype=np.float64).ravel(),
+            Rows(
+                np.ascontiguousarray(slots, dtype=np.int64),
+                np.ascontiguousarray(rows, dtype=np.float64),
                 op.astype(np.int8),
                 y.astype(np.float64),
-                np.ones(m),
             )
         )
-        self._events += m
+        self._events += rows.shape[0]
 
     def _flush(self) -> None:
         if self.n:
+            n = np.asarray(self.n, dtype=np.int64)
+            ptr = np.zeros(n.shape[0] + 1, dtype=np.int64)
+            np.cumsum(n, out=ptr[1:])
             self._chunks.append(
-                (
-                    np.asarray(self.n, dtype=np.int64),
-                    np.asarray(self.idx, dtype=np.int64),
-                    np.asarray(self.val, dtype=np.float64),
-                    np.asarray(self.op, dtype=np.int8),
-                    np.asarray(self.y, dtype=np.float64),
-                    np.asarray(self.w, dtype=np.float64),
+                Block(
+                    ptr=ptr,
+                    idx=np.asarray(self.idx, dtype=np.int64),
+                    val=np.asarray(self.val, dtype=np.float64),
+                    op=np.asarray(self.op, dtype=np.int8),
+                    y=np.asarray(self.y, dtype=np.float64),
+                    w=np.asarray(self.w, dtype=np.float64),
                 )
             )
             self.n, self.idx, self.val, self.op, self.y, self.w = [], [], [], [], [], []
 
-    def build(self) -> Block:
+    def segments(self) -> list[Block | Rows]:
+        """The events in order, as CSR blocks and runs of rows."""
         self._flush()
-        if len(self._chunks) == 1:
-            n, idx, val, op, y, w = self._chunks[0]
-        else:
-            empty = (
-                np.zeros(0, np.int64),
+        return list(self._chunks)
+
+    def build(self) -> Block:
+        """The events in order as one CSR block."""
+        parts = [c.as_block() if isinstance(c, Rows) else c for c in self.segments()]
+        if len(parts) == 1:
+            return parts[0]
+        if not parts:
+            return Block(
+                np.zeros(1, np.int64),
                 np.zeros(0, np.int64),
                 np.zeros(0),
                 np.zeros(0, np.int8),
                 np.zeros(0),
                 np.zeros(0),
             )
-            n, idx, val, op, y, w = (np.concatenate(parts) for parts in zip(empty, *self._chunks, strict=True))
-            self._chunks = [(n, idx, val, op, y, w)]
-        ptr = np.zeros(n.shape[0] + 1, dtype=np.int64)
-        np.cumsum(n, out=ptr[1:])
-        return Block(ptr=ptr, idx=idx, val=val, op=op, y=y, w=w)
+        counts = np.concatenate([np.diff(p.ptr) for p in parts])
+        ptr = np.zeros(counts.shape[0] + 1, dtype=np.int64)
+        np.cumsum(counts, out=ptr[1:])
+        return Block(
+            ptr=ptr,
+            idx=np.concatenate([p.idx for p in parts]),
+            val=np.concatenate([p.val for p in parts]),
+            op=np.concatenate([p.op for p in parts]),
+            y=np.concatenate([p.y for p in parts]),
+            w=np.concatenate([p.w for p in parts]),
+        )

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from . import kernel as K
-from .encoding import BlockBuilder
+from .encoding import Block, BlockBuilder, Rows
 from .errors import ProtocolError
 from .learner import Learner
 from .progressive import ProgressiveMetrics
@@ -99,7 +99,7 @@ class Plan:
     """A block prepared for the kernel: the events in order, what each item answers (a rejection
     now, or a place in the block), and the pending store's changes."""
 
-    __slots__ = ("block", "results", "holds", "joins", "ops", "step")
+    __slots__ = ("block", "results", "holds", "joins", "ops", "step", "_segments")
 
     def __init__(self, step: int) -> None:
         self.block = BlockBuilder()
@@ -109,6 +109,21 @@ class Plan:
         self.holds: list[tuple[int, PendingEntry]] = []  # scoring requests held: their score is set after the run
         self.joins: list[tuple[int, PendingEntry]] = []  # outcomes: learned with these held entries
         self.ops: list[tuple[int, Any, int, Any]] = []  # (DROP, -, -, count) | (JOIN|HOLD, id, position, entry)
+        self._segments: list[Block | Rows] | None = None
+
+    def segments(self) -> list[Block | Rows]:
+        """The block for the kernel, built once: after this the plan is only read, so a race's
+        candidates may run it on several threads at once."""
+        if self._segments is None:
+            self._segments = self.block.segments()
+        return self._segments
+
+    def labels(self) -> tuple[np.ndarray, np.ndarray]:
+        """(op, y) of every event of the block, in order."""
+        parts = self.segments()
+        if len(parts) == 1:
+            return parts[0].op, parts[0].y
+        return np.concatenate([p.op for p in parts]), np.concatenate([p.y for p in parts])
 
 
 class Engine:
@@ -239,19 +254,36 @@ class Engine:
     ) -> list[tuple[int, Result]] | None:
         """Run the kernel over a prepared block, keep the metrics on the labelled events (with the
         score that was published for each), and, when `publish`, return the results in order."""
+        return self.settle(plan, holds, joins, self.run(plan), publish)
+
+    def run(self, plan: Plan) -> np.ndarray:
+        """The kernel over a prepared block: the published logits (NaN for joined outcomes). The
+        only part of `finish` that runs without the GIL."""
+        if len(plan.block) == 0:
+            return np.empty(0)
+        return self.learner.run_segments(plan.segments())
+
+    def settle(
+        self,
+        plan: Plan,
+        holds: list[tuple[int, PendingEntry]],
+        joins: list[tuple[int, PendingEntry]],
+        logits: np.ndarray,
+        publish: bool,
+    ) -> list[tuple[int, Result]] | None:
+        """What follows the kernel: the held requests' scores, the metrics, the answers."""
         if len(plan.block) == 0:
             return [(n, r) for n, r in plan.results if not isinstance(r, tuple)] if publish else None
-        block = plan.block.build()
-        logits = self.learner.run(block)
+        op, ys = plan.labels()
         for pos, entry in holds:  # before the joins: an outcome may follow its request in one block
             entry.logit = float(logits[pos])
-        labelled = block.op != K.OP_SCORE
+        labelled = op != K.OP_SCORE
         zs = logits
         if joins:
             zs = logits.copy()
             for pos, entry in joins:
                 zs[pos] = entry.logit
-        self.metrics.update(zs[labelled], block.y[labelled])
+        self.metrics.update(zs[labelled], ys[labelled])
         if not publish:
             return None
         # the step of each event: the events learned before it

@@ -42,10 +42,11 @@ import math
 import numpy as np
 from numba import njit
 
-# Every function is compiled with error_model="numpy": a division by zero gives inf or NaN instead
-# of raising, which spares each call an exception check (measured: 35 ns a call otherwise). The
-# kernel never divides by a value that can be 0: scales are > 0, and the averaged weights are read
-# only when the count of averaged steps is > 0.
+# The entry points release the GIL (nogil): a race's candidates run their kernels on other threads,
+# each on a state of its own. Every function is compiled with error_model="numpy": a division by
+# zero gives inf or NaN instead of raising, which spares each call an exception check (measured:
+# 35 ns a call otherwise). The kernel never divides by a value that can be 0: scales are > 0, and
+# the averaged weights are read only when the count of averaged steps is > 0.
 
 # settings record
 (
@@ -235,7 +236,7 @@ def _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore
     return _logit_global(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", nogil=True)
 def score_block(prm, sc, sl, fl, cl, ptr, idx, val, out):  # type: ignore[no-untyped-def]
     """Logits of every event of a block with the state as it is (scoring never changes state)."""
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
@@ -428,30 +429,47 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
     sc[S_T] = t + 1.0
 
 
-@njit(cache=True, error_model="numpy")
+@njit(cache=True, error_model="numpy", inline="always")
+def _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op, y, w, dx, ada):  # type: ignore[no-untyped-def]
+    """One event of a block (features idx[lo:hi] with values val[lo:hi]); returns its published
+    logit (scored with the state before it is learned: progressive validation), NaN for LEARN."""
+    if op == OP_LEARN:
+        _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, np.nan, False)
+        return np.nan
+    averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
+    if sc[S_NCENT] > 0.0:
+        _gather(sl, fl, idx, val, lo, hi, dx)
+    z_cur = np.nan
+    if averaged and not ada and op == OP_TRAIN:
+        z, z_cur = _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx)
+    else:
+        z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+        if not averaged:
+            z_cur = z
+    if op == OP_TRAIN:
+        _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_cur, True)
+    elif sc[S_NCENT] > 0.0:
+        _clear(sl, fl, idx, lo, hi, dx)
+    return z
+
+
+@njit(cache=True, error_model="numpy", nogil=True)
 def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
     """Run a block in order. `out[e]` gets the published logit of SCORE and TRAIN events (scored
     with the state before the event is learned: progressive validation) and NaN for LEARN ones."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
     for e in range(ptr.shape[0] - 1):
-        lo = ptr[e]
-        hi = ptr[e + 1]
-        if op[e] == OP_LEARN:
-            out[e] = np.nan
-            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx, np.nan, False)
-            continue
-        averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
-        if sc[S_NCENT] > 0.0:
-            _gather(sl, fl, idx, val, lo, hi, dx)
-        z_cur = np.nan
-        if averaged and not ada and op[e] == OP_TRAIN:
-            out[e], z_cur = _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx)
-        else:
-            out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
-            if not averaged:
-                z_cur = out[e]
-        if op[e] == OP_TRAIN:
-            _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y[e], w[e], dx, z_cur, True)
-        elif sc[S_NCENT] > 0.0:
-            _clear(sl, fl, idx, lo, hi, dx)
+        out[e] = _event(prm, sc, sl, fl, cl, wq, idx, val, ptr[e], ptr[e + 1], op[e], y[e], w[e], dx, ada)
+
+
+@njit(cache=True, error_model="numpy", nogil=True)
+def learn_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, out):  # type: ignore[no-untyped-def]
+    """`learn_block` for events that share their slots, as a columnar block's rows do: row e has
+    the values rows[e] (C order) at `slots`, weight 1. The same arithmetic, event for event, with
+    no index array a row to build."""
+    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    ada = prm[P_SCHED] == SCH_ADAGRAD
+    k = slots.shape[0]
+    for e in range(rows.shape[0]):
+        out[e] = _event(prm, sc, sl, fl, cl, wq, slots, rows[e], 0, k, op[e], y[e], 1.0, dx, ada)

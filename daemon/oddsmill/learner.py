@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from . import kernel as K
-from .encoding import Block, BlockBuilder, Vocabulary, encode_features
+from .encoding import Block, BlockBuilder, Rows, Vocabulary, encode_features
 from .schedules import CODES, rate
 from .settings import LearnerSettings
 
@@ -164,6 +164,45 @@ class Learner:
             block.w,
             out,
         )
+        return out
+
+    def run_segments(self, segments: list[Block | Rows]) -> np.ndarray:
+        """`run` over segments in order (CSR blocks, and the rows of columnar blocks as they are)."""
+        out = np.empty(sum(len(s) for s in segments))
+        at = 0
+        for seg in segments:
+            end = at + len(seg)
+            if isinstance(seg, Rows):
+                K.learn_rows(
+                    self._prm,
+                    self._sc,
+                    self._sl,
+                    self._fl,
+                    self._cl,
+                    self._wq,
+                    seg.slots,
+                    seg.rows,
+                    seg.op,
+                    seg.y,
+                    out[at:end],
+                )
+            else:
+                K.learn_block(
+                    self._prm,
+                    self._sc,
+                    self._sl,
+                    self._fl,
+                    self._cl,
+                    self._wq,
+                    seg.ptr,
+                    seg.idx,
+                    seg.val,
+                    seg.op,
+                    seg.y,
+                    seg.w,
+                    out[at:end],
+                )
+            at = end
         return out
 
     def score(self, block: Block) -> np.ndarray:

@@ -25,10 +25,14 @@ from __future__ import annotations
 
 import logging
 import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 from typing import Any
 
-from .engine import Engine, Result
+import numpy as np
+
+from .engine import Engine, Plan, Result
 from .errors import ConfigError
 from .learner import Learner
 from .protocol import Item
@@ -55,6 +59,16 @@ def auto_candidates(base: LearnerSettings) -> list[Candidate]:
         for l2 in (base.l2, base.l2 / 10, base.l2 * 10):
             out.append(Candidate(f"eta0={eta0:g},l2={l2:g}", replace(base, eta0=eta0, l2=l2)))
     return out
+
+
+def _run_group(engines: list[Engine], plan: Plan) -> list[np.ndarray]:
+    return [e.run(plan) for e in engines]
+
+
+def default_threads(candidates: int) -> int:
+    """Threads for the candidates' kernels: the cores this process may use, at most one a candidate
+    and at most four."""
+    return max(1, min(candidates, len(os.sched_getaffinity(0)), 4))
 
 
 def check_candidates(candidates: list[Candidate]) -> None:
@@ -91,6 +105,8 @@ class Race:
         self.names = [c.name for c in candidates]
         self.engines = [Engine(Learner(c.settings), window, pending_limit, pending_ttl) for c in candidates]
         self._share()
+        self.threads = default_threads(len(candidates))
+        self._pool: ThreadPoolExecutor | None = None
         self.margin, self.patience = margin, patience
         self.serving = 0
         self.switches: list[dict[str, Any]] = []  # each switch: at which labelled event, from, to, figures
@@ -107,15 +123,36 @@ class Race:
         The block is prepared (checked and encoded) once, by the first candidate's engine."""
         lead = self.engines[0]
         plan = lead.prepare(items)
+        mirrored = [(plan.holds, plan.joins)] + [e.follow(plan, lead) for e in self.engines[1:]]
+        logits = self._run(plan)
         served: list[tuple[int, Result]] | None = None
         for k, e in enumerate(self.engines):
-            holds, joins = (plan.holds, plan.joins) if k == 0 else e.follow(plan, lead)
-            out = e.finish(plan, holds, joins, publish=k == self.serving)
+            holds, joins = mirrored[k]
+            out = e.settle(plan, holds, joins, logits[k], publish=k == self.serving)
             if out is not None:
                 served = out
         assert served is not None
         self._consider()
         return served
+
+    def _run(self, plan: Plan) -> list[np.ndarray]:
+        """Every candidate's kernel over the block. The kernels release the GIL and each candidate's
+        state is its own, so they run on `threads` threads at once (this one among them); each
+        candidate is still learned in order, so the result does not depend on the threads."""
+        engines = self.engines
+        plan.segments()  # built here, before any thread reads it
+        if self.threads <= 1 or len(engines) == 1 or len(plan.block) == 0:
+            return [e.run(plan) for e in engines]
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(self.threads - 1, thread_name_prefix="oddsmill-race")
+        groups = [engines[g :: self.threads] for g in range(self.threads)]
+        futures = [self._pool.submit(_run_group, grp, plan) for grp in groups[1:]]
+        done = [_run_group(groups[0], plan)] + [f.result() for f in futures]
+        out: list[np.ndarray] = [np.empty(0)] * len(engines)
+        for g, results in enumerate(done):
+            for i, z in enumerate(results):
+                out[g + i * self.threads] = z
+        return out
 
     def _share(self) -> None:
         """The candidates share the first one's vocabulary, counters and sequence numbers."""
@@ -200,4 +237,6 @@ class Race:
         if len(race.names) != len(race.engines) or not 0 <= race.serving < len(race.engines):
             raise ValueError("a race's names, engines and serving index do not agree")
         race._share()
+        race.threads = default_threads(len(race.engines))
+        race._pool = None
         return race

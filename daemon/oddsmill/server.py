@@ -24,6 +24,8 @@ import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry
 
+from . import kernel as K
+from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
 from .errors import ConfigError, ProtocolError
 from .learner import Learner
@@ -152,6 +154,9 @@ def warm_up(settings: LearnerSettings) -> None:
     scratch = Learner(settings)
     scratch.learn_one({"warm": 1.0, "up": "yes"}, 1)
     scratch.predict_logit({"warm": 1.0})
+    rows = BlockBuilder()  # and the columnar path
+    rows.add_rows(np.array([0]), np.ones((1, 1)), np.array([K.OP_TRAIN]), np.ones(1))
+    scratch.run_segments(rows.segments())
 
 
 def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
