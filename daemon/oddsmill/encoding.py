@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import dataclass
+from itertools import accumulate
 
 import numpy as np
 
@@ -209,12 +210,9 @@ class BlockBuilder:
 
     def _flush(self) -> None:
         if self.n:
-            n = np.asarray(self.n, dtype=np.int64)
-            ptr = np.zeros(n.shape[0] + 1, dtype=np.int64)
-            np.cumsum(n, out=ptr[1:])
             self._chunks.append(
                 Block(
-                    ptr=ptr,
+                    ptr=np.array(list(accumulate(self.n, initial=0)), dtype=np.int64),
                     idx=np.asarray(self.idx, dtype=np.int64),
                     val=np.asarray(self.val, dtype=np.float64),
                     op=np.asarray(self.op, dtype=np.int8),

@@ -99,12 +99,15 @@ class Plan:
     """A block prepared for the kernel: the events in order, what each item answers (a rejection
     now, or a place in the block), and the pending store's changes."""
 
-    __slots__ = ("block", "results", "holds", "joins", "ops", "step", "_segments")
+    __slots__ = ("block", "results", "holds", "joins", "ops", "step", "learned", "scored", "_segments")
 
     def __init__(self, step: int) -> None:
         self.block = BlockBuilder()
         self.step = step  # the learner's step before the block
-        # (item index, Rejection | (position, id, arrival) | (first position, rows, ids, arrival))
+        self.learned = 0  # events of the block that will be learned, so far
+        self.scored = 0  # events of the block that are only scored (unlabelled)
+        # (item index, Rejection | (position, id, arrival, step) | (first position, rows, ids, arrival,
+        # step of the first row, rows only scored))
         self.results: list[tuple[int, Any]] = []
         self.holds: list[tuple[int, PendingEntry]] = []  # scoring requests held: their score is set after the run
         self.joins: list[tuple[int, PendingEntry]] = []  # outcomes: learned with these held entries
@@ -195,6 +198,7 @@ class Engine:
                     assert ev.y is not None
                     pos = len(b)
                     b.add(held.slots, held.values, K.OP_LEARN, float(ev.y), held.w)
+                    plan.learned += 1
                     plan.joins.append((pos, held))
                     ops.append((JOIN, ev.id, pos, held))
                     self.counters.outcome += 1
@@ -205,12 +209,14 @@ class Engine:
                     results.append((n, self._reject(e.event_id, e.reason, e.detail)))
                     continue
                 pos = len(b)
-                results.append((n, (pos, ev.id, arrival)))
+                results.append((n, (pos, ev.id, arrival, plan.step + plan.learned)))
                 if ev.y is not None:
                     b.add(slots, values, K.OP_TRAIN, float(ev.y), ev.w)
+                    plan.learned += 1
                     self.counters.train += 1
                 else:
                     b.add(slots, values, K.OP_SCORE, 0.0, ev.w)
+                    plan.scored += 1
                     if ev.id is not None:
                         held = PendingEntry(slots, values, ev.w, float("nan"), clock)
                         plan.holds.append((pos, held))
@@ -277,27 +283,32 @@ class Engine:
         op, ys = plan.labels()
         for pos, entry in holds:  # before the joins: an outcome may follow its request in one block
             entry.logit = float(logits[pos])
-        labelled = op != K.OP_SCORE
         zs = logits
         if joins:
             zs = logits.copy()
             for pos, entry in joins:
                 zs[pos] = entry.logit
-        self.metrics.update(zs[labelled], ys[labelled])
+        if plan.scored:  # the labelled events only
+            labelled = op != K.OP_SCORE
+            zs, ys = zs[labelled], ys[labelled]
+        self.metrics.update(zs, ys)
         if not publish:
             return None
-        # the step of each event: the events learned before it
-        steps = np.cumsum(labelled) - labelled + plan.step
         out: list[tuple[int, Result]] = []
         for n, r in plan.results:
             if not isinstance(r, tuple):
                 out.append((n, r))
-            elif len(r) == 3:
-                pos, ident, arrival = r
-                out.append((n, Score(ident, float(logits[pos]), int(steps[pos]), arrival)))
+            elif len(r) == 4:
+                pos, ident, arrival, step = r
+                out.append((n, Score(ident, float(logits[pos]), step, arrival)))
             else:
-                start, m, ids, arrival = r
-                out.append((n, ColumnScores(ids, logits[start : start + m], steps[start : start + m], arrival)))
+                start, m, ids, arrival, first, scored = r
+                if scored:  # each row's step: the rows learned before it
+                    learned = op[start : start + m] != K.OP_SCORE
+                    steps = np.cumsum(learned) - learned + first
+                else:
+                    steps = np.arange(first, first + m)
+                out.append((n, ColumnScores(ids, logits[start : start + m], steps, arrival)))
         return out
 
     def score_only(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
@@ -363,7 +374,9 @@ class Engine:
         scored = int(np.count_nonzero(unlabelled))
         self.counters.train += m - scored
         self.counters.score += scored
-        plan.results.append((n, (start, m, item.ids, arrival)))
+        plan.results.append((n, (start, m, item.ids, arrival, plan.step + plan.learned, scored)))
+        plan.learned += m - scored
+        plan.scored += scored
 
     # -- helpers -------------------------------------------------------------------------------
     def _reject(self, ident: Any, reason: str, detail: str) -> Rejection:

@@ -53,36 +53,45 @@ class ProgressiveMetrics:
 
     def update(self, z: np.ndarray, y: np.ndarray) -> None:
         """Record the published logits `z` of labelled events with outcomes `y`, in order."""
-        while z.shape[0]:
+        n = z.shape[0]
+        if not n:
+            return
+        ll = log_loss_from_logit(z, y)
+        k = 0
+        while k < n:
             due = self.stride - self.count % self.stride  # events until the next history point
-            if due > z.shape[0]:
-                self._add(z, y)
-                return
-            self._add(z[:due], y[:due])
-            self.history.append((self.count, self.log_loss, self.log_loss_window))
-            if len(self.history) >= HISTORY_POINTS:
-                self.history = self.history[1::2]
-                self.stride *= 2
-            z, y = z[due:], y[due:]
+            take = min(due, n - k)
+            self._add(z[k : k + take], y[k : k + take], ll[k : k + take])
+            k += take
+            if take == due:
+                self.history.append((self.count, self.log_loss, self.log_loss_window))
+                if len(self.history) >= HISTORY_POINTS:
+                    self.history = self.history[1::2]
+                    self.stride *= 2
 
-    def _add(self, z: np.ndarray, y: np.ndarray) -> None:
+    def _add(self, z: np.ndarray, y: np.ndarray, ll: np.ndarray) -> None:
         # added one by one, so that the sum does not depend on where blocks begin and end (a
         # restarted daemon replays its journal in other blocks than it first saw)
-        ll = log_loss_from_logit(z, y)
         total = self.sum
         for v in ll.tolist():
             total += v
         self.sum = total
         self.count += int(z.shape[0])
-        if z.shape[0] >= self.window:
-            z, y, ll = z[-self.window :], y[-self.window :], ll[-self.window :]
+        w = self.window
+        if z.shape[0] >= w:
+            z, y, ll = z[-w:], y[-w:], ll[-w:]
         n = z.shape[0]
-        pos = (self._head + np.arange(n)) % self.window
-        self._z[pos] = z
-        self._y[pos] = y
-        self._ll[pos] = ll
-        self._head = int((self._head + n) % self.window)
-        self._filled = min(self.window, self._filled + n)
+        h = self._head
+        first = min(n, w - h)  # up to the end of the ring, then from its start
+        self._z[h : h + first] = z[:first]
+        self._y[h : h + first] = y[:first]
+        self._ll[h : h + first] = ll[:first]
+        if n > first:
+            self._z[: n - first] = z[first:]
+            self._y[: n - first] = y[first:]
+            self._ll[: n - first] = ll[first:]
+        self._head = (h + n) % w
+        self._filled = min(w, self._filled + n)
 
     def _recent(self) -> tuple[np.ndarray, np.ndarray]:
         return self._z[: self._filled], self._y[: self._filled]
