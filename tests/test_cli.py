@@ -41,6 +41,9 @@ def test_replay_then_inspect_json_has_the_protocol_shape(tmp_path: Path, capsys)
 
 def test_fit_json_shape_and_against(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     run(["replay", str(DEMO), "--state", str(tmp_path / "s"), "--epochs", "3"], capsys)
+    _, out, _ = run(["inspect", str(tmp_path / "s"), "--json"], capsys)
+    state = json.loads(out)  # three epochs learned: every event three times, scored (progressively) once
+    assert state["step"] == 3 * 28_000 and state["metrics"]["log_loss_count"] == 28_000
     code, out, _ = run(["fit", str(DEMO), "--json", "--against", str(tmp_path / "s")], capsys)
     assert code == 0
     doc = json.loads(out)

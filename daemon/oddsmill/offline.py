@@ -15,7 +15,7 @@ from typing import Any, Protocol
 import numpy as np
 
 from . import kernel as K
-from .encoding import Block
+from .encoding import Block, Rows
 from .engine import Engine
 from .errors import InputFileError, ProtocolError
 from .learner import Learner
@@ -115,6 +115,13 @@ class Progress:
             self.stream.write("\n")
 
 
+def _entries(seg: Block | Rows) -> int:
+    """What a kept segment holds, counted as the cache limit counts (values and events)."""
+    if isinstance(seg, Rows):
+        return int(seg.rows.size) + len(seg)
+    return int(seg.idx.shape[0]) + len(seg)
+
+
 def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) -> ReplayReport:
     """Learn from `paths` `epochs` times. With `tail_average`, averaging starts at the first epoch
     of the second half (the learner must have been built with average_start = NEVER).
@@ -125,23 +132,23 @@ def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) ->
     the first pass's encoded blocks through the kernel when these fit in memory."""
     t0 = time.monotonic()
     lr = engine.learner
-    blocks: list[Block] | None = []
+    blocks: list[list[Block | Rows]] | None = []
     kept = 0
-    plain_run = lr.run
+    plain_run = lr.run_segments
 
-    def recording_run(block: Block) -> np.ndarray:
+    def recording_run(segments: list[Block | Rows]) -> np.ndarray:
         nonlocal blocks, kept
         if blocks is not None:
-            kept += int(block.idx.shape[0]) + len(block)
-            blocks = None if kept > CACHE_ENTRIES else blocks + [block]
-        return plain_run(block)
+            kept += sum(_entries(seg) for seg in segments)
+            blocks = None if kept > CACHE_ENTRIES else blocks + [segments]
+        return plain_run(segments)
 
-    lr.run = recording_run  # type: ignore[method-assign]
+    lr.run_segments = recording_run  # type: ignore[method-assign]
     bar = Progress(engine, f"epoch 1/{epochs}")
     try:
         first = run_logs(engine, read_items(paths), bar)
     finally:
-        lr.run = plain_run  # type: ignore[method-assign]
+        lr.run_segments = plain_run  # type: ignore[method-assign]
     bar.done()
     items = first
     if tail_average:
@@ -190,18 +197,20 @@ def design_from_logs(paths: list[str], settings: LearnerSettings) -> Design:
     rows: list[tuple[np.ndarray, np.ndarray]] = []
     ys: list[np.ndarray] = []
     ws: list[np.ndarray] = []
-    original = engine.learner.run
+    original = engine.learner.run_segments
 
-    def recording_run(block: Block) -> np.ndarray:
-        learned = np.nonzero(block.op != K.OP_SCORE)[0]
-        for e in learned:
-            lo, hi = block.ptr[e], block.ptr[e + 1]
-            rows.append((block.idx[lo:hi].copy(), block.val[lo:hi].copy()))
-        ys.append(block.y[learned])
-        ws.append(block.w[learned])
-        return original(block)
+    def recording_run(segments: list[Block | Rows]) -> np.ndarray:
+        for seg in segments:
+            block = seg.as_block() if isinstance(seg, Rows) else seg
+            learned = np.nonzero(block.op != K.OP_SCORE)[0]
+            for e in learned:
+                lo, hi = block.ptr[e], block.ptr[e + 1]
+                rows.append((block.idx[lo:hi].copy(), block.val[lo:hi].copy()))
+            ys.append(block.y[learned])
+            ws.append(block.w[learned])
+        return original(segments)
 
-    engine.learner.run = recording_run  # type: ignore[method-assign]
+    engine.learner.run_segments = recording_run  # type: ignore[method-assign]
     run_logs(engine, read_items(paths))
     lr = engine.learner
     d = lr.n_features
