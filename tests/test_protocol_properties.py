@@ -71,3 +71,42 @@ def test_the_engine_takes_any_decoded_items_without_raising(batch: list[object])
     results = engine.process(items)
     for _, r in results:
         assert r.__class__.__name__ in ("Score", "ColumnScores", "Rejection")
+
+
+class _Forgetful(dict):  # type: ignore[type-arg]
+    """A shapes cache that never keeps anything: every event takes the full encoding path."""
+
+    def __setitem__(self, key: object, value: object) -> None:
+        pass
+
+
+feature_values = (
+    st.floats()
+    | st.integers(min_value=-(10**20), max_value=10**20)
+    | st.integers(min_value=10**308)
+    | st.booleans()
+    | st.none()
+    | st.sampled_from(["Harbourside", "Millbrook", "a=b"])
+)
+feature_maps = st.dictionaries(st.sampled_from(["route_km", "weight_g", "stops", "depot", "a"]), feature_values)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.lists(feature_maps, min_size=1, max_size=12))
+def test_the_remembered_slots_of_a_name_set_encode_as_the_full_path_does(events: list[dict[str, object]]) -> None:
+    """encode_features remembers the slots of a set of numeric names; an event taking that path
+    must encode (or be refused) exactly as the full path would, whatever its values."""
+    from oddsmill.encoding import Vocabulary, encode_features
+
+    fast, full = Vocabulary(max_features=4), Vocabulary(max_features=4)
+    full.shapes = _Forgetful()
+    for x in events * 3:  # each map again once its names are known
+        outcomes = []
+        for vocab in (fast, full):
+            try:
+                outcomes.append(encode_features(x, vocab, grow=True))
+            except ProtocolError as e:
+                outcomes.append((e.reason, e.detail))
+        assert outcomes[0] == outcomes[1]
+        assert fast.names == full.names and fast.ignored == full.ignored
+    assert not full.shapes

@@ -23,6 +23,8 @@ import numpy as np
 
 from .errors import ProtocolError
 
+SHAPES_KEPT = 4096  # sets of feature names whose slots are remembered
+
 
 class Vocabulary:
     """Feature names in slot order; append-only, capped."""
@@ -32,6 +34,10 @@ class Vocabulary:
         self.names: list[str] = list(names or [])
         self.index: dict[str, int] = {n: i for i, n in enumerate(self.names)}
         self.ignored = 0
+        # The slots of a set of numeric feature names seen before, in the order they came: most
+        # producers send the same names every time, and then an event's encoding is one lookup.
+        # Names keep their slots for ever, so an entry never goes stale; the cache is bounded.
+        self.shapes: dict[tuple[str, ...], list[int]] = {}
 
     def __len__(self) -> int:
         return len(self.names)
@@ -59,6 +65,17 @@ def encode_features(
     slots this call created for numeric features. Raises ProtocolError (bad_features or non_finite)
     and then adds no name: new names get their slots only once the whole event has been read. One
     pass, exact-type fast paths: this is the per-event Python work of the daemon."""
+    if type(x) is dict:
+        keys = tuple(x)
+        known = vocab.shapes.get(keys)
+        if known is not None:
+            values = list(x.values())
+            # only for floats, all finite (a NaN or an infinity makes the sum one; so does an
+            # overflow of the sum, and then the full path below decides)
+            if all(type(v) is float for v in values):
+                total = sum(values)
+                if total - total == 0.0:
+                    return list(known), values, []
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
     index = vocab.index
@@ -125,6 +142,12 @@ def encode_features(
             keep = [k for k, j in enumerate(slots) if j >= 0]
             slots = [slots[k] for k in keep]
             values = [values[k] for k in keep]
+    elif type(x) is dict and len(slots) == len(x) and all(type(v) is float for v in values):
+        # every name known, every value a float present: this set of names encodes the same way
+        # from now on
+        if len(vocab.shapes) >= SHAPES_KEPT:
+            vocab.shapes.clear()
+        vocab.shapes[tuple(x)] = slots
     return slots, values, created
 
 
