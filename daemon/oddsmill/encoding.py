@@ -69,13 +69,13 @@ def encode_features(
         keys = tuple(x)
         known = vocab.shapes.get(keys)
         if known is not None:
-            values = list(x.values())
+            present = list(x.values())
             # only for floats, all finite (a NaN or an infinity makes the sum one; so does an
             # overflow of the sum, and then the full path below decides)
-            if all(type(v) is float for v in values):
-                total = sum(values)
+            if all(type(v) is float for v in present):
+                total = sum(present)
                 if total - total == 0.0:
-                    return list(known), values, []
+                    return list(known), present, []
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
     index = vocab.index
