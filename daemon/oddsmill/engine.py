@@ -156,6 +156,11 @@ class Engine:
         assert out is not None
         return out
 
+    def learn(self, items: list[tuple[float, Item]]) -> None:
+        """`process` without the answers: for replays, which publish nothing."""
+        plan = self.prepare(items)
+        self.finish(plan, plan.holds, plan.joins, publish=False)
+
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:
         """Everything of a block but the kernel: sequence checks, encoding, the pending store and
         the counters. `finish` then runs the kernel and keeps the metrics."""

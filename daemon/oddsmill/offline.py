@@ -58,7 +58,7 @@ def read_items(paths: list[str]) -> Iterator[tuple[float, Item]]:
 class Processor(Protocol):
     """An engine, a race, or a server: anything that learns blocks of items."""
 
-    def process(self, items: list[tuple[float, Item]]) -> Any: ...
+    def learn(self, items: list[tuple[float, Item]]) -> None: ...
 
 
 def run_logs(
@@ -73,7 +73,7 @@ def run_logs(
     def flush() -> None:
         nonlocal count
         if batch:
-            engine.process(batch)
+            engine.learn(batch)
             count += len(batch)
             batch.clear()
             if progress:

@@ -121,6 +121,15 @@ class Race:
     def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Every candidate runs the block; the serving one's results are returned (to publish).
         The block is prepared (checked and encoded) once, by the first candidate's engine."""
+        served = self._block(items, publish=True)
+        assert served is not None
+        return served
+
+    def learn(self, items: list[tuple[float, Item]]) -> None:
+        """`process` without the answers: for replays, which publish nothing."""
+        self._block(items, publish=False)
+
+    def _block(self, items: list[tuple[float, Item]], publish: bool) -> list[tuple[int, Result]] | None:
         lead = self.engines[0]
         plan = lead.prepare(items)
         mirrored = [(plan.holds, plan.joins)] + [e.follow(plan, lead) for e in self.engines[1:]]
@@ -128,10 +137,9 @@ class Race:
         served: list[tuple[int, Result]] | None = None
         for k, e in enumerate(self.engines):
             holds, joins = mirrored[k]
-            out = e.settle(plan, holds, joins, logits[k], publish=k == self.serving)
+            out = e.settle(plan, holds, joins, logits[k], publish=publish and k == self.serving)
             if out is not None:
                 served = out
-        assert served is not None
         self._consider()
         return served
 

@@ -211,6 +211,7 @@ class Server:
         self.engine, self.records, position = self._load(learner or LearnerSettings())
         warm_up(self.engine.learner.settings)
         self._loaded_position = position
+        self._journal_end: tuple[Path, int] | None = None
         self._replay_journal(position)
         if warm_start:
             from .offline import read_items, run_logs
@@ -289,6 +290,14 @@ class Server:
         self.engine = self.race.engine  # the serving candidate may have changed
         return results
 
+    def learn(self, items: list[tuple[float, Item]]) -> None:
+        """`process` without the answers (replays publish nothing)."""
+        if self.race is None:
+            self.engine.learn(items)
+        else:
+            self.race.learn(items)
+            self.engine = self.race.engine
+
     def _replay_journal(self, position: dict[str, Any] | None) -> None:
         """Learn the journal records after the checkpoint's position, in blocks, publishing nothing."""
         start_segment = position["segment"] if position else None
@@ -299,17 +308,18 @@ class Server:
                 continue
             skip_to = start_offset if seg.name == start_segment else 0
             batch: list[tuple[float, Item]] = []
-            for end, arrival, body in read_journal(seg):
-                if end <= skip_to:
-                    continue
+            good = max(skip_to, len(JOURNAL_MAGIC) + 4)
+            for end, arrival, body in read_journal(seg, skip_to):
+                good = end
                 self.records += 1
                 replayed += 1
                 batch.extend((arrival, item) for item in decode_body(body))
                 if len(batch) >= REPLAY_BLOCK:
-                    self.process(batch)
+                    self.learn(batch)
                     batch = []
             if batch:
-                self.process(batch)
+                self.learn(batch)
+            self._journal_end = (seg, good)  # where its good records end: no second reading
         if replayed:
             log.info("replayed %d journal records after the checkpoint; step %d", replayed, self.engine.learner.step)
 
@@ -317,9 +327,13 @@ class Server:
         segments = list_journal(self.settings.state_dir)
         if segments:
             last = segments[-1]
-            good = len(JOURNAL_MAGIC) + 4
-            for end, _, _ in read_journal(last):
-                good = end
+            read = self._journal_end
+            if read is not None and read[0] == last:
+                good = read[1]
+            else:
+                good = len(JOURNAL_MAGIC) + 4
+                for end, _, _ in read_journal(last):
+                    good = end
             if last.stat().st_size > good:
                 log.warning("%s: cutting a torn tail at byte %d", last.name, good)
                 with open(last, "r+b") as f:
@@ -600,7 +614,7 @@ class Server:
         self.outage = None
         items = [(arrival, item) for arrival, raw in held for item in decode_body(unpack(raw))]
         for lo in range(0, len(items), REPLAY_BLOCK):
-            self.process(items[lo : lo + REPLAY_BLOCK])
+            self.learn(items[lo : lo + REPLAY_BLOCK])
         log.warning("writes succeed again: journaled and learned %d messages held during the outage", len(held))
         self.checkpoint()
         self._refresh()

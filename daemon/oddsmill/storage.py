@@ -245,9 +245,10 @@ class JournalWriter:
         self.close()
 
 
-def read_journal(path: Path) -> Iterator[tuple[int, float, Any]]:
-    """(byte offset just past the record, arrival time, body) for each good record; stops at a torn
-    or corrupt tail after logging where. JournalError when the header is wrong."""
+def read_journal(path: Path, start: int = 0) -> Iterator[tuple[int, float, Any]]:
+    """(byte offset just past the record, arrival time, body) for each good record from byte
+    `start` on (the end of an earlier record, as a checkpoint keeps it; 0 for the first); stops at
+    a torn or corrupt tail after logging where. JournalError when the header is wrong."""
     with open(path, "rb") as f:
         data = f.read()
     head = len(JOURNAL_MAGIC) + 4
@@ -256,7 +257,10 @@ def read_journal(path: Path) -> Iterator[tuple[int, float, Any]]:
     (version,) = struct.unpack_from("<I", data, len(JOURNAL_MAGIC))
     if version != JOURNAL_VERSION:
         raise JournalError(f"{path}: journal version {version}, this oddsmill reads {JOURNAL_VERSION}")
-    pos = head
+    if start > len(data):  # the segment lost a tail the position had seen (a power cut under fsync=os)
+        log.warning("%s: position %d is past the end of the segment (%d bytes)", path, start, len(data))
+        return
+    pos = max(head, start)
     while pos < len(data):
         if pos + _RECORD.size > len(data):
             log.warning("%s: torn record header at byte %d; the tail is ignored", path, pos)
