@@ -24,6 +24,7 @@ import numpy as np
 from .errors import ProtocolError
 
 SHAPES_KEPT = 4096  # sets of feature names whose slots are remembered
+FLOATS = {float}
 
 
 class Vocabulary:
@@ -72,7 +73,7 @@ def encode_features(
             present = list(x.values())
             # only for floats, all finite (a NaN or an infinity makes the sum one; so does an
             # overflow of the sum, and then the full path below decides)
-            if all(type(v) is float for v in present):
+            if set(map(type, present)) == FLOATS:
                 total = sum(present)
                 if total - total == 0.0:
                     return list(known), present, []

@@ -192,7 +192,7 @@ class Engine:
             if isinstance(item, Columns) and self._plain(item):
                 self._add_columns(n, arrival, item, plan)
                 continue
-            for ev in _events(item):
+            for ev in (item,) if type(item) is Event else _events(item):
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
                     if held is None:

@@ -65,6 +65,7 @@ class Learner:
         self.vocab = Vocabulary(self._settings.max_features)
         self._sc = np.zeros(K.N_SCALARS)
         self._sc[K.S_WS] = 1.0
+        self._nslots = 0  # sc[S_NSLOTS] as a Python int: read on every event, where numpy's scalar costs 1.6 us
         self._sl = np.zeros((0, K.N_ROWS))
         self._fl = np.zeros(0, dtype=np.uint8)
         self._cl = np.zeros(self._settings.max_centred, dtype=np.int64)
@@ -124,11 +125,12 @@ class Learner:
     def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None) -> tuple[list[int], list[float]]:
         """Slots and raw values of an event's features; new names get slots when `grow`."""
         slots, values, created = encode_features(x, self.vocab, grow, event_id)
-        if created or len(self.vocab) > self._sc[K.S_NSLOTS]:
+        if created or len(self.vocab) > self._nslots:
             self._grow(len(self.vocab))
             for j in created:
                 self._fl[j] |= K.F_NUMERIC
-            self._sc[K.S_NSLOTS] = len(self.vocab)
+            self._nslots = len(self.vocab)
+            self._sc[K.S_NSLOTS] = self._nslots
         return slots, values
 
     def follow_vocabulary(self, leader: Learner) -> None:
@@ -138,11 +140,12 @@ class Learner:
         if self.vocab is not leader.vocab:
             raise ValueError("follow_vocabulary needs the leader's own vocabulary object")
         n = len(self.vocab)
-        old = int(self._sc[K.S_NSLOTS])
+        old = self._nslots
         if n <= old:
             return
         self._grow(leader._sl.shape[0])
         self._fl[old:n] |= leader._fl[old:n] & K.F_NUMERIC
+        self._nslots = n
         self._sc[K.S_NSLOTS] = n
 
     # -- the kernel ------------------------------------------------------------------------------
@@ -304,6 +307,7 @@ class Learner:
         lr.vocab = Vocabulary(lr._settings.max_features, names)
         lr.vocab.ignored = int(d["ignored"])
         lr._sc = np.array(d["scalars"], dtype=np.float64)
+        lr._nslots = int(lr._sc[K.S_NSLOTS])
         n = len(names)
         lr._grow(n)
         lr._sl[:n] = d["slots"]
