@@ -135,6 +135,24 @@ def test_candidates_sharing_one_encoding_equal_engines_of_their_own() -> None:
     assert logits[0] != logits[1]
 
 
+@pytest.mark.parametrize("threads", [1, 3])
+def test_the_kernels_threads_change_nothing(threads: int) -> None:
+    """The candidates' kernels run on `threads` threads; each candidate is still learned in order,
+    so the race ends bit for bit where the same race on the default number of threads ends."""
+    stream = mixed(3_000, seed=8)
+    races = [Race(SPEEDS, window=500, pending_limit=100, pending_ttl=400.0, patience=200) for _ in range(2)]
+    races[1].threads = threads
+    served: list[list[tuple[Any, float]]] = [[], []]
+    for lo in range(0, len(stream), 211):
+        block = [(t, it) for t, body in stream[lo : lo + 211] for it in decode_body(body)]
+        for k, race in enumerate(races):
+            served[k].extend((r.id, r.logit) for r in each_score(race.process(block)))
+    assert served[0] == served[1]
+    for a, b in zip(races[0].engines, races[1].engines, strict=True):
+        assert a.learner.state_dict()["slots"].tobytes() == b.learner.state_dict()["slots"].tobytes()
+        assert a.metrics.sum == b.metrics.sum
+
+
 def test_candidates_must_share_the_vocabulary_cap() -> None:
     with pytest.raises(ConfigError, match="one max_features"):
         Race([Candidate("a", LearnerSettings()), Candidate("b", LearnerSettings(max_features=10))])
