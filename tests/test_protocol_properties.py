@@ -110,3 +110,26 @@ def test_the_remembered_slots_of_a_name_set_encode_as_the_full_path_does(events:
         assert outcomes[0] == outcomes[1]
         assert fast.names == full.names and fast.ignored == full.ignored
     assert not full.shapes
+
+
+def _comparable(item: object) -> object:
+    if isinstance(item, ProtocolError):
+        return ("error", item.reason, item.detail, item.event_id)
+    if isinstance(item, Columns):
+        return ("cols", item.cols, item.rows.tobytes(), item.y.tobytes(), item.ids, item.ts, item.src, item.seq)
+    return item
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.lists(bodies, max_size=6))
+def test_a_batch_decodes_as_its_bodies_sent_one_by_one(items: list[object]) -> None:
+    """PROTOCOL 2: a batch is each body in order, exactly as if sent one by one (a batch inside a
+    batch is refused)."""
+    whole = [_comparable(i) for i in decode_body({"batch": items})]
+    one_by_one: list[object] = []
+    for item in items:
+        if isinstance(item, dict) and "batch" in item:
+            one_by_one.append(("error", "not_a_map", "a batch may not hold another batch", None))
+        else:
+            one_by_one.extend(_comparable(i) for i in decode_body(item))
+    assert whole == one_by_one

@@ -78,7 +78,12 @@ def decode_body(body: object) -> list[Item]:
             return [ProtocolError("not_a_map", "a batch is a map with the one key 'batch' holding a list")]
         out: list[Item] = []
         for item in items:
-            if isinstance(item, Mapping) and "batch" in item:
+            if type(item) is dict and "batch" not in item and "cols" not in item:  # an event: the usual case
+                try:
+                    out.append(_event(item))
+                except ProtocolError as e:
+                    out.append(e)
+            elif isinstance(item, Mapping) and "batch" in item:
                 out.append(ProtocolError("not_a_map", "a batch may not hold another batch"))
             else:
                 out.extend(decode_body(item))

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import ipaddress
 import logging
+import math
 import threading
 import time
 from dataclasses import dataclass
@@ -642,7 +643,10 @@ def _one(s: Score) -> dict[str, Any]:
 
 
 def _p(z: float) -> float:
-    return float(1.0 / (1.0 + np.exp(-z))) if z >= 0 else float(np.exp(z) / (1.0 + np.exp(z)))
+    if z >= 0:
+        return 1.0 / (1.0 + math.exp(-z))
+    e = math.exp(z)
+    return e / (1.0 + e)
 
 
 def _score_body(scores: list[Score] | ColumnScores, shape: str) -> dict[str, Any]:
