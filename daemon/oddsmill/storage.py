@@ -286,7 +286,8 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
         if zlib.crc32(payload) != crc:
             log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
             return
-        if fast and payload[:2] == b"\x92\xcb":  # [float64 arrival, body]
+        # [float64 arrival, a batch]: the fast path (one event takes the full path, as on ingest)
+        if fast and payload[:2] == b"\x92\xcb" and payload[10:11] == b"\x81":
             got = read_numeric(payload[10:])
             if got is not None:
                 yield end, struct.unpack_from(">d", payload, 2)[0], Read(*got)
