@@ -89,6 +89,30 @@ def test_batches_of_clean_events_take_the_fast_path_and_learn_the_same(batches: 
     same_state(fast, full)
 
 
+@settings(max_examples=150, deadline=None)
+@given(st.lists(clean | events | bodies, min_size=1, max_size=24))
+def test_messages_read_together_learn_what_the_full_path_learns(messages: list[Any]) -> None:
+    """read_each over one-event messages (and others, which it leaves to the full path): the items
+    in message order, each run once, learn exactly what the messages one by one through the full
+    path learn."""
+    from oddsmill.fastpath import read_each
+
+    raws = [msgpack.packb(m) for m in messages]
+    which, runs = read_each(list(raws))
+    items: list[Any] = []
+    placed: set[int] = set()
+    for raw, run in zip(raws, which, strict=True):
+        if run < 0:
+            items.extend(decode_body(unpack(raw)))
+        elif run not in placed:
+            placed.add(run)
+            items.append(runs[run])
+    assert sum(runs[r].rows.shape[0] for r in placed) == sum(1 for r in which if r >= 0)
+    fast, full = Engine(Learner(LearnerSettings(scale_warmup=5))), Engine(Learner(LearnerSettings(scale_warmup=5)))
+    assert outcome(fast, items) == outcome(full, [it for raw in raws for it in decode_body(unpack(raw))])
+    same_state(fast, full)
+
+
 def test_runs_of_names_become_blocks_and_the_rest_is_declined() -> None:
     a = {"x": {"route_km": 1.5, "stops": 2.0}, "y": 1}
     b = {"x": {"stops": 4.0, "route_km": 0.5}, "y": 0}  # the same names in another order: a new run
@@ -164,6 +188,11 @@ def test_the_daemon_answers_fast_path_traffic_as_the_full_path_would(tmp_path: A
         else:
             sent.append({"batch": [event() for _ in range(int(rng.integers(1, 30)))]})
     assert sum(numeric_training(msgpack.packb(b)) is not None for b in sent) == len(sent) - 1
+    for k in range(400):  # a burst of one-event messages: the daemon reads them together
+        body = event()
+        if k % 37 == 5:
+            body["w"] = 0.5  # declined: the full path
+        sent.append(body)
     for body in sent:
         client.send(body)
     answers = [a for _, a in client.receive(len(sent))]

@@ -35,9 +35,9 @@ _names: dict[bytes, tuple[str, ...] | None] = {}  # None: not usable here (a nam
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _map_len(b, pos):  # type: ignore[no-untyped-def]
-    """(entries, position after the header) of a map header at pos; (-1, pos) if not a map."""
-    n = len(b)
+def _map_len(b, pos, n):  # type: ignore[no-untyped-def]
+    """(entries, position after the header) of a map header at pos, reading no byte at or past n;
+    (-1, pos) if not a map."""
     if pos >= n:
         return -1, pos
     c = np.int64(b[pos])
@@ -53,9 +53,9 @@ def _map_len(b, pos):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _str(b, pos):  # type: ignore[no-untyped-def]
-    """(start, length) of the bytes of a str at pos, and the position after it; length -1 if not a str."""
-    n = len(b)
+def _str(b, pos, n):  # type: ignore[no-untyped-def]
+    """(start, length) of the bytes of a str at pos, and the position after it, reading no byte at
+    or past n; length -1 if not a str."""
     if pos >= n:
         return pos, -1, pos
     c = np.int64(b[pos])
@@ -85,8 +85,8 @@ def _same_keys(b, p, q, k):  # type: ignore[no-untyped-def]
     """Whether the x maps of k numeric features whose first keys are at p and q have the same key
     bytes (headers and names) in the same order; the values between them are skipped."""
     for _ in range(k):
-        s1, l1, a1 = _str(b, p)
-        s2, l2, a2 = _str(b, q)
+        s1, l1, a1 = _str(b, p, len(b))
+        s2, l2, a2 = _str(b, q, len(b))
         if l1 != l2 or s1 - p != s2 - q:
             return False
         for i in range(p, a1):
@@ -95,6 +95,65 @@ def _same_keys(b, p, q, k):  # type: ignore[no-untyped-def]
         p = a1 + 9
         q = a2 + 9
     return True
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _event_at(b, pos, n, e, used, values, ys, nkeys, keypos, scratch, as_float, max_str, max_items):  # type: ignore[no-untyped-def]
+    """Read the event map at pos (exactly the keys x and y), as event e, reading no byte at or past
+    n. Returns (read, position after it, values used)."""
+    entries, pos = _map_len(b, pos, n)
+    if entries != 2:
+        return False, pos, used
+    seen_x = False
+    seen_y = False
+    for _ in range(2):
+        ks, kl, pos = _str(b, pos, n)
+        if kl < 0:
+            return False, pos, used
+        if _is(b, ks, kl, 120, 0) and not seen_x:  # "x"
+            seen_x = True
+            k, pos = _map_len(b, pos, n)
+            if k < 1 or k > max_items:
+                return False, pos, used
+            keypos[e] = pos
+            nkeys[e] = k
+            for _j in range(k):
+                ks, kl, pos = _str(b, pos, n)
+                if kl < 0 or kl > max_str:
+                    return False, pos, used
+                if pos + 9 > n or b[pos] != 0xCB or used >= values.shape[0]:
+                    return False, pos, used
+                bits = np.uint64(0)
+                for q in range(8):  # big-endian float64
+                    bits = (bits << np.uint64(8)) | np.uint64(b[pos + 1 + q])
+                scratch[0] = bits
+                v = as_float[0]
+                if v - v != 0.0:  # a NaN or an infinity: the full path rejects that event
+                    return False, pos, used
+                values[used] = v
+                used += 1
+                pos += 9
+        elif _is(b, ks, kl, 121, 0) and not seen_y:  # "y"
+            seen_y = True
+            if pos >= n:
+                return False, pos, used
+            c = np.int64(b[pos])
+            if c == 0x00 or c == 0xC2:
+                ys[e] = 0.0
+            elif c == 0x01 or c == 0xC3:
+                ys[e] = 1.0
+            else:
+                return False, pos, used
+            pos += 1
+        else:
+            return False, pos, used
+    return True, pos, used
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _follows(b, e, nkeys, keypos):  # type: ignore[no-untyped-def]
+    """Whether event e has the names of event e - 1, in the same order."""
+    return nkeys[e] == nkeys[e - 1] and _same_keys(b, keypos[e], keypos[e - 1], nkeys[e])
 
 
 @njit(cache=True, error_model="numpy")
@@ -106,13 +165,12 @@ def _parse(b, values, ys, nkeys, keypos, newrun, max_str, max_items):  # type: i
     n = len(b)
     scratch = np.zeros(1, dtype=np.uint64)
     as_float = scratch.view(np.float64)
-    pos = 0
-    entries, pos = _map_len(b, pos)
+    entries, pos = _map_len(b, 0, n)
     if entries < 1:
         return FALLBACK, 0, False
     count = np.int64(1)
     single = True
-    ks, kl, after = _str(b, pos)
+    ks, kl, after = _str(b, pos, n)
     if entries == 1 and kl == 5 and b[ks] == 98 and b[ks + 1] == 97 and b[ks + 2] == 116 and b[ks + 3] == 99:
         if b[ks + 4] != 104:  # "batch"
             return FALLBACK, 0, False
@@ -137,64 +195,43 @@ def _parse(b, values, ys, nkeys, keypos, newrun, max_str, max_items):  # type: i
         if count < 1 or count > max_items or count > ys.shape[0]:
             return FALLBACK, 0, False
         single = False
+    else:
+        pos = 0  # the body is the event
     used = 0
     for e in range(count):
-        if not single or e > 0:
-            entries, pos = _map_len(b, pos)
-        else:
-            pos = 0
-            entries, pos = _map_len(b, pos)
-        if entries != 2:
-            return FALLBACK, 0, False
-        seen_x = False
-        seen_y = False
-        for _ in range(2):
-            ks, kl, pos = _str(b, pos)
-            if kl < 0:
-                return FALLBACK, 0, False
-            if _is(b, ks, kl, 120, 0) and not seen_x:  # "x"
-                seen_x = True
-                k, pos = _map_len(b, pos)
-                if k < 1 or k > max_items:
-                    return FALLBACK, 0, False
-                keypos[e] = pos
-                nkeys[e] = k
-                for _j in range(k):
-                    ks, kl, pos = _str(b, pos)
-                    if kl < 0 or kl > max_str:
-                        return FALLBACK, 0, False
-                    if pos + 9 > n or b[pos] != 0xCB or used >= values.shape[0]:
-                        return FALLBACK, 0, False
-                    bits = np.uint64(0)
-                    for q in range(8):  # big-endian float64
-                        bits = (bits << np.uint64(8)) | np.uint64(b[pos + 1 + q])
-                    scratch[0] = bits
-                    v = as_float[0]
-                    if v - v != 0.0:  # a NaN or an infinity: the full path rejects that event
-                        return FALLBACK, 0, False
-                    values[used] = v
-                    used += 1
-                    pos += 9
-            elif _is(b, ks, kl, 121, 0) and not seen_y:  # "y"
-                seen_y = True
-                if pos >= n:
-                    return FALLBACK, 0, False
-                c = np.int64(b[pos])
-                if c == 0x00 or c == 0xC2:
-                    ys[e] = 0.0
-                elif c == 0x01 or c == 0xC3:
-                    ys[e] = 1.0
-                else:
-                    return FALLBACK, 0, False
-                pos += 1
-            else:
-                return FALLBACK, 0, False
-        newrun[e] = (
-            1 if e == 0 or nkeys[e] != nkeys[e - 1] or not _same_keys(b, keypos[e], keypos[e - 1], nkeys[e]) else 0
+        read, pos, used = _event_at(
+            b, pos, n, e, used, values, ys, nkeys, keypos, scratch, as_float, max_str, max_items
         )
+        if not read:
+            return FALLBACK, 0, False
+        newrun[e] = 0 if e > 0 and _follows(b, e, nkeys, keypos) else 1
     if pos != n:
         return FALLBACK, 0, False
     return OK, count, single
+
+
+@njit(cache=True, error_model="numpy")
+def _parse_each(b, starts, values, ys, nkeys, keypos, newrun, read, max_str, max_items):  # type: ignore[no-untyped-def]
+    """Read messages of one numeric training event each, laid end to end in b (message i from
+    starts[i] to starts[i + 1]): read[i] tells whether message i was; the events read are numbered
+    in order, and a run ends at a message not read as well as at a change of names."""
+    scratch = np.zeros(1, dtype=np.uint64)
+    as_float = scratch.view(np.float64)
+    e = 0
+    used = 0
+    before = False  # whether the message before was read
+    for i in range(starts.shape[0] - 1):
+        start, end = starts[i], starts[i + 1]
+        ok, pos, used_after = _event_at(
+            b, start, end, e, used, values, ys, nkeys, keypos, scratch, as_float, max_str, max_items
+        )
+        read[i] = 1 if ok and pos == end else 0
+        if read[i]:
+            used = used_after
+            newrun[e] = 0 if before and _follows(b, e, nkeys, keypos) else 1
+            e += 1
+        before = read[i] == 1
+    return e
 
 
 def _names_at(raw: bytes, pos: int, k: int) -> tuple[str, ...] | None:
@@ -276,3 +313,48 @@ def read_numeric(raw: bytes) -> tuple[bool, list[Columns]] | None:
         out.append(Columns(names, values[at : at + m * k].reshape(m, k).copy(), ys[e:end].copy(), None))
         at += m * k
     return bool(single), out
+
+
+def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns]]:
+    """Messages of one numeric training event each, read together (None, or any other body, is
+    not read): per message the index of the block holding its event, or -1; and the blocks. A
+    block is a run of consecutive messages read, with the same names in the same order, so that
+    learning the blocks in order learns the events in the order of the messages."""
+    m = len(raws)
+    lengths = [len(r) if r is not None and len(r) <= MAX_MESSAGE else 0 for r in raws]
+    starts = np.zeros(m + 1, dtype=np.int64)
+    np.cumsum(lengths, out=starts[1:])
+    joined = b"".join(r for r, n in zip(raws, lengths, strict=True) if n and r is not None)
+    b = np.frombuffer(joined, dtype=np.uint8)
+    values = np.empty(len(joined) // 9 + 1)
+    ys = np.empty(m)
+    nkeys = np.zeros(m, dtype=np.int64)
+    keypos = np.zeros(m, dtype=np.int64)
+    newrun = np.zeros(m, dtype=np.uint8)
+    read = np.zeros(m, dtype=np.uint8)
+    count = _parse_each(b, starts, values, ys, nkeys, keypos, newrun, read, MAX_STR, MAX_ITEMS)
+    if count == 0:
+        return [-1] * m, []
+    firsts = np.flatnonzero(newrun[:count]).tolist()
+    blocks: list[Columns] = []
+    usable: list[bool] = []
+    at = 0
+    for e, end in zip(firsts, firsts[1:] + [count], strict=True):
+        k = int(nkeys[e])
+        names = _names_at(joined, int(keypos[e]), k)
+        rows = end - e
+        usable.append(names is not None)
+        blocks.append(Columns(names or (), values[at : at + rows * k].reshape(rows, k).copy(), ys[e:end].copy(), None))
+        at += rows * k
+    which: list[int] = []
+    e = 0
+    run = -1
+    for i in range(m):
+        if not read[i]:
+            which.append(-1)
+            continue
+        if newrun[e]:
+            run += 1
+        which.append(run if usable[run] else -1)
+        e += 1
+    return which, blocks

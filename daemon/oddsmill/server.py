@@ -29,7 +29,7 @@ from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
 from .errors import ConfigError, ProtocolError
-from .fastpath import read_numeric
+from .fastpath import read_each, read_numeric
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
@@ -48,6 +48,7 @@ from .storage import (
 
 log = logging.getLogger("oddsmill")
 
+SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status read may be
 RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them reads the whole vocabulary)
@@ -160,7 +161,9 @@ def warm_up(settings: LearnerSettings) -> None:
     rows = BlockBuilder()  # and the columnar path
     rows.add_rows(np.array([0]), np.ones((1, 1)), np.array([K.OP_TRAIN]), np.ones(1))
     scratch.run_segments(rows.segments())
-    read_numeric(msgpack.packb({"x": {"warm": 1.0}, "y": 1}))  # and the compiled reading of events
+    one = msgpack.packb({"x": {"warm": 1.0}, "y": 1})  # and the compiled reading of events
+    read_numeric(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
+    read_each([one, one])
 
 
 def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
@@ -497,6 +500,11 @@ class Server:
         shapes: list[str] = []  # "one", "batch" or "cols" for each message
         rejects: list[Rejection] = []
         raws: list[bytes] = []
+        # messages of one numeric training event each, read together in compiled code: runs of
+        # consecutive ones with the same names become one block (`members`: its messages in order)
+        which, runs = _read_singles(messages)
+        placed: dict[int, int] = {}  # run -> its item
+        members: dict[int, list[int]] = {}
         for i, frames in enumerate(messages):
             shapes.append("one")
             if len(frames) != 2:
@@ -504,7 +512,19 @@ class Server:
                     self._count(Rejection(None, "undecodable", f"a message has 2 frames, got {len(frames)}"))
                 )
                 continue
-            fast = _read_batch(frames[1])  # numeric training events, read in compiled code
+            run = which[i]
+            if run >= 0:
+                raws.append(frames[1])
+                n = placed.get(run)
+                if n is None:
+                    placed[run] = len(items)
+                    members[len(items)] = [i]
+                    items.append((arrival, runs[run]))
+                    owner.append(-1)
+                else:
+                    members[n].append(i)
+                continue
+            fast = _read_batch(frames[1])  # batches of numeric training events, read in compiled code
             if fast is not None:
                 raws.append(frames[1])
                 single, blocks = fast
@@ -536,7 +556,20 @@ class Server:
             self._hold(arrival, raws)
             results = self.engine.score_only(items)
         scores: dict[int, list[Score | ColumnScores] | ColumnScores] = {}
+        bodies: dict[int, dict[str, Any]] = {}  # the answers of messages read together
+        rows_done: dict[int, int] = {}
         for n, r in results:
+            if n in members:
+                if isinstance(r, ColumnScores):
+                    for i, z, st in zip(members[n], r.logits.tolist(), r.steps.tolist(), strict=True):
+                        bodies[i] = {"id": None, "p": _p(z), "logit": z, "step": st, "ts": r.ts}
+                elif isinstance(r, Score):  # its rows scored one by one (a write outage, a full vocabulary)
+                    k = rows_done.get(n, 0)
+                    rows_done[n] = k + 1
+                    bodies[members[n][k]] = _one(r)
+                else:
+                    rejects.append(r)
+                continue
             if isinstance(r, Score):
                 scores.setdefault(owner[n], []).append(r)  # type: ignore[union-attr]
             elif isinstance(r, ColumnScores):
@@ -546,9 +579,10 @@ class Server:
                     scores.setdefault(owner[n], []).append(r)  # type: ignore[union-attr]
             else:
                 rejects.append(r)
-        for i in sorted(scores):
-            pub.send_multipart([b"scores", msgpack.packb(_score_body(scores[i], shapes[i]))])
-        if scores:
+        for i in sorted(scores.keys() | bodies.keys()):
+            body = bodies[i] if i in bodies else _score_body(scores[i], shapes[i])
+            pub.send_multipart([b"scores", msgpack.packb(body)])
+        if scores or bodies:
             # every message of a block arrived (was drained) at the same moment
             self.board.score_latency.observe(time.time() - arrival)
         for r in rejects:
@@ -665,6 +699,16 @@ def _read_batch(raw: bytes) -> tuple[bool, list[Columns]] | None:
     event take the full path: there the fast path's fixed cost (its arrays, a block for one row)
     is more than decoding the event (80 against 40 us a message, measured)."""
     return read_numeric(raw) if raw[:1] == b"\x81" else None
+
+
+def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns]]:
+    """fastpath.read_each over the messages that may be one numeric training event (a body that
+    is a map of two entries); when there are fewer than SINGLES_TOGETHER of them the full path is
+    quicker, and nothing is read."""
+    candidates: list[bytes | None] = [f[1] if len(f) == 2 and f[1][:1] == b"\x82" else None for f in messages]
+    if sum(c is not None for c in candidates) < SINGLES_TOGETHER:
+        return [-1] * len(messages), []
+    return read_each(candidates)
 
 
 def _items(raw: bytes) -> list[Item]:
