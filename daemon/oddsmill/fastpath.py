@@ -239,13 +239,7 @@ def _names_at(raw: bytes, pos: int, k: int) -> tuple[str, ...] | None:
     twice or not UTF-8), remembered by their bytes (headers and names; the values skipped)."""
     keys = bytearray()
     for _ in range(k):
-        c = raw[pos]
-        if 0xA0 <= c <= 0xBF:
-            start, length = pos + 1, c - 0xA0
-        elif c == 0xD9:
-            start, length = pos + 2, raw[pos + 1]
-        else:
-            start, length = pos + 3, (raw[pos + 1] << 8) | raw[pos + 2]
+        start, length = _span(raw, pos)
         keys += raw[pos : start + length]
         pos = start + length + 9
     key = bytes(keys)
@@ -264,16 +258,21 @@ def _names_at(raw: bytes, pos: int, k: int) -> tuple[str, ...] | None:
     return names
 
 
+def _span(buf: bytes, pos: int) -> tuple[int, int]:
+    """(start, length) of a str the compiled reader has checked (fixstr, str8 or str16) at pos."""
+    c = buf[pos]
+    if 0xA0 <= c <= 0xBF:
+        return pos + 1, c - 0xA0
+    if c == 0xD9:
+        return pos + 2, buf[pos + 1]
+    return pos + 3, (buf[pos + 1] << 8) | buf[pos + 2]
+
+
 def _split(key: bytes) -> list[str]:
+    """The names of key bytes (str headers and names, end to end)."""
     out, pos = [], 0
     while pos < len(key):
-        c = key[pos]
-        if 0xA0 <= c <= 0xBF:
-            start, length = pos + 1, c - 0xA0
-        elif c == 0xD9:
-            start, length = pos + 2, key[pos + 1]
-        else:
-            start, length = pos + 3, (key[pos + 1] << 8) | key[pos + 2]
+        start, length = _span(key, pos)
         out.append(key[start : start + length].decode("utf-8"))
         pos = start + length
     return out

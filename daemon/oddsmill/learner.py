@@ -151,60 +151,19 @@ class Learner:
     # -- the kernel ------------------------------------------------------------------------------
     def run(self, block: Block) -> np.ndarray:
         """Score and learn a block in order (kernel.learn_block); returns the published logits."""
-        out = np.empty(len(block))
-        K.learn_block(
-            self._prm,
-            self._sc,
-            self._sl,
-            self._fl,
-            self._cl,
-            self._wq,
-            block.ptr,
-            block.idx,
-            block.val,
-            block.op,
-            block.y,
-            block.w,
-            out,
-        )
-        return out
+        return self.run_segments([block])
 
     def run_segments(self, segments: list[Block | Rows]) -> np.ndarray:
         """`run` over segments in order (CSR blocks, and the rows of columnar blocks as they are)."""
         out = np.empty(sum(len(s) for s in segments))
+        state = (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq)
         at = 0
         for seg in segments:
             end = at + len(seg)
             if isinstance(seg, Rows):
-                K.learn_rows(
-                    self._prm,
-                    self._sc,
-                    self._sl,
-                    self._fl,
-                    self._cl,
-                    self._wq,
-                    seg.slots,
-                    seg.rows,
-                    seg.op,
-                    seg.y,
-                    out[at:end],
-                )
+                K.learn_rows(*state, seg.slots, seg.rows, seg.op, seg.y, out[at:end])
             else:
-                K.learn_block(
-                    self._prm,
-                    self._sc,
-                    self._sl,
-                    self._fl,
-                    self._cl,
-                    self._wq,
-                    seg.ptr,
-                    seg.idx,
-                    seg.val,
-                    seg.op,
-                    seg.y,
-                    seg.w,
-                    out[at:end],
-                )
+                K.learn_block(*state, seg.ptr, seg.idx, seg.val, seg.op, seg.y, seg.w, out[at:end])
             at = end
         return out
 
