@@ -160,23 +160,21 @@ def _follows(b, e, nkeys, keypos):  # type: ignore[no-untyped-def]
 def _parse(b, values, ys, nkeys, keypos, newrun, max_str, max_items):  # type: ignore[no-untyped-def]
     """Read a body of numeric training events. Fills, per event, its label, number of features,
     the position of its x map's first key and whether its names differ from the event before, and
-    the values in order; returns (status, events, whether the body is one event, not a batch).
-    FALLBACK for anything the full path must see."""
+    the values in order; returns (status, events). FALLBACK for anything the full path must see."""
     n = len(b)
     scratch = np.zeros(1, dtype=np.uint64)
     as_float = scratch.view(np.float64)
     entries, pos = _map_len(b, 0, n)
     if entries < 1:
-        return FALLBACK, 0, False
+        return FALLBACK, 0
     count = np.int64(1)
-    single = True
     ks, kl, after = _str(b, pos, n)
     if entries == 1 and kl == 5 and b[ks] == 98 and b[ks + 1] == 97 and b[ks + 2] == 116 and b[ks + 3] == 99:
         if b[ks + 4] != 104:  # "batch"
-            return FALLBACK, 0, False
+            return FALLBACK, 0
         pos = after
         if pos >= n:
-            return FALLBACK, 0, False
+            return FALLBACK, 0
         c = np.int64(b[pos])
         if 0x90 <= c <= 0x9F:
             count, pos = c - 0x90, pos + 1
@@ -191,10 +189,9 @@ def _parse(b, values, ys, nkeys, keypos, newrun, max_str, max_items):  # type: i
             )
             pos += 5
         else:
-            return FALLBACK, 0, False
+            return FALLBACK, 0
         if count < 1 or count > max_items or count > ys.shape[0]:
-            return FALLBACK, 0, False
-        single = False
+            return FALLBACK, 0
     else:
         pos = 0  # the body is the event
     used = 0
@@ -203,11 +200,11 @@ def _parse(b, values, ys, nkeys, keypos, newrun, max_str, max_items):  # type: i
             b, pos, n, e, used, values, ys, nkeys, keypos, scratch, as_float, max_str, max_items
         )
         if not read:
-            return FALLBACK, 0, False
+            return FALLBACK, 0
         newrun[e] = 0 if e > 0 and _follows(b, e, nkeys, keypos) else 1
     if pos != n:
-        return FALLBACK, 0, False
-    return OK, count, single
+        return FALLBACK, 0
+    return OK, count
 
 
 @njit(cache=True, error_model="numpy")
@@ -281,13 +278,6 @@ def _split(key: bytes) -> list[str]:
 def numeric_training(raw: bytes) -> list[Columns] | None:
     """The body's events as columnar blocks (runs of events with the same names in the same
     order), or None when the body is anything but numeric training events."""
-    read = read_numeric(raw)
-    return None if read is None else read[1]
-
-
-def read_numeric(raw: bytes) -> tuple[bool, list[Columns]] | None:
-    """(whether the body is one event rather than a batch, its blocks), or None: see
-    `numeric_training`."""
     if len(raw) > MAX_MESSAGE or len(raw) < 8:
         return None
     b = np.frombuffer(raw, dtype=np.uint8)
@@ -297,24 +287,46 @@ def read_numeric(raw: bytes) -> tuple[bool, list[Columns]] | None:
     nkeys = np.zeros(most, dtype=np.int64)
     keypos = np.zeros(most, dtype=np.int64)
     newrun = np.zeros(most, dtype=np.uint8)
-    status, count, single = _parse(b, values, ys, nkeys, keypos, newrun, MAX_STR, MAX_ITEMS)
+    status, count = _parse(b, values, ys, nkeys, keypos, newrun, MAX_STR, MAX_ITEMS)
     if status != OK:
         return None
-    starts = np.flatnonzero(newrun[:count]).tolist() + [count]
-    out: list[Columns] = []
+    blocks = _runs(raw, count, values, ys, nkeys, keypos, newrun)
+    return None if any(c is None for c in blocks) else blocks  # type: ignore[return-value]
+
+
+def read_batch(raw: bytes) -> list[Columns] | None:
+    """`numeric_training` for a batch (a body that is a map of one entry); None for anything else.
+    A body of one event takes the full path: read alone, the fast path's fixed cost (its arrays,
+    a block of one row) is more than decoding it (80 against 40 us a message, measured);
+    `read_each` reads such messages together instead."""
+    return numeric_training(raw) if raw[:1] == b"\x81" else None
+
+
+def _runs(
+    buf: bytes,
+    count: int,
+    values: np.ndarray,
+    ys: np.ndarray,
+    nkeys: np.ndarray,
+    keypos: np.ndarray,
+    newrun: np.ndarray,
+) -> list[Columns | None]:
+    """The `count` events read into these arrays as blocks, one a run of the same names (None for
+    a run whose names are not usable: a name twice, or not UTF-8)."""
+    firsts = np.flatnonzero(newrun[:count]).tolist()
+    blocks: list[Columns | None] = []
     at = 0  # the first value of the run
-    for e, end in zip(starts[:-1], starts[1:], strict=True):
+    for e, end in zip(firsts, firsts[1:] + [count], strict=True):
         k = int(nkeys[e])
-        names = _names_at(raw, int(keypos[e]), k)
-        if names is None:
-            return None
-        m = end - e
-        out.append(Columns(names, values[at : at + m * k].reshape(m, k).copy(), ys[e:end].copy(), None))
-        at += m * k
-    return bool(single), out
+        names = _names_at(buf, int(keypos[e]), k)
+        rows = end - e
+        block = values[at : at + rows * k].reshape(rows, k).copy()
+        blocks.append(None if names is None else Columns(names, block, ys[e:end].copy(), None))
+        at += rows * k
+    return blocks
 
 
-def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns]]:
+def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns | None]]:
     """Messages of one numeric training event each, read together (None, or any other body, is
     not read): per message the index of the block holding its event, or -1; and the blocks. A
     block is a run of consecutive messages read, with the same names in the same order, so that
@@ -334,17 +346,7 @@ def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns]]:
     count = _parse_each(b, starts, values, ys, nkeys, keypos, newrun, read, MAX_STR, MAX_ITEMS)
     if count == 0:
         return [-1] * m, []
-    firsts = np.flatnonzero(newrun[:count]).tolist()
-    blocks: list[Columns] = []
-    usable: list[bool] = []
-    at = 0
-    for e, end in zip(firsts, firsts[1:] + [count], strict=True):
-        k = int(nkeys[e])
-        names = _names_at(joined, int(keypos[e]), k)
-        rows = end - e
-        usable.append(names is not None)
-        blocks.append(Columns(names or (), values[at : at + rows * k].reshape(rows, k).copy(), ys[e:end].copy(), None))
-        at += rows * k
+    blocks = _runs(joined, count, values, ys, nkeys, keypos, newrun)
     which: list[int] = []
     e = 0
     run = -1
@@ -354,6 +356,6 @@ def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns]]:
             continue
         if newrun[e]:
             run += 1
-        which.append(run if usable[run] else -1)
+        which.append(run if blocks[run] is not None else -1)
         e += 1
     return which, blocks

@@ -29,7 +29,7 @@ from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
 from .errors import ConfigError, ProtocolError
-from .fastpath import read_each, read_numeric
+from .fastpath import read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
@@ -162,7 +162,7 @@ def warm_up(settings: LearnerSettings) -> None:
     rows.add_rows(np.array([0]), np.ones((1, 1)), np.array([K.OP_TRAIN]), np.ones(1))
     scratch.run_segments(rows.segments())
     one = msgpack.packb({"x": {"warm": 1.0}, "y": 1})  # and the compiled reading of events
-    read_numeric(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
+    read_batch(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
     read_each([one, one])
 
 
@@ -519,16 +519,17 @@ class Server:
                 if n is None:
                     placed[run] = len(items)
                     members[len(items)] = [i]
-                    items.append((arrival, runs[run]))
+                    block = runs[run]
+                    assert block is not None  # a message's run is one whose names are usable
+                    items.append((arrival, block))
                     owner.append(-1)
                 else:
                     members[n].append(i)
                 continue
-            fast = _read_batch(frames[1])  # batches of numeric training events, read in compiled code
-            if fast is not None:
+            blocks = read_batch(frames[1])  # batches of numeric training events, read in compiled code
+            if blocks is not None:
                 raws.append(frames[1])
-                single, blocks = fast
-                shapes[i] = "one" if single else "batch"
+                shapes[i] = "batch"
                 for block in blocks:
                     items.append((arrival, block))
                     owner.append(i)
@@ -561,8 +562,7 @@ class Server:
         for n, r in results:
             if n in members:
                 if isinstance(r, ColumnScores):
-                    for i, z, st in zip(members[n], r.logits.tolist(), r.steps.tolist(), strict=True):
-                        bodies[i] = {"id": None, "p": _p(z), "logit": z, "step": st, "ts": r.ts}
+                    bodies.update(zip(members[n], _row_scores(r), strict=True))
                 elif isinstance(r, Score):  # its rows scored one by one (a write outage, a full vocabulary)
                     k = rows_done.get(n, 0)
                     rows_done[n] = k + 1
@@ -694,14 +694,7 @@ class Server:
         return r
 
 
-def _read_batch(raw: bytes) -> tuple[bool, list[Columns]] | None:
-    """A batch of numeric training events read by the compiled fast path, or None. Bodies of one
-    event take the full path: there the fast path's fixed cost (its arrays, a block for one row)
-    is more than decoding the event (80 against 40 us a message, measured)."""
-    return read_numeric(raw) if raw[:1] == b"\x81" else None
-
-
-def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns]]:
+def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns | None]]:
     """fastpath.read_each over the messages that may be one numeric training event (a body that
     is a map of two entries); when there are fewer than SINGLES_TOGETHER of them the full path is
     quicker, and nothing is read."""
@@ -713,12 +706,23 @@ def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns]
 
 def _items(raw: bytes) -> list[Item]:
     """The items of a body that was accepted (and journaled) before."""
-    fast = _read_batch(raw)
-    return list(fast[1]) if fast is not None else decode_body(unpack(raw))
+    blocks = read_batch(raw)
+    return list(blocks) if blocks is not None else decode_body(unpack(raw))
 
 
 def _one(s: Score) -> dict[str, Any]:
-    return {"id": s.id, "p": _p(s.logit), "logit": s.logit, "step": s.step, "ts": s.ts}
+    return _score(s.id, s.logit, s.step, s.ts)
+
+
+def _score(ident: Any, z: float, step: int, ts: float) -> dict[str, Any]:
+    """One score body (PROTOCOL 3)."""
+    return {"id": ident, "p": _p(z), "logit": z, "step": step, "ts": ts}
+
+
+def _row_scores(s: ColumnScores) -> list[dict[str, Any]]:
+    """A score body for each row of a block, built from its arrays (no `Score` object a row)."""
+    ids = s.ids if s.ids is not None else (None,) * s.logits.shape[0]
+    return [_score(i, z, st, s.ts) for i, z, st in zip(ids, s.logits.tolist(), s.steps.tolist(), strict=True)]
 
 
 def _p(z: float) -> float:
@@ -754,13 +758,9 @@ def _score_body(scores: list[Score | ColumnScores] | ColumnScores, shape: str) -
         out: list[dict[str, Any]] = []
         for s in scores:
             if isinstance(s, ColumnScores):  # rows of a run: no Score object a row
-                ids = s.ids if s.ids is not None else (None,) * s.logits.shape[0]
-                out.extend(
-                    {"id": i, "p": _p(z), "logit": z, "step": st, "ts": s.ts}
-                    for i, z, st in zip(ids, s.logits.tolist(), s.steps.tolist(), strict=True)
-                )
+                out.extend(_row_scores(s))
             else:
                 out.append(_one(s))
         return {"batch": out}
     first = scores[0]
-    return _one(first.rows()[0] if isinstance(first, ColumnScores) else first)
+    return _row_scores(first)[0] if isinstance(first, ColumnScores) else _one(first)

@@ -30,7 +30,7 @@ import msgpack
 import numpy as np
 
 from .errors import CheckpointError, JournalError
-from .fastpath import read_numeric
+from .fastpath import read_batch
 from .protocol import Columns
 
 log = logging.getLogger("oddsmill")
@@ -250,9 +250,8 @@ class JournalWriter:
 
 @dataclass(frozen=True)
 class Read:
-    """A journaled body of numeric training events, read by the compiled fast path."""
+    """A journaled batch of numeric training events, read by the compiled fast path."""
 
-    single: bool
     blocks: list[Columns]
 
 
@@ -260,7 +259,7 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
     """(byte offset just past the record, arrival time, body) for each good record from byte
     `start` on (the end of an earlier record, as a checkpoint keeps it; 0 for the first); stops at
     a torn or corrupt tail after logging where. JournalError when the header is wrong. With `fast`,
-    a body of numeric training events comes as a `Read` (fastpath.read_numeric), not decoded."""
+    a batch of numeric training events comes as a `Read` (fastpath.read_batch), not decoded."""
     with open(path, "rb") as f:
         data = f.read()
     head = len(JOURNAL_MAGIC) + 4
@@ -286,11 +285,10 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
         if zlib.crc32(payload) != crc:
             log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
             return
-        # [float64 arrival, a batch]: the fast path (one event takes the full path, as on ingest)
-        if fast and payload[:2] == b"\x92\xcb" and payload[10:11] == b"\x81":
-            got = read_numeric(payload[10:])
+        if fast and payload[:2] == b"\x92\xcb":  # [float64 arrival, body]
+            got = read_batch(payload[10:])
             if got is not None:
-                yield end, struct.unpack_from(">d", payload, 2)[0], Read(*got)
+                yield end, struct.unpack_from(">d", payload, 2)[0], Read(got)
                 pos = end
                 continue
         try:
