@@ -39,11 +39,20 @@ def malformed(reason: str, rnd: random.Random, k: int) -> list[bytes]:
     if reason == "not_a_map":
         return one(rnd.choice([[1, 2, 3], 42, "an event", None, {"x": x, "y": 1, "colour": "red"}]))
     if reason == "bad_features":
-        return one(rnd.choice([{"x": [1.0, 2.0], "y": 1}, {"x": {"route_km": [1, 2]}, "y": 0}, {"x": "far"}]))
+        return one(
+            rnd.choice(
+                [
+                    {"x": [1.0, 2.0], "y": 1},
+                    {"x": {"route_km": [1, 2]}, "y": 0},
+                    {"x": "far"},
+                    {"x": dict(x, route_km=rnd.choice([1e40, -2.2e-309, 1e-31])), "y": 1},  # out of range
+                ]
+            )
+        )
     if reason == "bad_label":
         return one({"x": x, "y": rnd.choice([2, -1, "yes", 0.5, [1]])})
     if reason == "bad_weight":
-        return one({"x": x, "y": 1, "w": rnd.choice([-1.0, "heavy", [2]])})
+        return one({"x": x, "y": 1, "w": rnd.choice([-1.0, "heavy", [2], 1e7])})
     if reason == "non_finite":
         return one({"x": dict(x, route_km=rnd.choice([float("nan"), float("inf"), -float("inf")])), "y": 1})
     if reason == "unknown_outcome":

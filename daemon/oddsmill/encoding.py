@@ -2,9 +2,10 @@
 
 A number v under name k is the numeric feature k with value v; a string s is the one-hot feature
 "k=s" with value 1; true/false are numeric 1/0; nil or a missing key is absent. A non-finite number
-is an error. The vocabulary is append-only: a name keeps its slot for the life of the state. When it
-holds `max_features` names, names not seen before are ignored (they add nothing to the logit and
-are not learned) and counted in `Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
+is an error, and so is one out of the learner's range (`protocol.in_range`). The vocabulary is
+append-only: a name keeps its slot for the life of the state. When it holds `max_features` names,
+names not seen before are ignored (they add nothing to the logit and are not learned) and counted in
+`Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
 
 >>> v = Vocabulary(max_features=10)
 >>> encode_features({"route_km": 12.5, "depot": "harbour", "fragile": True, "note": None}, v)
@@ -22,6 +23,7 @@ from itertools import accumulate
 import numpy as np
 
 from .errors import ProtocolError
+from .protocol import OUT_OF_RANGE, VALUE_MAX, VALUE_MIN, in_range
 
 SHAPES_KEPT = 4096  # sets of feature names whose slots are remembered
 FLOATS = {float}
@@ -71,12 +73,16 @@ def encode_features(
         known = vocab.shapes.get(keys)
         if known is not None:
             present = list(x.values())
-            # only for floats, all finite (a NaN or an infinity makes the sum one; so does an
-            # overflow of the sum, and then the full path below decides)
+            # only for floats, all finite (a NaN or an infinity makes the sum one) and none 0 or
+            # out of range; otherwise the full path below decides
             if set(map(type, present)) == FLOATS:
                 total = sum(present)
                 if total - total == 0.0:
-                    return list(known), present, []
+                    sizes = list(map(abs, present))
+                    if max(sizes) <= VALUE_MAX and (
+                        min(sizes) >= VALUE_MIN or all(a == 0.0 or a >= VALUE_MIN for a in sizes)
+                    ):
+                        return list(known), present, []
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
     index = vocab.index
@@ -92,12 +98,16 @@ def encode_features(
             v = value
             if v - v != 0.0:  # NaN or an infinity
                 raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
+            if not in_range(v):
+                raise ProtocolError("bad_features", f"feature {key!r} is {value!r}: {OUT_OF_RANGE}", event_id)
             name, is_num = key, True
         elif kind is int:
             try:
                 v = float(value)
             except OverflowError:  # JSON integers have no bound
                 raise ProtocolError("non_finite", f"feature {key!r} is too large for a float", event_id) from None
+            if abs(v) > VALUE_MAX:
+                raise ProtocolError("bad_features", f"feature {key!r} is {value!r}: {OUT_OF_RANGE}", event_id)
             name, is_num = key, True
         elif kind is str:
             name, v, is_num = f"{key}={value}", 1.0, False
@@ -115,6 +125,8 @@ def encode_features(
                 raise ProtocolError("non_finite", f"feature {key!r} is too large for a float", event_id) from None
             if v - v != 0.0:
                 raise ProtocolError("non_finite", f"feature {key!r} is {value!r}", event_id)
+            if not in_range(v):
+                raise ProtocolError("bad_features", f"feature {key!r} is {value!r}: {OUT_OF_RANGE}", event_id)
             name, is_num = key, True
         else:
             raise ProtocolError(

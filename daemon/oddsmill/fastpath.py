@@ -26,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .protocol import MAX_ITEMS, MAX_MESSAGE, MAX_STR, Columns
+from .protocol import MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, Columns
 
 OK = 0
 FALLBACK = 1
@@ -128,7 +128,8 @@ def _event_at(b, pos, n, e, used, values, ys, nkeys, keypos, scratch, as_float, 
                     bits = (bits << np.uint64(8)) | np.uint64(b[pos + 1 + q])
                 scratch[0] = bits
                 v = as_float[0]
-                if v - v != 0.0:  # a NaN or an infinity: the full path rejects that event
+                a = abs(v)  # a NaN, an infinity or a number out of range: the full path rejects it
+                if not (a == 0.0 or (a >= VALUE_MIN and a <= VALUE_MAX)):
                     return False, pos, used
                 values[used] = v
                 used += 1

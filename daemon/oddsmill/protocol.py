@@ -35,6 +35,25 @@ MAX_MESSAGE = 16 << 20  # bytes of one body; a longer one is refused as too_larg
 # ZeroMQ itself (the daemon never sees it, so cannot count it); between MAX_MESSAGE and this, the
 # daemon sees the message and counts it as too_large
 TRANSPORT_LIMIT = 4 * MAX_MESSAGE
+# The numbers the learner takes. A feature value is 0 or between VALUE_MIN and VALUE_MAX in
+# magnitude, and a weight at most WEIGHT_MAX: the scaling divides by a feature's early values and
+# the update multiplies by the weight, so a subnormal first value or a value near the float limit
+# would overflow the state to infinity and then NaN, for good. Within these bounds every product
+# the kernel forms stays finite (DEVELOPERS.md, "Numbers the learner takes").
+VALUE_MIN = 1e-30
+VALUE_MAX = 1e30
+WEIGHT_MAX = 1e6
+OUT_OF_RANGE = f"numbers must be 0 or between {VALUE_MIN:g} and {VALUE_MAX:g} in magnitude"
+
+
+def in_range(v: float) -> bool:
+    """Whether a finite feature value is one the learner takes.
+
+    >>> in_range(0.0), in_range(-2.5e12), in_range(1e-300), in_range(1e40)
+    (True, True, False, False)
+    """
+    a = abs(v)
+    return a == 0.0 or VALUE_MIN <= a <= VALUE_MAX
 
 
 class Event(NamedTuple):
@@ -181,8 +200,8 @@ def _weight(w: Any, ident: Any) -> float:
     w = as_float(w, "w", ident)
     if not math.isfinite(w):
         raise ProtocolError("non_finite", f"w is {w!r}", ident)
-    if w <= 0:
-        raise ProtocolError("bad_weight", f"w must be > 0, got {w!r}", ident)
+    if w <= 0 or w > WEIGHT_MAX:
+        raise ProtocolError("bad_weight", f"w must be > 0 and at most {WEIGHT_MAX:g}, got {w!r}", ident)
     return float(w)
 
 
@@ -227,6 +246,11 @@ def _columns(body: Mapping[str, Any]) -> Columns:
     n = matrix.shape[0]
     if not np.isfinite(matrix).all():
         raise ProtocolError("non_finite", "rows holds a NaN or an infinity")
+    a = np.abs(matrix)
+    bad = (a > VALUE_MAX) | ((a < VALUE_MIN) & (a != 0.0))
+    if bad.any():
+        r, c = (int(k[0]) for k in np.nonzero(bad))
+        raise ProtocolError("bad_features", f"rows[{r}] holds {cols[c]}={matrix[r, c]!r}: {OUT_OF_RANGE}")
     y = np.full(n, np.nan)
     if "y" in body and body["y"] is not None:
         yb = body["y"]
