@@ -67,3 +67,30 @@ def test_history_points_fall_at_exact_counts_whatever_the_blocks() -> None:
         assert progressive == pytest.approx(log_loss(y[:c], p, labels=[0, 1]), rel=1e-10)
         lo = max(0, c - 500)
         assert window == pytest.approx(log_loss(y[lo:c], p[lo:], labels=[0, 1]), rel=1e-10)
+
+
+def test_small_blocks_keep_the_same_figures_bit_for_bit() -> None:
+    """Blocks of at most FEW events are kept with Python floats (`softplus`, one event at a time):
+    the loss of each event, the sums, the window and the history equal the array path's exactly.
+    Outside reference: numpy's logaddexp(0, z), which the array path uses."""
+    from oddsmill.progressive import FEW, softplus
+
+    rng = np.random.default_rng(7)
+    z = np.concatenate(
+        [rng.normal(0, s, 50_000) for s in (1.0, 30.0, 1e3)] + [np.array([0.0, -0.0, 5e-324, 709.0, -745.0, 1e65])]
+    )
+    assert [softplus(v) for v in z.tolist()] == np.logaddexp(0.0, z).tolist()
+    y = (rng.random(z.size) < 0.5).astype(float)
+    whole, few = ProgressiveMetrics(window=700), ProgressiveMetrics(window=700)
+    whole.update(z, y)
+    lo = 0
+    while lo < z.size:
+        size = int(rng.integers(1, FEW + 1))
+        few.update(z[lo : lo + size], y[lo : lo + size])
+        lo += size
+    a, b = whole.state_dict(), few.state_dict()
+    assert a["sum"] == b["sum"] and a["count"] == b["count"] and a["head"] == b["head"]
+    for key in ("z", "y", "history"):
+        assert a[key].tobytes() == b[key].tobytes(), key
+    assert whole._ll.tobytes() == few._ll.tobytes()
+    assert whole.log_loss_window == few.log_loss_window
