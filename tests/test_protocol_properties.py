@@ -112,6 +112,18 @@ def test_the_remembered_slots_of_a_name_set_encode_as_the_full_path_does(events:
     assert not full.shapes
 
 
+def test_a_name_sent_as_a_string_then_as_a_number_keeps_its_numeric_slot() -> None:
+    """Found by the test above: the one-hot of a key (value 1.0 once encoded) was remembered as the
+    slots of the key's name set, and the next number under that key went to the one-hot's slot."""
+    from oddsmill.encoding import Vocabulary, encode_features
+
+    v = Vocabulary(max_features=10)
+    for x in ({"route_km": 0.5}, {"route_km": "Harbourside"}, {"route_km": "Harbourside"}):
+        encode_features(x, v)
+    assert v.names == ["route_km", "route_km=Harbourside"]
+    assert encode_features({"route_km": 2.0}, v)[:2] == ([0], [2.0])
+
+
 def _comparable(item: object) -> object:
     if isinstance(item, ProtocolError):
         return ("error", item.reason, item.detail, item.event_id)

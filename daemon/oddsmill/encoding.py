@@ -155,9 +155,10 @@ def encode_features(
             keep = [k for k, j in enumerate(slots) if j >= 0]
             slots = [slots[k] for k in keep]
             values = [values[k] for k in keep]
-    elif type(x) is dict and len(slots) == len(x) and all(type(v) is float for v in values):
-        # every name known, every value a float present: this set of names encodes the same way
-        # from now on
+    elif type(x) is dict and len(slots) == len(x) and all(type(v) is float for v in x.values()):
+        # every name known, every value sent as a float: this set of names encodes the same way
+        # from now on. (The values sent, not the values encoded: a one-hot's value is 1.0 too, but
+        # its slot is the one of "key=value", not of the key.)
         if len(vocab.shapes) >= SHAPES_KEPT:
             vocab.shapes.clear()
         vocab.shapes[tuple(x)] = slots
