@@ -9,9 +9,11 @@ from typing import Any
 
 import msgpack
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from oddsmill.engine import Engine, Rejection, each_score
+from oddsmill.errors import ProtocolError
 from oddsmill.fastpath import numeric_training
 from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body, in_range, unpack
@@ -19,12 +21,19 @@ from oddsmill.settings import LearnerSettings
 
 NAMES = ["route_km", "weight_g", "stops", "é_depot", "a"]
 values = st.floats(width=64) | st.floats(min_value=-1e6, max_value=1e6) | st.integers(-5, 5) | st.none() | st.just("x")
+# ids of every msgpack width, and ones the full path refuses (a bool, nil, a float, a list)
+idents = (
+    st.integers(-(2**63), 2**64 - 1)
+    | st.integers(-40, 200)
+    | st.text(max_size=40)
+    | st.sampled_from([True, None, 1.5, [1], "P-1"])
+)
 labels = st.sampled_from([0, 1, True, False]) | st.sampled_from([2, -1, 0.5, None, "1"])
 features = st.dictionaries(st.sampled_from(NAMES), st.floats(min_value=-1e6, max_value=1e6), min_size=1) | (
     st.dictionaries(st.sampled_from(NAMES), values)
 )
 events = st.fixed_dictionaries({"x": features, "y": labels}) | st.fixed_dictionaries(
-    {"x": features, "y": labels}, optional={"id": st.just("P1"), "w": st.just(2.0)}
+    {"x": features, "y": labels}, optional={"id": idents, "w": st.just(2.0)}
 )
 bodies = events | st.builds(lambda evs: {"batch": evs}, st.lists(events, min_size=1, max_size=8))
 
@@ -74,7 +83,8 @@ clean = st.fixed_dictionaries(
             st.sampled_from(NAMES), st.floats(min_value=-1e3, max_value=1e3).filter(in_range), min_size=1
         ),
         "y": st.sampled_from([0, 1, True, False]),
-    }
+    },
+    optional={"id": st.integers(-(2**63), 2**64 - 1) | st.text(max_size=300)},
 )
 
 
@@ -137,6 +147,17 @@ def test_runs_of_names_become_blocks_and_the_rest_is_declined() -> None:
     bad = packer.pack_map_header(2) + packer.pack("x") + b"\x81\xa2\xff\xfe" + packer.pack(1.0)
     bad += packer.pack("y") + packer.pack(1)
     assert numeric_training(bad) is None
+    # an id that is a str but not UTF-8: declined (msgpack refuses it: undecodable)
+    bad_id = packer.pack_map_header(3) + packer.pack("id") + b"\xa2\xff\xfe" + packer.pack("x")
+    bad_id += packer.pack({"a": 1.0}) + packer.pack("y") + packer.pack(1)
+    assert numeric_training(bad_id) is None
+    with pytest.raises(ProtocolError) as refused:
+        unpack(bad_id)
+    assert refused.value.reason == "undecodable"
+    # ids of every width, and events with and without one in a run
+    with_ids = [dict(a, id=i) for i in (0, 127, -1, -32, -33, 255, 65536, -(2**63), 2**64 - 1, "", "P" * 300)]
+    blocks = numeric_training(msgpack.packb({"batch": [*with_ids, a]}))
+    assert blocks is not None and blocks[0].ids == [e["id"] for e in with_ids] + [None]
     # extra bytes after the body, a float32, an integer feature, a scoring request: declined
     good = msgpack.packb(a)
     assert numeric_training(good) is not None

@@ -54,6 +54,7 @@ SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status r
 RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them reads the whole vocabulary)
 RATE_SECONDS = 1.0  # events/s is sampled this often for the dashboard
 REPLAY_BLOCK = 4096
+EVENT_MAPS = (b"\x82", b"\x83")  # the first byte of a body that may be one numeric training event
 RETRY_SECONDS = 1.0  # while the state directory cannot be written, try again this often
 
 
@@ -696,9 +697,9 @@ class Server:
 
 def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns | None]]:
     """fastpath.read_each over the messages that may be one numeric training event (a body that
-    is a map of two entries); when there are fewer than SINGLES_TOGETHER of them the full path is
+    is a map of two entries, or three with an id); when there are fewer than SINGLES_TOGETHER of them the full path is
     quicker, and nothing is read."""
-    candidates: list[bytes | None] = [f[1] if len(f) == 2 and f[1][:1] == b"\x82" else None for f in messages]
+    candidates: list[bytes | None] = [f[1] if len(f) == 2 and f[1][:1] in EVENT_MAPS else None for f in messages]
     if sum(c is not None for c in candidates) < SINGLES_TOGETHER:
         return [-1] * len(messages), []
     return read_each(candidates)
