@@ -157,7 +157,7 @@ def test_runs_of_names_become_blocks_and_the_rest_is_declined() -> None:
     # ids of every width, and events with and without one in a run
     with_ids = [dict(a, id=i) for i in (0, 127, -1, -32, -33, 255, 65536, -(2**63), 2**64 - 1, "", "P" * 300)]
     blocks = numeric_training(msgpack.packb({"batch": [*with_ids, a]}))
-    assert blocks is not None and blocks[0].ids == [e["id"] for e in with_ids] + [None]
+    assert blocks is not None and blocks[0].ids == (*[e["id"] for e in with_ids], None)
     # extra bytes after the body, a float32, an integer feature, a scoring request: declined
     good = msgpack.packb(a)
     assert numeric_training(good) is not None

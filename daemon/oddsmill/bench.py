@@ -10,9 +10,10 @@ Throughput, in three shapes of traffic (one event a message with 20 named numeri
 batches of 500, columnar blocks of 500 rows): a producer process of its own pushes N events as fast
 as the server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the
 scores; events/s is the events over the time from the producer's start to the last score.
-Latency: one event a message at a fixed offered load, from each send to its score at this
-process's subscriber (floor and oddsmill, alternated twice so drift falls on both). Peak memory is
-each server's VmHWM. The ratios are what to read: absolute figures drift on a shared machine.
+Latency: one event a message at a fixed offered load, sent by a producer process of its own, from
+each send to its score at this process's subscriber (floor and oddsmill, alternated twice so drift
+falls on both). Peak memory is each server's VmHWM. The ratios are what to read: absolute figures
+drift on a shared machine.
 
     oddsmill bench [--events N] [--rate R] [--seconds S] [--json]
     python -m oddsmill.bench ...     (from a checkout: PYTHONPATH=daemon:clients)
@@ -121,6 +122,42 @@ push.close(linger=-1)
 ctx.term()
 """
 
+# The latency's producer: a process of its own (in the measuring process, its sending and packing
+# competed for the interpreter with the receiving thread, and added half a millisecond to the
+# floor's median). It probes until told to start, sends n events at a fixed rate, and writes each
+# send time (time.perf_counter: CLOCK_MONOTONIC, one clock for every process of the machine).
+LATENCY_PRODUCER = r"""
+import sys, time, msgpack, numpy as np, zmq
+address, rate, n, out = sys.argv[1], float(sys.argv[2]), int(sys.argv[3]), sys.argv[4]
+names = [f"f{j:02d}" for j in range(20)]
+rng = np.random.default_rng(0)
+bodies = [msgpack.packb({"id": i, "x": dict(zip(names, rng.normal(size=20).tolist())), "y": i % 3 == 0})
+          for i in range(n)]
+ctx = zmq.Context()
+pub = ctx.socket(zmq.XPUB)
+pub.setsockopt(zmq.SNDHWM, 0)
+pub.connect(address)
+pub.recv()  # the server's subscription has arrived
+probe = msgpack.packb({"id": -1, "x": {"probe": 1.0}})
+while True:  # probes until the measuring process has seen one scored
+    pub.send_multipart([b"events", probe])
+    if zmq.select([sys.stdin], [], [], 0.1)[0]:
+        sys.stdin.readline()
+        break
+sent = np.zeros(n)
+t0 = time.perf_counter()
+for i in range(n):
+    delay = t0 + i / rate - time.perf_counter()
+    if delay > 0:
+        time.sleep(delay)
+    sent[i] = time.perf_counter()
+    pub.send_multipart([b"events", bodies[i]])
+np.save(out, sent)
+print("done", flush=True)
+pub.close(linger=-1)
+ctx.term()
+"""
+
 
 def free_port() -> int:
     with socket.socket() as s:
@@ -221,56 +258,45 @@ def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
 
 
 def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
-    """Send-to-score times of one-event messages at `rate`, over PUB/SUB as a live producer sends."""
+    """Send-to-score times of one-event messages at `rate`, over PUB/SUB: a producer process sends,
+    this process receives the scores."""
     server = Running(kind, "sub")
     ctx: zmq.Context[Any] = zmq.Context()
     sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.RCVHWM, 0)
     sub.setsockopt(zmq.SUBSCRIBE, b"scores")
     sub.connect(server.scores)
-    pub = ctx.socket(zmq.XPUB)
-    pub.connect(server.ingest)
-    pub.recv()  # the server's subscription has arrived
-    while True:
-        pub.send_multipart([b"events", msgpack.packb({"id": -1, "x": {"probe": 1.0}})])
-        if sub.poll(100):
-            sub.recv_multipart()
-            break
-    while sub.poll(300):
-        sub.recv_multipart()
-    rng = np.random.default_rng(0)
     n = int(rate * seconds)
-    sent = np.zeros(n)
-    got: list[float] = []
-    done = threading.Event()
-
-    def receive() -> None:
-        while len(got) < n and sub.poll(5000):
+    with tempfile.TemporaryDirectory(prefix="oddsmill-bench-") as tmp:
+        times = Path(tmp) / "sent.npy"
+        producer = subprocess.Popen(
+            [sys.executable, "-c", LATENCY_PRODUCER, server.ingest, str(rate), str(n), str(times)],
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+        assert producer.stdin is not None and producer.stdout is not None
+        if not sub.poll(60_000):  # a probe's score: the whole path is up
+            raise RuntimeError(f"{kind}: no score for the latency producer's probes")
+        producer.stdin.write("go\n")  # (the probes' scores still in flight are skipped by their id)
+        producer.stdin.flush()
+        arrived = np.full(n, np.nan)
+        got = 0
+        while got < n and sub.poll(5000):
             _, raw = sub.recv_multipart()
             now = time.perf_counter()
             ident = msgpack.unpackb(raw)["id"]
             if isinstance(ident, int) and 0 <= ident < n:
-                got.append(now - sent[ident])
-        done.set()
-
-    t = threading.Thread(target=receive)
-    t.start()
-    t0 = time.perf_counter()
-    for i in range(n):
-        delay = t0 + i / rate - time.perf_counter()
-        if delay > 0:
-            time.sleep(delay)
-        body = msgpack.packb(
-            {"id": i, "x": dict(zip(FEATURES, rng.normal(size=20).tolist(), strict=True)), "y": i % 3 == 0}
-        )
-        sent[i] = time.perf_counter()
-        pub.send_multipart([b"events", body])
-    done.wait(30)
-    t.join(5)
+                arrived[ident] = now
+                got += 1
+        producer.stdout.readline()  # "done": the send times are written
+        producer.wait(30)
+        sent = np.load(times)
     sub.close(0)
-    pub.close(0)
     ctx.term()
     server.stop()
-    return np.array(got)
+    done = ~np.isnan(arrived)
+    return np.asarray(arrived[done] - sent[done])
 
 
 def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -> dict[str, Any]:

@@ -20,7 +20,7 @@ always the full path's own.
 >>> [(c.cols, c.rows.tolist(), c.y.tolist()) for c in numeric_training(body)]
 [(('route_km',), [[12.5], [3.0]], [1.0, 0.0])]
 >>> numeric_training(msgpack.packb({"x": {"route_km": 12.5}, "y": 1, "id": "P1"}))[0].ids
-['P1']
+('P1',)
 >>> numeric_training(msgpack.packb({"x": {"route_km": 12.5}, "y": 1, "w": 2.0})) is None
 True
 """
@@ -356,18 +356,18 @@ def _runs(
         rows = end - e
         block = values[at : at + rows * k].reshape(rows, k).copy()
         at += rows * k
-        idents = _ids(buf, ids[e:end].tolist())
-        if names is None or idents is False:
-            blocks.append(None)
-        else:
-            blocks.append(Columns(names, block, ys[e:end].copy(), idents))
+        try:
+            idents = _ids(buf, ids[e:end].tolist())
+        except UnicodeDecodeError:  # msgpack refuses such an id: the full path decides
+            names = None
+        blocks.append(None if names is None else Columns(names, block, ys[e:end].copy(), idents))
     return blocks
 
 
-def _ids(buf: bytes, starts: list[int]) -> list[object] | None | bool:
+def _ids(buf: bytes, starts: list[int]) -> tuple[object, ...] | None:
     """The ids of a run's events (None for a run without any; an event without one has None),
-    from where the compiled reader found them (an integer, or a str); False when a str is not
-    UTF-8, which msgpack refuses, so that the full path decides."""
+    from where the compiled reader found them (an integer, or a str). UnicodeDecodeError for a str
+    that is not UTF-8."""
     if max(starts) < 0:
         return None
     out: list[object] = []
@@ -385,11 +385,8 @@ def _ids(buf: bytes, starts: list[int]) -> list[object] | None | bool:
             out.append(int.from_bytes(buf[s + 1 : s + 1 + size], "big", signed=c >= 0xD0))
         else:
             start, length = _span(buf, s)
-            try:
-                out.append(buf[start : start + length].decode("utf-8"))
-            except UnicodeDecodeError:
-                return False
-    return out
+            out.append(buf[start : start + length].decode("utf-8"))
+    return tuple(out)
 
 
 def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns | None]]:
