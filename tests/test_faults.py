@@ -372,3 +372,53 @@ def test_the_http_port_is_on_loopback_by_default_and_changes_nothing(tmp_path: P
             assert status == 501, (method, path, status)  # not implemented: there is nothing to change
     assert running.server.engine.learner.state_dict()["slots"].tobytes() == before
     running.close()
+
+
+def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_segment(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """With fsync = "os" a power cut can take the journal's tail that a checkpoint already covers.
+    Appending after the short end would put new records where the checkpoint's position points
+    into, and the next restart from that checkpoint would read from the middle of one: the new
+    records must go to a new segment, and a restart (kill -9: no checkpoint) must learn them all."""
+    import msgpack
+    import zmq
+    from oddsmill.server import Server
+
+    learner = LearnerSettings(scale_warmup=50)
+    settings = ServerSettings(state_dir=tmp_path, http="off", fsync="os")
+    ctx: zmq.Context[Any] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://scores")
+    sent = [[b"events", msgpack.packb(b)] for b in bodies(700, seed=21) if "x" in b and "y" in b]
+
+    def feed(server: Server, messages: list[list[bytes]]) -> None:
+        for lo in range(0, len(messages), 25):
+            server.handle(messages[lo : lo + 25], pub)
+
+    first = Server(settings, learner)
+    feed(first, sent[:300])
+    first.checkpoint()
+    first.journal.close()
+    (segment,) = list_journal(tmp_path)
+    ends = [end for end, _, _ in read_journal(segment)]
+    with open(segment, "r+b") as f:  # the power cut: the last 5 of 12 blocks never reached the disk
+        f.truncate(ends[7 * 25 - 1])
+
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        second = Server(settings, learner)
+    assert any("before the checkpoint's position" in r.getMessage() for r in caplog.records)
+    assert second.engine.learner.step == 300  # the checkpoint's
+    feed(second, sent[300:])
+    second.journal.close()  # and then kill -9: no checkpoint
+    assert len(list_journal(tmp_path)) == 2
+
+    third = Server(settings, learner)
+    third.journal.close()
+    assert third.engine.learner.step == len(sent)
+    mine, theirs = third.engine.state_dict(), second.engine.state_dict()
+    for key in ("scalars", "slots", "flags"):
+        assert mine["learner"][key].tobytes() == theirs["learner"][key].tobytes(), key
+    assert mine["counters"] == theirs["counters"]
+    pub.close(0)
+    ctx.term()

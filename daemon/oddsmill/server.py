@@ -349,7 +349,22 @@ class Server:
                 good = len(JOURNAL_MAGIC) + 4
                 for end, _, _ in read_journal(last):
                     good = end
-            if last.stat().st_size > good:
+            size = last.stat().st_size
+            if size < good:
+                # The checkpoint covers records this segment no longer holds (a power cut took a
+                # tail that fsync = "os" left unsynced). Appending here would put new records where
+                # the checkpoint's position points, and a restart from it would read from the middle
+                # of one: they go to a new segment, which a replay reads from its start.
+                log.warning(
+                    "%s ends at byte %d, before the checkpoint's position %d: the journal lost records the "
+                    "checkpoint holds (they are not lost from the model); continuing in a new segment",
+                    last.name,
+                    size,
+                    good,
+                )
+                number = max(self.records, int(last.stem.split("-")[-1]) + 1)
+                return JournalWriter(self.settings.state_dir / f"journal-{number:012d}.omj")
+            if size > good:
                 log.warning("%s: cutting a torn tail at byte %d", last.name, good)
                 with open(last, "r+b") as f:
                     f.truncate(good)
