@@ -164,8 +164,18 @@ def load_newest(state_dir: Path) -> tuple[dict[str, Any], Path] | None:
 # -- journal ---------------------------------------------------------------------------------------
 def journal_record(arrival: float, raw_body: bytes) -> bytes:
     """One record; the body is spliced in as received (it is valid msgpack already)."""
-    payload: bytes = b"\x92" + msgpack.packb(float(arrival)) + raw_body
-    return _RECORD.pack(len(payload), zlib.crc32(payload)) + payload
+    return _records(arrival, [raw_body])
+
+
+def _records(arrival: float, raw_bodies: list[bytes]) -> bytes:
+    """The records of bodies that arrived together: the head of their payload packed once."""
+    head = b"\x92" + msgpack.packb(float(arrival))
+    out = []
+    for raw in raw_bodies:
+        payload = head + raw
+        out.append(_RECORD.pack(len(payload), zlib.crc32(payload)))
+        out.append(payload)
+    return b"".join(out)
 
 
 class JournalWriter:
@@ -191,6 +201,10 @@ class JournalWriter:
 
     def append(self, arrival: float, raw_body: bytes) -> None:
         self._buf += journal_record(arrival, raw_body)
+
+    def append_all(self, arrival: float, raw_bodies: list[bytes]) -> None:
+        """`append` each body, in order (a block's messages all arrived at once)."""
+        self._buf += _records(arrival, raw_bodies)
 
     def flush(self) -> None:
         """Hand what was appended to the operating system: it survives the process dying."""
