@@ -263,15 +263,25 @@ def _parse_each(b, starts, values, ys, ids, nkeys, keypos, newrun, read, max_str
     return e
 
 
+@njit(cache=True, error_model="numpy")
+def _key_bytes(b, pos, k, out):  # type: ignore[no-untyped-def]
+    """Copy the key bytes (str headers and names; the values skipped) of an x map of k numeric
+    features whose first key is at pos into out; returns how many."""
+    n = 0
+    for _ in range(k):
+        start, length, after = _str(b, pos, len(b))
+        for i in range(pos, after):
+            out[n] = b[i]
+            n += 1
+        pos = after + 9
+    return n
+
+
 def _names_at(raw: bytes, pos: int, k: int) -> tuple[str, ...] | None:
     """The names of an x map of k numeric features whose first key is at pos (None when a name is
     twice or not UTF-8), remembered by their bytes (headers and names; the values skipped)."""
-    keys = bytearray()
-    for _ in range(k):
-        start, length = _span(raw, pos)
-        keys += raw[pos : start + length]
-        pos = start + length + 9
-    key = bytes(keys)
+    out = np.empty(len(raw), dtype=np.uint8)  # the key bytes are some of the body's
+    key = out[: _key_bytes(np.frombuffer(raw, dtype=np.uint8), pos, k, out)].tobytes()
     if key in _names:
         return _names[key]
     names: tuple[str, ...] | None
