@@ -126,6 +126,58 @@ def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     assert_state_is_the_replay_of_the_journal(tmp_path, learner)
 
 
+def test_a_failed_background_fsync_is_noticed_and_nothing_accepted_is_lost(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    """With fsync = "interval" the fsync runs beside the loop. When one fails, the records since the
+    last good one are not taken as safe: the outage begins, they are written again on recovery, and
+    the journal and the state come out as if nothing had happened."""
+    settings = loopback(tmp_path, http="127.0.0.1:0", fsync="interval", fsync_ms=1.0)
+    learner = LearnerSettings(scale_warmup=100)
+    running = RunningServer(settings, learner)
+    server = running.server
+    http = server.bound["http"]
+    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+    sent = [b for b in bodies(900, seed=8) if "x" in b and "y" in b]
+    first, during, after = sent[:300], sent[300:600], sent[600:]
+    for lo in range(0, len(first), 20):
+        for b in first[lo : lo + 20]:
+            client.send(b)
+        client.receive(len(first[lo : lo + 20]))
+    real_fsync = os.fsync
+    failing = {"on": True}
+
+    def fsync(fd: int) -> None:
+        if failing["on"]:
+            time.sleep(0.01)  # a slow disk, then the error: the loop goes on meanwhile
+            raise OSError(errno.EIO, "Input/output error (injected)")
+        real_fsync(fd)
+
+    monkeypatch.setattr(storage.os, "fsync", fsync)
+    with caplog.at_level(logging.ERROR, logger="oddsmill"):
+        for b in during:
+            client.send(b)
+        answers = client.receive(len(during))  # scoring goes on
+        assert all(topic == b"scores" for topic, _ in answers)
+        wait_for("the 503", lambda: health(http) == 503)
+        assert metric(http, "oddsmill_write_failures_total") == 1.0
+        failing["on"] = False
+        wait_for("recovery", lambda: health(http) == 200)
+    assert len([r for r in caplog.records if "cannot write the state directory" in r.getMessage()]) == 1
+    for b in after:
+        client.send(b)
+    client.receive(len(after))
+    client.close()
+    running.close()
+
+    import msgpack
+
+    records = journaled(tmp_path)
+    assert records[-len(sent) :] == [msgpack.packb(b) for b in sent]  # each once, in order
+    assert server.engine.learner.step == len(sent)
+    assert_state_is_the_replay_of_the_journal(tmp_path, learner)
+
+
 @pytest.fixture
 def small_disk(tmp_path: Path) -> Iterator[Path]:
     """A 600 KiB tmpfs: a disk that fills. Mounting needs root (CI runs as root here)."""

@@ -22,6 +22,7 @@ import re
 import struct
 import zlib
 from collections.abc import Iterator
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -178,8 +179,18 @@ def _records(arrival: float, raw_bodies: list[bytes]) -> bytes:
     return b"".join(out)
 
 
+# fsyncs started by `JournalWriter.sync_later` run here, one at a time: an fsync can take tens of
+# milliseconds, and the daemon's loop goes on meanwhile (os.fsync releases the interpreter)
+_SYNCER = ThreadPoolExecutor(max_workers=1, thread_name_prefix="oddsmill-fsync")
+
+
+def _fsync(fd: int) -> None:
+    os.fsync(fd)  # looked up when it runs (tests put a failing one in its place)
+
+
 class JournalWriter:
-    """Appends records to a segment; `flush` hands them to the operating system, `sync` to the disk.
+    """Appends records to a segment; `flush` hands them to the operating system, `sync` to the disk,
+    and `sync_later` to the disk in the background.
 
     The buffer is the writer's own (the file is opened unbuffered), so after a failed write it knows
     exactly which bytes reached the file, and `abandon` can drop the rest without writing it.
@@ -191,6 +202,8 @@ class JournalWriter:
         self._fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
         self._end = os.lseek(self._fd, 0, os.SEEK_END)  # bytes in the file
         self._buf = bytearray()
+        self._pending: Future[None] | None = None  # a background fsync, covering bytes up to:
+        self._pending_end = 0
         if new:  # the header goes to the file at once, so that tell() is an offset the file has
             self._buf += JOURNAL_MAGIC + struct.pack("<I", JOURNAL_VERSION)
             try:
@@ -219,9 +232,40 @@ class JournalWriter:
             del self._buf[:done]
 
     def sync(self) -> None:
-        """flush, then fsync: it survives the machine losing power."""
+        """flush, then fsync: it survives the machine losing power. Waits for a background fsync
+        first, and raises its error if it failed (a failed fsync is never followed by one that
+        could seem to succeed: the kernel may have dropped the pages the first one could not
+        write)."""
+        self._wait(raising=True)
         self.flush()
         os.fsync(self._fd)
+
+    def sync_later(self) -> bool:
+        """flush, then start an fsync in the background; False (and no fsync) while the last one
+        started has not been collected by `synced_to`."""
+        if self._pending is not None:
+            return False
+        self.flush()
+        self._pending_end = self._end
+        self._pending = _SYNCER.submit(_fsync, self._fd)
+        return True
+
+    def synced_to(self, wait: bool = False) -> int | None:
+        """When a background fsync has finished (or, with `wait`, once it has): the offset up to
+        which the segment is on disk. None when there is none to collect. Raises its OSError."""
+        job = self._pending
+        if job is None or not (wait or job.done()):
+            return None
+        self._pending = None
+        job.result()
+        return self._pending_end
+
+    def _wait(self, raising: bool) -> None:
+        try:
+            self.synced_to(wait=True)
+        except OSError:
+            if raising:
+                raise
 
     def tell(self) -> int:
         """The byte offset just past the last record appended."""
@@ -231,6 +275,7 @@ class JournalWriter:
         if self._fd < 0:
             return
         try:
+            self._wait(raising=True)
             self.flush()
         finally:
             os.close(self._fd)
@@ -238,6 +283,7 @@ class JournalWriter:
 
     def abandon(self) -> None:
         """Close after a failed write, dropping what is still buffered (it will be written again)."""
+        self._wait(raising=False)
         self._buf.clear()
         if self._fd < 0:
             return
