@@ -429,8 +429,9 @@ def test_the_http_port_is_on_loopback_by_default_and_changes_nothing(tmp_path: P
 def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_segment(
     tmp_path: Path, caplog: pytest.LogCaptureFixture
 ) -> None:
-    """With fsync = "os" a power cut can take the journal's tail that a checkpoint already covers.
-    Appending after the short end would put new records where the checkpoint's position points
+    """A journal cut shorter than a checkpoint's position (the daemon syncs the journal before each
+    checkpoint, so something else did it: a file system repaired after a crash, a copy of the
+    directory taken while it ran). Appending after the short end would put new records where the checkpoint's position points
     into, and the next restart from that checkpoint would read from the middle of one: the new
     records must go to a new segment, and a restart (kill -9: no checkpoint) must learn them all."""
     import msgpack
@@ -454,7 +455,7 @@ def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_se
     first.journal.close()
     (segment,) = list_journal(tmp_path)
     ends = [end for end, _, _ in read_journal(segment)]
-    with open(segment, "r+b") as f:  # the power cut: the last 5 of 12 blocks never reached the disk
+    with open(segment, "r+b") as f:  # the last 5 of 12 blocks are gone
         f.truncate(ends[7 * 25 - 1])
 
     with caplog.at_level(logging.WARNING, logger="oddsmill"):

@@ -352,10 +352,12 @@ class Server:
                     good = end
             size = last.stat().st_size
             if size < good:
-                # The checkpoint covers records this segment no longer holds (a power cut took a
-                # tail that fsync = "os" left unsynced). Appending here would put new records where
-                # the checkpoint's position points, and a restart from it would read from the middle
-                # of one: they go to a new segment, which a replay reads from its start.
+                # The checkpoint covers records this segment no longer holds. A checkpoint syncs the
+                # journal first, so the daemon never leaves it so; something else cut it (a file
+                # system repaired after a crash, a copy of the directory taken while it ran).
+                # Appending here would put new records where the checkpoint's position points, and
+                # a restart from it would read from the middle of one: they go to a new segment,
+                # which a replay reads from its start.
                 log.warning(
                     "%s ends at byte %d, before the checkpoint's position %d: the journal lost records the "
                     "checkpoint holds (they are not lost from the model); continuing in a new segment",
