@@ -431,9 +431,10 @@ def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_se
 ) -> None:
     """A journal cut shorter than a checkpoint's position (the daemon syncs the journal before each
     checkpoint, so something else did it: a file system repaired after a crash, a copy of the
-    directory taken while it ran). Appending after the short end would put new records where the checkpoint's position points
-    into, and the next restart from that checkpoint would read from the middle of one: the new
-    records must go to a new segment, and a restart (kill -9: no checkpoint) must learn them all."""
+    directory taken while it ran). Appending after the short end would put new records where the
+    checkpoint's position points into, and the next restart from that checkpoint would read from the
+    middle of one: the new records must go to a new segment, and a restart (kill -9: no checkpoint)
+    must learn them all."""
     import msgpack
     import zmq
     from oddsmill.server import Server
