@@ -23,6 +23,9 @@ def test_bench_measures_every_server_and_reports_ratios() -> None:
     lat = result["latency"]
     assert lat["floor"]["received"] == lat["oddsmill"]["received"] == 2 * 1000  # every score came back
     assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
+    # the servers' CPU over the load, from /proc (clock ticks of 10 ms: about 7 of them for the floor)
+    assert lat["floor"]["cpu_us_per_message"] > 0 and lat["oddsmill"]["cpu_us_per_message"] > 0
+    assert lat["cpu_ratio"] == lat["oddsmill"]["cpu_us_per_message"] / lat["floor"]["cpu_us_per_message"]
     print(json.dumps(result["throughput"], indent=1))
 
 

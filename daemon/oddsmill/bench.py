@@ -6,14 +6,14 @@ Three servers, each a process of its own, measured in turn under the same load:
 - the peer: the daemon a user would write by hand, with river's LogisticRegression, pyzmq, msgpack;
 - oddsmill itself, on the defaults.
 
-Throughput, in three shapes of traffic (one event a message with 20 named numeric features,
-batches of 500, columnar blocks of 500 rows): a producer process of its own pushes N events as fast
-as the server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the
-scores; events/s is the events over the time from the producer's start to the last score.
-Latency: one event a message at a fixed offered load, sent by a producer process of its own, from
-each send to its score at this process's subscriber (floor and oddsmill, alternated twice so drift
-falls on both). Peak memory is each server's VmHWM. The ratios are what to read: absolute figures
-drift on a shared machine.
+Throughput, in three shapes of traffic (one event a message with 20 named numeric features, batches
+of 500, columnar blocks of 500 rows): a producer process of its own pushes N events as fast as the
+server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the scores;
+events/s is the events over the time from the producer's start to the last score. Latency: one event
+a message at a fixed offered load, sent by a producer process of its own, from each send to its
+score at this process's subscriber (floor and oddsmill, alternated twice so drift falls on both),
+with the server's CPU time a message over that load (from /proc: every thread). Peak memory is each
+server's VmHWM. The ratios are what to read: absolute figures drift on a shared machine.
 
     oddsmill bench [--events N] [--rate R] [--seconds S] [--json]
     python -m oddsmill.bench ...     (from a checkout: PYTHONPATH=daemon:clients)
@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import socket
 import subprocess
 import sys
@@ -257,9 +258,15 @@ def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
     return {"events_per_s": n / (last - first), "peak_memory_mib": peak / 1024}
 
 
-def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
+def cpu_seconds(pid: int) -> float:
+    """User and system CPU time of a process so far, all its threads (ZeroMQ's I/O thread too)."""
+    fields = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def latency(kind: str, rate: float, seconds: float) -> tuple[np.ndarray, float]:
     """Send-to-score times of one-event messages at `rate`, over PUB/SUB: a producer process sends,
-    this process receives the scores."""
+    this process receives the scores. Also the server's CPU time over the load, a message."""
     server = Running(kind, "sub")
     ctx: zmq.Context[Any] = zmq.Context()
     sub = ctx.socket(zmq.SUB)
@@ -278,6 +285,7 @@ def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
         assert producer.stdin is not None and producer.stdout is not None
         if not sub.poll(60_000):  # a probe's score: the whole path is up
             raise RuntimeError(f"{kind}: no score for the latency producer's probes")
+        cpu_before = cpu_seconds(server.proc.pid)
         producer.stdin.write("go\n")  # (the probes' scores still in flight are skipped by their id)
         producer.stdin.flush()
         arrived = np.full(n, np.nan)
@@ -289,6 +297,7 @@ def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
             if isinstance(ident, int) and 0 <= ident < n:
                 arrived[ident] = now
                 got += 1
+        cpu = cpu_seconds(server.proc.pid) - cpu_before
         producer.stdout.readline()  # "done": the send times are written
         producer.wait(30)
         sent = np.load(times)
@@ -296,7 +305,7 @@ def latency(kind: str, rate: float, seconds: float) -> np.ndarray:
     ctx.term()
     server.stop()
     done = ~np.isnan(arrived)
-    return np.asarray(arrived[done] - sent[done])
+    return np.asarray(arrived[done] - sent[done]), cpu / n
 
 
 def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -> dict[str, Any]:
@@ -315,19 +324,24 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
         row["oddsmill_to_peer"] = row["oddsmill"]["events_per_s"] / row["peer"]["events_per_s"]
         result["throughput"][shape] = row
     runs: dict[str, list[np.ndarray]] = {"floor": [], "oddsmill": []}
+    cpus: dict[str, list[float]] = {"floor": [], "oddsmill": []}
     for _ in range(2):
         for kind in ("floor", "oddsmill"):
-            runs[kind].append(latency(kind, rate, seconds))
+            lat, cpu = latency(kind, rate, seconds)
+            runs[kind].append(lat)
+            cpus[kind].append(cpu)
     for kind, parts in runs.items():
         lat = np.concatenate(parts)
         result["latency"][kind] = {
             "received": int(lat.size),
             "median_ms": float(np.median(lat) * 1e3),
             "p99_ms": float(np.percentile(lat, 99) * 1e3),
+            "cpu_us_per_message": float(np.mean(cpus[kind]) * 1e6),
         }
     lat_r = result["latency"]
     lat_r["median_ratio"] = lat_r["oddsmill"]["median_ms"] / lat_r["floor"]["median_ms"]
     lat_r["p99_ratio"] = lat_r["oddsmill"]["p99_ms"] / lat_r["floor"]["p99_ms"]
+    lat_r["cpu_ratio"] = lat_r["oddsmill"]["cpu_us_per_message"] / lat_r["floor"]["cpu_us_per_message"]
     lat_r["offered_events_per_s"] = rate
     return result
 
@@ -358,10 +372,15 @@ def report(result: dict[str, Any], out: Any) -> None:
     for kind in ("floor", "oddsmill"):
         r = lat[kind]
         print(
-            f"  {kind:<9} received {r['received']:>7,}  median {r['median_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms",
+            f"  {kind:<9} received {r['received']:>7,}  median {r['median_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms"
+            f"  server CPU {r['cpu_us_per_message']:.0f} us a message",
             file=out,
         )
-    print(f"  oddsmill / floor: median {lat['median_ratio']:.2f}x, p99 {lat['p99_ratio']:.2f}x", file=out)
+    print(
+        f"  oddsmill / floor: median {lat['median_ratio']:.2f}x, p99 {lat['p99_ratio']:.2f}x,"
+        f" CPU a message {lat['cpu_ratio']:.2f}x",
+        file=out,
+    )
 
 
 def main(argv: list[str] | None = None) -> int:
