@@ -69,15 +69,69 @@ def assert_state_is_the_replay_of_the_journal(state: Path, learner: LearnerSetti
     assert saved["engine"]["metrics"]["sum"] == engine.metrics.sum
 
 
+def serving(settings: ServerSettings, learner: LearnerSettings) -> tuple[RunningServer, str, Client]:
+    """A daemon in a thread, its HTTP address, and a client connected to it."""
+    running = RunningServer(settings, learner)
+    server = running.server
+    return running, server.bound["http"], Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+
+
+def failing_fsync(monkeypatch: pytest.MonkeyPatch, delay: float = 0.0) -> dict[str, bool]:
+    """os.fsync fails (EIO, after `delay` s: a slow disk) while the returned switch is on."""
+    real_fsync = os.fsync
+    failing = {"on": True}
+
+    def fsync(fd: int) -> None:
+        if failing["on"]:
+            time.sleep(delay)
+            raise OSError(errno.EIO, "Input/output error (injected)")
+        real_fsync(fd)
+
+    monkeypatch.setattr(storage.os, "fsync", fsync)
+    return failing
+
+
+def send_through_an_outage(client: Client, http: str, during: list[dict[str, Any]]) -> None:
+    """Send while fsync fails: every message is still scored, and the outage shows (503, counted)."""
+    for b in during:
+        client.send(b)
+    answers = client.receive(len(during))  # scoring goes on
+    assert all(topic == b"scores" for topic, _ in answers)
+    wait_for("the 503", lambda: health(http) == 503)
+    assert metric(http, "oddsmill_state_writable") == 0.0
+    assert metric(http, "oddsmill_write_failures_total") == 1.0
+
+
+def finish_and_check_the_journal(
+    running: RunningServer,
+    client: Client,
+    after: list[dict[str, Any]],
+    sent: list[dict[str, Any]],
+    learner: LearnerSettings,
+) -> list[bytes]:
+    """Send what follows the outage and stop; every accepted message is in the journal exactly
+    once, in order, and the checkpoint is the replay of the journal. Returns the journal's bodies."""
+    import msgpack
+
+    for b in after:
+        client.send(b)
+    client.receive(len(after))
+    client.close()
+    running.close()
+    state = running.server.settings.state_dir
+    records = journaled(state)
+    assert records[-len(sent) :] == [msgpack.packb(b) for b in sent]
+    assert_state_is_the_replay_of_the_journal(state, learner)
+    return records
+
+
 def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
 ) -> None:
     settings = loopback(tmp_path, http="127.0.0.1:0", fsync="block")
     learner = LearnerSettings(scale_warmup=100)
-    running = RunningServer(settings, learner)
+    running, http, client = serving(settings, learner)
     server = running.server
-    http = server.bound["http"]
-    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
     sent = [b for b in bodies(900, seed=7) if "x" in b and "y" in b]  # training events: one score each
     first, during, after = sent[:300], sent[300:600], sent[600:]
 
@@ -86,23 +140,9 @@ def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     client.receive(len(first))
     step_before = server.engine.learner.step
 
-    real_fsync = os.fsync
-    failing = {"on": True}
-
-    def fsync(fd: int) -> None:
-        if failing["on"]:
-            raise OSError(errno.EIO, "Input/output error (injected)")
-        real_fsync(fd)
-
-    monkeypatch.setattr(storage.os, "fsync", fsync)
+    failing = failing_fsync(monkeypatch)
     with caplog.at_level(logging.ERROR, logger="oddsmill"):
-        for b in during:
-            client.send(b)
-        answers = client.receive(len(during))  # scoring goes on
-        assert all(topic == b"scores" for topic, _ in answers)
-        wait_for("the 503", lambda: health(http) == 503)
-        assert metric(http, "oddsmill_state_writable") == 0.0
-        assert metric(http, "oddsmill_write_failures_total") == 1.0
+        send_through_an_outage(client, http, during)
         assert server.engine.learner.step == step_before  # learning paused
         wait_for(f"the held count {len(server.held)}", lambda: metric(http, "oddsmill_outage_held") == len(during))
         failing["on"] = False  # the disk answers again: the daemon notices by itself
@@ -110,20 +150,11 @@ def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     outage_logs = [r for r in caplog.records if "cannot write the state directory" in r.getMessage()]
     assert len(outage_logs) == 1, "an outage is logged once, not once per retry"
     assert metric(http, "oddsmill_state_writable") == 1.0
-    for b in after:
-        client.send(b)
-    client.receive(len(after))
-    client.close()
-    running.close()
-
-    # every accepted message is in the journal exactly once, in order (after the handshake probes)
     import msgpack
 
-    records = journaled(tmp_path)
-    assert records[-len(sent) :] == [msgpack.packb(b) for b in sent]
-    assert all(msgpack.unpackb(r) == {"x": {"probe": 1.0}} for r in records[: -len(sent)])
+    records = finish_and_check_the_journal(running, client, after, sent, learner)
+    assert all(msgpack.unpackb(r) == {"x": {"probe": 1.0}} for r in records[: -len(sent)])  # the handshake's
     assert server.engine.learner.step == step_before + len(during) + len(after)
-    assert_state_is_the_replay_of_the_journal(tmp_path, learner)
 
 
 def test_a_failed_background_fsync_is_noticed_and_nothing_accepted_is_lost(
@@ -134,48 +165,22 @@ def test_a_failed_background_fsync_is_noticed_and_nothing_accepted_is_lost(
     the journal and the state come out as if nothing had happened."""
     settings = loopback(tmp_path, http="127.0.0.1:0", fsync="interval", fsync_ms=1.0)
     learner = LearnerSettings(scale_warmup=100)
-    running = RunningServer(settings, learner)
+    running, http, client = serving(settings, learner)
     server = running.server
-    http = server.bound["http"]
-    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
     sent = [b for b in bodies(900, seed=8) if "x" in b and "y" in b]
     first, during, after = sent[:300], sent[300:600], sent[600:]
     for lo in range(0, len(first), 20):
         for b in first[lo : lo + 20]:
             client.send(b)
         client.receive(len(first[lo : lo + 20]))
-    real_fsync = os.fsync
-    failing = {"on": True}
-
-    def fsync(fd: int) -> None:
-        if failing["on"]:
-            time.sleep(0.01)  # a slow disk, then the error: the loop goes on meanwhile
-            raise OSError(errno.EIO, "Input/output error (injected)")
-        real_fsync(fd)
-
-    monkeypatch.setattr(storage.os, "fsync", fsync)
+    failing = failing_fsync(monkeypatch, delay=0.01)  # a slow disk, then the error: the loop goes on
     with caplog.at_level(logging.ERROR, logger="oddsmill"):
-        for b in during:
-            client.send(b)
-        answers = client.receive(len(during))  # scoring goes on
-        assert all(topic == b"scores" for topic, _ in answers)
-        wait_for("the 503", lambda: health(http) == 503)
-        assert metric(http, "oddsmill_write_failures_total") == 1.0
+        send_through_an_outage(client, http, during)
         failing["on"] = False
         wait_for("recovery", lambda: health(http) == 200)
     assert len([r for r in caplog.records if "cannot write the state directory" in r.getMessage()]) == 1
-    for b in after:
-        client.send(b)
-    client.receive(len(after))
-    client.close()
-    running.close()
-
-    import msgpack
-
-    records = journaled(tmp_path)
-    assert records[-len(sent) :] == [msgpack.packb(b) for b in sent]  # each once, in order
+    finish_and_check_the_journal(running, client, after, sent, learner)
     assert server.engine.learner.step == len(sent)
-    assert_state_is_the_replay_of_the_journal(tmp_path, learner)
 
 
 @pytest.fixture
@@ -200,10 +205,8 @@ def test_a_full_disk_pauses_learning_and_resumes_when_space_returns(small_disk: 
     state = small_disk / "state"
     settings = loopback(state, http="127.0.0.1:0", fsync="interval", fsync_ms=50.0, checkpoint_events=2000)
     learner = LearnerSettings(scale_warmup=100)
-    running = RunningServer(settings, learner)
+    running, http, client = serving(settings, learner)
     server = running.server
-    http = server.bound["http"]
-    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
     sent = [b for b in bodies(12_000, seed=8) if "x" in b and "y" in b]
     batches = [sent[lo : lo + 100] for lo in range(0, len(sent), 100)]
     full_at = None
