@@ -71,6 +71,56 @@ def test_bad_input_names_file_and_line_and_exits_2(tmp_path: Path, capsys) -> No
     assert code == 2 and f"{log}:2" in err and "not JSON" in err
 
 
+def test_a_feature_the_learner_refuses_stops_a_file_at_its_line(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A value out of the learner's range, a NaN (JSON Lines as Python writes them) or two features
+    of one name are refused by the encoding, after decoding: a file stops there too, naming the line
+    (before, `replay` counted them as rejected and `fit` dropped them without a word)."""
+    bad = [
+        '{"x": {"route_km": 1e40}, "y": 0}',
+        '{"x": {"route_km": NaN}, "y": 0}',
+        '{"x": {"depot": "a=b", "depot=a": "b"}, "y": 0}',
+    ]
+    for line in bad:
+        log = tmp_path / "bad.jsonl"
+        log.write_text('{"x": {"route_km": 1.5}, "y": 1}\n{"x": {"route_km": 2.5}, "y": 0}\n' + line + "\n")
+        for argv in (["replay", str(log), "--state", str(tmp_path / "s")], ["fit", str(log)]):
+            code, _, err = run(argv, capsys)
+            assert code == 2 and f"{log}:3" in err, (argv, line, err)
+            assert ("bad_features" in err or "non_finite" in err) and len(err.strip().splitlines()) == 1
+        assert not (tmp_path / "s").exists()  # nothing written
+
+
+def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A journal holds what a daemon received, the messages it refused included: replaying it (or
+    warming up from it) counts them again, as the daemon did, and learns the rest."""
+    import msgpack
+    import zmq
+    from oddsmill.server import Server, ServerSettings
+
+    bodies = [
+        {"x": {"route_km": 1.0}, "y": 1},
+        {"x": {"route_km": 2.0}, "y": 7},  # bad_label (decoding)
+        {"x": {"route_km": 1e40}, "y": 0},  # bad_features (encoding)
+        {"id": "P-9", "y": 1},  # unknown_outcome (the stream)
+        {"x": {"route_km": 3.0}, "y": 0},
+    ]
+    ctx: zmq.Context[object] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://journal-with-refusals")
+    server = Server(ServerSettings(state_dir=tmp_path / "live", http="off"))
+    server.handle([[b"events", msgpack.packb(b)] for b in bodies], pub)
+    server.journal.close()
+    pub.close(0)
+    ctx.term()
+    live = server.engine.counters.rejected
+    assert live == {"bad_label": 1, "bad_features": 1, "unknown_outcome": 1}
+    code, out, err = run(["replay", str(tmp_path / "live"), "--state", str(tmp_path / "s")], capsys)
+    assert code == 0, err
+    assert "rejected 3: bad_features 1, bad_label 1, unknown_outcome 1" in out
+    code, out, _ = run(["inspect", str(tmp_path / "s"), "--json"], capsys)
+    assert json.loads(out)["step"] == server.engine.learner.step == 2
+
+
 @pytest.mark.parametrize(
     "argv,needle",
     [

@@ -121,6 +121,9 @@ class Plan:
             self._segments = self.block.segments()
         return self._segments
 
+    def rejections(self) -> list[tuple[int, Rejection]]:
+        return [(n, r) for n, r in self.results if isinstance(r, Rejection)]
+
     def labels(self) -> tuple[np.ndarray, np.ndarray]:
         """(op, y) of every event of the block, in order."""
         parts = self.segments()
@@ -156,10 +159,12 @@ class Engine:
         assert out is not None
         return out
 
-    def learn(self, items: list[tuple[float, Item]]) -> None:
-        """`process` without the answers: for replays, which publish nothing."""
+    def learn(self, items: list[tuple[float, Item]]) -> list[tuple[int, Rejection]]:
+        """`process` without the answers: for replays, which publish nothing. Returns the block's
+        rejections (index of the item, rejection), so that a replay can name a bad line."""
         plan = self.prepare(items)
         self.finish(plan, plan.holds, plan.joins, publish=False)
+        return plan.rejections()
 
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:
         """Everything of a block but the kernel: sequence checks, encoding, the pending store and

@@ -54,6 +54,12 @@ def _jsonl(path: Path) -> Iterator[tuple[float, Any, str]]:
         raise InputFileError(str(path), None, f"cannot read ({e})") from None
 
 
+def is_journal_record(where: str) -> bool:
+    """Whether a `where` of `read_bodies` is a journal record's "segment@offset" (what a daemon
+    received, as it received it), not a "file:line" of JSON Lines."""
+    return where.rpartition("@")[2].isdigit()
+
+
 def _journal(path: Path) -> Iterator[tuple[float, Any, str]]:
     try:
         for offset, arrival, body in read_journal(path):

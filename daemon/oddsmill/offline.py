@@ -16,10 +16,10 @@ import numpy as np
 
 from . import kernel as K
 from .encoding import Block, Rows
-from .engine import Engine
+from .engine import Engine, Rejection
 from .errors import InputFileError, ProtocolError
 from .learner import Learner
-from .logs import read_bodies
+from .logs import is_journal_record, read_bodies
 from .progressive import ProgressiveMetrics
 from .protocol import Item, decode_body
 from .reference import FitResult, newton_fit
@@ -40,47 +40,61 @@ class ReplayReport:
     seconds: float
 
 
-def read_items(paths: list[str]) -> Iterator[tuple[float, Item]]:
-    """Decoded items of every body of `paths`, in order. A malformed body raises InputFileError
-    naming its file and line."""
+def read_items(paths: list[str]) -> Iterator[tuple[float, Item, str | None]]:
+    """Decoded items of every body of `paths`, in order, each with the "file:line" it came from (None
+    for a journal record). A malformed line of a file raises InputFileError naming its file and
+    line; a journal holds what a daemon received, malformed messages included, and its records are
+    rejected and counted again as the daemon did (a warm start from a live daemon's journal must
+    not stop at the first message it refused)."""
     for arrival, body, where in read_bodies(paths):
+        line = None if is_journal_record(where) else where
         for item in decode_body(body):
-            if isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
-                path, _, line = where.rpartition(":")
-                raise InputFileError(
-                    path or where,
-                    int(line) if line.isdigit() else None,
-                    f"{item.reason}: {item.detail}",
-                )
-            yield arrival, item
+            if line is not None and isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
+                raise _bad_line(line, item.reason, item.detail)
+            yield arrival, item, line
+
+
+def _bad_line(where: str, reason: str, detail: str) -> InputFileError:
+    path, _, line = where.rpartition(":")
+    return InputFileError(path or where, int(line) if line.isdigit() else None, f"{reason}: {detail}")
 
 
 class Processor(Protocol):
-    """An engine, a race, or a server: anything that learns blocks of items."""
+    """An engine, a race, or a server: anything that learns blocks of items (and returns the
+    rejections, by the index of the item)."""
 
-    def learn(self, items: list[tuple[float, Item]]) -> None: ...
+    def learn(self, items: list[tuple[float, Item]]) -> list[tuple[int, Rejection]]: ...
 
 
 def run_logs(
     engine: Processor,
-    items: Iterable[tuple[float, Item]],
+    items: Iterable[tuple[float, Item, str | None]],
     progress: Callable[[int], None] | None = None,
 ) -> int:
-    """Feed items through `engine` in blocks; returns their number."""
+    """Feed items (arrival, item, the "file:line" it came from or None) through `engine` in blocks;
+    returns their number. An event of a file that the learner refuses (a feature value it cannot
+    take, two features of one name) raises InputFileError naming the line, as a malformed line
+    does; what it learned before is left for the caller to drop."""
     batch: list[tuple[float, Any]] = []
+    lines: list[str | None] = []
     count = 0
 
     def flush() -> None:
         nonlocal count
         if batch:
-            engine.learn(batch)
+            for n, r in engine.learn(batch):
+                line = lines[n]
+                if line is not None and r.reason not in STREAM_REASONS:
+                    raise _bad_line(line, r.reason, r.detail)
             count += len(batch)
             batch.clear()
+            lines.clear()
             if progress:
                 progress(count)
 
-    for pair in items:
-        batch.append(pair)
+    for arrival, item, line in items:
+        batch.append((arrival, item))
+        lines.append(line)
         if len(batch) >= BLOCK_ITEMS:
             flush()
     flush()

@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from .engine import Engine, Plan, Result
+from .engine import Engine, Plan, Rejection, Result
 from .errors import ConfigError
 from .learner import Learner
 from .protocol import Item
@@ -121,17 +121,20 @@ class Race:
     def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Every candidate runs the block; the serving one's results are returned (to publish).
         The block is prepared (checked and encoded) once, by the first candidate's engine."""
-        served = self._block(items, publish=True)
+        served = self._block(self.engines[0].prepare(items), publish=True)
         assert served is not None
         return served
 
-    def learn(self, items: list[tuple[float, Item]]) -> None:
-        """`process` without the answers: for replays, which publish nothing."""
-        self._block(items, publish=False)
+    def learn(self, items: list[tuple[float, Item]]) -> list[tuple[int, Rejection]]:
+        """`process` without the answers: for replays, which publish nothing. Returns the block's
+        rejections (the candidates share them: the block is prepared once)."""
+        plan = self.engines[0].prepare(items)
+        self._block(plan, publish=False)
+        return plan.rejections()
 
-    def _block(self, items: list[tuple[float, Item]], publish: bool) -> list[tuple[int, Result]] | None:
+    def _block(self, plan: Plan, publish: bool) -> list[tuple[int, Result]] | None:
+        """The candidates take a block the first one prepared: each runs and settles it."""
         lead = self.engines[0]
-        plan = lead.prepare(items)
         mirrored = [(plan.holds, plan.joins)] + [e.follow(plan, lead) for e in self.engines[1:]]
         logits = self._run(plan)
         served: list[tuple[int, Result]] | None = None

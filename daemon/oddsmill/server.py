@@ -299,13 +299,13 @@ class Server:
         self.engine = self.race.engine  # the serving candidate may have changed
         return results
 
-    def learn(self, items: list[tuple[float, Item]]) -> None:
-        """`process` without the answers (replays publish nothing)."""
+    def learn(self, items: list[tuple[float, Item]]) -> list[tuple[int, Rejection]]:
+        """`process` without the answers (replays publish nothing); the block's rejections."""
         if self.race is None:
-            self.engine.learn(items)
-        else:
-            self.race.learn(items)
-            self.engine = self.race.engine
+            return self.engine.learn(items)
+        rejected = self.race.learn(items)
+        self.engine = self.race.engine
+        return rejected
 
     def _replay_journal(self, position: dict[str, Any] | None) -> None:
         """Learn the journal records after the checkpoint's position, in blocks, publishing nothing."""
