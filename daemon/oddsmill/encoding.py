@@ -78,10 +78,8 @@ def encode_features(
             if set(map(type, present)) == FLOATS:
                 total = sum(present)
                 if total - total == 0.0:
-                    sizes = list(map(abs, present))
-                    if max(sizes) <= VALUE_MAX and (
-                        min(sizes) >= VALUE_MIN or all(a == 0.0 or a >= VALUE_MIN for a in sizes)
-                    ):
+                    sizes = list(map(abs, present))  # (zeros are dropped by filter: they are in range)
+                    if max(sizes) <= VALUE_MAX and min(filter(None, sizes), default=VALUE_MIN) >= VALUE_MIN:
                         return list(known), present, []
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
