@@ -118,7 +118,7 @@ def _event_at(b, pos, n, e, used, values, ys, ids, nkeys, keypos, scratch, as_fl
         ks, kl, pos = _str(b, pos, n)
         if kl < 0:
             return False, pos, used
-        if _is(b, ks, kl, 105, 100) and ids[e] < 0:  # "id": skipped here, read by msgpack later
+        if _is(b, ks, kl, 105, 100) and ids[e] < 0:  # "id": skipped here, read by `_ids` later
             ids[e] = pos
             pos = _int_or_str(b, pos, n, max_str)
             if pos < 0:
@@ -277,11 +277,11 @@ def _key_bytes(b, pos, k, out):  # type: ignore[no-untyped-def]
     return n
 
 
-def _names_at(raw: bytes, pos: int, k: int) -> tuple[str, ...] | None:
-    """The names of an x map of k numeric features whose first key is at pos (None when a name is
-    twice or not UTF-8), remembered by their bytes (headers and names; the values skipped)."""
-    out = np.empty(len(raw), dtype=np.uint8)  # the key bytes are some of the body's
-    key = out[: _key_bytes(np.frombuffer(raw, dtype=np.uint8), pos, k, out)].tobytes()
+def _names_at(b: np.ndarray, pos: int, k: int, out: np.ndarray) -> tuple[str, ...] | None:
+    """The names of an x map of k numeric features whose first key is at pos of the body b (None
+    when a name is twice or not UTF-8), remembered by their bytes (headers and names; the values
+    skipped), which are copied into out (as long as b: the key bytes are some of the body's)."""
+    key = out[: _key_bytes(b, pos, k, out)].tobytes()
     if key in _names:
         return _names[key]
     names: tuple[str, ...] | None
@@ -356,13 +356,15 @@ def _runs(
     newrun: np.ndarray,
 ) -> list[Columns | None]:
     """The `count` events read into these arrays as blocks, one a run of the same names (None for
-    a run whose names are not usable, a name twice or not UTF-8, or with an id msgpack refuses)."""
+    a run whose names are not usable, a name twice or not UTF-8, or with an id that is not UTF-8)."""
     firsts = np.flatnonzero(newrun[:count]).tolist()
     blocks: list[Columns | None] = []
+    body = np.frombuffer(buf, dtype=np.uint8)
+    key = np.empty(len(buf), dtype=np.uint8)  # one buffer for every run's key bytes
     at = 0  # the first value of the run
     for e, end in zip(firsts, firsts[1:] + [count], strict=True):
         k = int(nkeys[e])
-        names = _names_at(buf, int(keypos[e]), k)
+        names = _names_at(body, int(keypos[e]), k, key)
         rows = end - e
         block = values[at : at + rows * k].reshape(rows, k).copy()
         at += rows * k
