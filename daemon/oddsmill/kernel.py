@@ -61,8 +61,9 @@ from numba import njit
     P_SCALING,
     P_WARMUP,
     P_MAX_CENTRED,
-) = range(11)
-N_PARAMS = 11
+    P_QUIET_RUNS,
+) = range(12)
+N_PARAMS = 12
 # scalar state
 S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS = range(12)
 N_SCALARS = 12
@@ -83,6 +84,7 @@ WS_FLOOR = 1e-3  # fold the scale in: the u + A v sums then lose at most ~3 digi
 CONSTANT_RTOL = 1e-9  # a feature whose sd is below this fraction of its mean is constant so far
 CENTRE_PERIOD = 1024  # centres follow their running means, brought up to date this often (steps)
 CENTRE_MIN_SHARE = 0.01  # centred only if present in at least this share of its warm-up window
+QUIET_MIN_EVENTS = 4  # events of a block sharing their slots go to _quiet_run from this many on
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -453,14 +455,182 @@ def _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op, y, w, dx, ada):  # typ
     return z
 
 
+@njit(cache=True, error_model="numpy")
+def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type: ignore[no-untyped-def]
+    """Events e0, e0 + 1, ... of rows that share their slots (row e has the values rows[e] at
+    `slots`, weight w[e]), run on copies of their slots' state in small dense arrays for as long
+    as the steps are quiet: a global schedule, every slot of the row past its warm-up (seen, and
+    centred or with its statistics frozen), no warm-up window ending, no centre update, no fold of
+    the weight scale. Each step is then the arithmetic of `_event` and `_learn_one` when nothing
+    changes coordinates, with the same expressions in the same order (the logit sums the centred
+    set, then the row's other slots in row order), so the state is bit-identical. The slots must be
+    distinct, as encoding makes them. Returns the first event not run; the caller runs that one
+    with `_event`, which may change coordinates, and comes back."""
+    m, k = rows.shape
+    if prm[P_SCHED] == SCH_ADAGRAD or e0 >= m:
+        return e0
+    scaling = prm[P_SCALING] != 0.0
+    ncent = int(sc[S_NCENT]) if scaling else 0
+    t = sc[S_T]
+    l2 = prm[P_L2]
+    ws = sc[S_WS]
+    # The first step at which a learned event is not quiet: a warm-up window ends (the queue is in
+    # order of first steps, and no slot joins it during the run) or the centres are brought up to
+    # date (every CENTRE_PERIOD steps).
+    t_lim = np.inf
+    if scaling:
+        for c in range(k):
+            j = slots[c]
+            if not (fl[j] & F_SEEN) or (not (fl[j] & F_CENTERED) and sl[j, R_COUNT] < prm[P_WARMUP]):
+                return e0
+        if sc[S_QHEAD] < sc[S_QLEN]:
+            t_lim = sl[wq[int(sc[S_QHEAD])], R_FIRST] + prm[P_WARMUP]
+        if ncent > 0:
+            t_lim = min(t_lim, float(CENTRE_PERIOD * math.ceil(t / CENTRE_PERIOD)))
+    if op[e0] != OP_SCORE and (t >= t_lim or ws * (1.0 - _global_rate(prm, t) * l2) < WS_FLOOR):
+        return e0
+    # The coordinates: the centred set in its order, then the row's other slots in row order.
+    # col[a] is coordinate a's column in the row (-1: a centred slot absent from it, value 0).
+    jj = np.empty(ncent + k, np.int64)
+    col = np.full(ncent + k, -1, np.int64)
+    cen = np.zeros(ncent + k)
+    scl = np.empty(ncent + k)
+    v = np.empty(ncent + k)
+    u = np.empty(ncent + k)
+    xs = np.empty(ncent + k)
+    xr = np.empty(ncent + k)
+    ta = np.empty(ncent + k)
+    tc = np.empty(ncent + k)
+    jj[:ncent] = cl[:ncent]
+    n = ncent  # coordinates in use
+    for c in range(k):
+        j = slots[c]
+        if fl[j] & F_CENTERED:
+            col[int(sl[j, R_DPOS])] = c
+        else:
+            jj[n] = j
+            col[n] = c
+            n += 1
+    for a in range(n):
+        j = jj[a]
+        if fl[j] & F_CENTERED:
+            cen[a] = sl[j, R_MEAN]  # (x - 0.0) is x exactly, so the other slots share the formula
+        scl[a] = sl[j, R_SCALE]
+        v[a] = sl[j, R_V]
+        u[a] = sl[j, R_U]
+    sums = np.empty(k)
+    for c in range(k):
+        sums[c] = sl[slots[c], R_SUM]
+    b, a_sum, sb, navg = sc[S_B], sc[S_A], sc[S_SB], sc[S_NAVG]
+    avg_on = prm[P_AVG] != 0.0
+    eta = ws_next = 0.0
+    e = e0
+    while e < m:
+        o = op[e]
+        if o != OP_SCORE:
+            if t >= t_lim:
+                break
+            eta = _global_rate(prm, t)
+            ws_next = ws * (1.0 - eta * l2)
+            if ws_next < WS_FLOOR:
+                break
+        # Each loop below is elementwise over the coordinates (so it is compiled to vector
+        # instructions) except the two sums, which keep their order.
+        for a in range(n):
+            xr[a] = rows[e, col[a]] if col[a] >= 0 else 0.0
+        for a in range(n):
+            xs[a] = (xr[a] - cen[a]) / scl[a]
+        for a in range(n):
+            tc[a] = ws * v[a] * xs[a]
+        zc = b
+        if avg_on and navg > 0.0:  # the published logit is the averaged one
+            for a in range(n):
+                ta[a] = (u[a] + a_sum * v[a]) / navg * xs[a]
+            za = sb / navg
+            for a in range(n):  # one loop, so that the two chains of additions overlap
+                za += ta[a]
+                zc += tc[a]
+            out[e] = za if o != OP_LEARN else np.nan
+        else:
+            for a in range(n):
+                zc += tc[a]
+            out[e] = zc if o != OP_LEARN else np.nan
+        e += 1
+        if o == OP_SCORE:
+            continue
+        g = w[e - 1] * (y[e - 1] - sigmoid(zc))
+        ws = ws_next
+        for a in range(n):
+            d = eta * g * xs[a] / ws
+            v[a] += d
+            u[a] -= a_sum * d
+        b += eta * g
+        if avg_on and t >= prm[P_AVG_START]:
+            a_sum += ws
+            sb += b
+            navg += 1.0
+        if scaling:
+            for c in range(k):
+                sums[c] += rows[e - 1, c]
+        t += 1.0
+    for a in range(n):
+        sl[jj[a], R_V] = v[a]
+        sl[jj[a], R_U] = u[a]
+    for c in range(k):
+        sl[slots[c], R_SUM] = sums[c]
+    sc[S_T], sc[S_WS], sc[S_B], sc[S_A], sc[S_SB], sc[S_NAVG] = t, ws, b, a_sum, sb, navg
+    return e
+
+
+@njit(cache=True, error_model="numpy")
+def _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, dx, ada):  # type: ignore[no-untyped-def]
+    """Events that share their slots, in order: quiet runs in `_quiet_run`, the others (warm-ups,
+    centre updates, folds) one at a time in `_event`."""
+    quiet = prm[P_QUIET_RUNS] != 0.0 and not ada
+    k = slots.shape[0]
+    e = 0
+    while e < rows.shape[0]:
+        if quiet:
+            e = _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e)
+            if e >= rows.shape[0]:
+                break
+        out[e] = _event(prm, sc, sl, fl, cl, wq, slots, rows[e], 0, k, op[e], y[e], w[e], dx, ada)
+        e += 1
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _same_slots(idx, lo, at, k):  # type: ignore[no-untyped-def]
+    for i in range(k):
+        if idx[at + i] != idx[lo + i]:
+            return False
+    return True
+
+
 @njit(cache=True, error_model="numpy", nogil=True)
 def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
     """Run a block in order. `out[e]` gets the published logit of SCORE and TRAIN events (scored
-    with the state before the event is learned: progressive validation) and NaN for LEARN ones."""
+    with the state before the event is learned: progressive validation) and NaN for LEARN ones.
+    Consecutive events with the same slots in the same order (QUIET_MIN_EVENTS or more) run as the
+    rows of a columnar block do."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    for e in range(ptr.shape[0] - 1):
-        out[e] = _event(prm, sc, sl, fl, cl, wq, idx, val, ptr[e], ptr[e + 1], op[e], y[e], w[e], dx, ada)
+    look = prm[P_QUIET_RUNS] != 0.0 and not ada
+    n_ev = ptr.shape[0] - 1
+    e = 0
+    while e < n_ev:
+        lo, hi = ptr[e], ptr[e + 1]
+        k = hi - lo
+        r = e + 1
+        if look:
+            while r < n_ev and ptr[r + 1] - ptr[r] == k and _same_slots(idx, lo, ptr[r], k):
+                r += 1
+        if r - e >= QUIET_MIN_EVENTS and k > 0:
+            rows = val[lo : ptr[r]].reshape((r - e, k))
+            _shared_rows(prm, sc, sl, fl, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, ada)
+            e = r
+            continue
+        out[e] = _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, ada)
+        e += 1
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
@@ -470,6 +640,4 @@ def learn_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, out):  # type: ignor
     no index array a row to build."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    k = slots.shape[0]
-    for e in range(rows.shape[0]):
-        out[e] = _event(prm, sc, sl, fl, cl, wq, slots, rows[e], 0, k, op[e], y[e], 1.0, dx, ada)
+    _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, ada)
