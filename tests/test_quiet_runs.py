@@ -31,7 +31,9 @@ SHAPES = [
 SCALE = {"route_km": (40.0, 15.0), "weight_g": (1500.0, 900.0), "stops_before": (8.0, 5.0)}
 
 
-def stream(n: int, seed: int, rows_share: float) -> list[tuple[str, tuple[str, ...], np.ndarray, np.ndarray, np.ndarray, np.ndarray]]:
+def stream(
+    n: int, seed: int, rows_share: float
+) -> list[tuple[str, tuple[str, ...], np.ndarray, np.ndarray, np.ndarray, np.ndarray]]:
     """Runs of 1 to 40 events with one name set: (kind, names, values m x k, op, y, w). A run is
     sent as columnar rows (weight 1, no LEARN) or as CSR events."""
     rnd = random.Random(seed)
@@ -142,7 +144,16 @@ def settled(s: LearnerSettings, steps: int) -> tuple[Learner, np.ndarray]:
     slots = np.array(lr.encode({"route_km": 1.0, "weight_g": 1.0, "stops_before": 1.0})[0], dtype=np.int64)
     lr._prm[K.P_QUIET_RUNS] = 0.0
     rng = np.random.default_rng(1)
-    lr.run_segments([Rows(slots, rng.normal(size=(steps, 3)) * 10 + 30, np.full(steps, K.OP_TRAIN, np.int8), (rng.random(steps) < 0.4) * 1.0)])
+    lr.run_segments(
+        [
+            Rows(
+                slots,
+                rng.normal(size=(steps, 3)) * 10 + 30,
+                np.full(steps, K.OP_TRAIN, np.int8),
+                (rng.random(steps) < 0.4) * 1.0,
+            )
+        ]
+    )
     lr._prm[K.P_QUIET_RUNS] = 1.0
     return lr, slots
 
@@ -153,7 +164,9 @@ def quiet_steps(lr: Learner, slots: np.ndarray, m: int) -> int:
     rows = rng.normal(size=(m, slots.shape[0])) * 10 + 30
     op = np.full(m, K.OP_TRAIN, np.int8)
     y = (rng.random(m) < 0.4) * 1.0
-    return int(K._quiet_run(lr._prm, lr._sc, lr._sl, lr._fl, lr._cl, lr._wq, slots, rows, op, y, np.ones(m), np.empty(m), 0))
+    return int(
+        K._quiet_run(lr._prm, lr._sc, lr._sl, lr._fl, lr._cl, lr._wq, slots, rows, op, y, np.ones(m), np.empty(m), 0)
+    )
 
 
 def test_a_quiet_run_stops_at_the_next_centre_update() -> None:
@@ -201,7 +214,19 @@ def test_quiet_runs_equal_the_dense_oracle() -> None:
     """The dense, step-by-step oracle (tests/oracle.py, written from PROTOCOL 5 without the
     kernel's lazy scale or u + A v sums) on a columnar stream that is mostly quiet runs."""
     s = LearnerSettings(schedule="power", eta0=0.5, l2=1e-3, average=True, average_start=100, scale_warmup=100)
-    orc = Oracle(s.schedule, s.eta0, s.l2, s.decay_a, s.power, s.adagrad_delta, s.average, s.average_start, True, s.scale_warmup, s.max_centred)
+    orc = Oracle(
+        s.schedule,
+        s.eta0,
+        s.l2,
+        s.decay_a,
+        s.power,
+        s.adagrad_delta,
+        s.average,
+        s.average_start,
+        True,
+        s.scale_warmup,
+        s.max_centred,
+    )
     lr = Learner(s)
     names = ("route_km", "weight_g", "stops_before")
     slots = np.array(lr.encode({name: 1.0 for name in names})[0], dtype=np.int64)
