@@ -55,6 +55,7 @@ RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them rea
 RATE_SECONDS = 1.0  # events/s is sampled this often for the dashboard
 REPLAY_BLOCK = 4096
 EVENT_MAPS = (b"\x82", b"\x83")  # the first byte of a body that may be one numeric training event
+EVENT_KEYS = (b"\xa1x", b"\xa1y", b"\xa2i")  # and the start of its first key: "x", "y" or "id"
 RETRY_SECONDS = 1.0  # while the state directory cannot be written, try again this often
 
 
@@ -747,10 +748,14 @@ class Server:
 
 
 def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns | None]]:
-    """fastpath.read_each over the messages that may be one numeric training event (a body that
-    is a map of two entries, or three with an id); when there are fewer than SINGLES_TOGETHER of them the full path is
-    quicker, and nothing is read."""
-    candidates: list[bytes | None] = [f[1] if len(f) == 2 and f[1][:1] in EVENT_MAPS else None for f in messages]
+    """fastpath.read_each over the messages that may be one numeric training event: a body that
+    is a map of two entries, or three with an id, whose first key is x, y or id (a columnar block
+    is a map of two or three entries too, and reading its tens of kilobytes only to decline them
+    cost 8% of the daemon's time on columnar traffic). When there are fewer than SINGLES_TOGETHER
+    of them the full path is quicker, and nothing is read."""
+    candidates: list[bytes | None] = [
+        f[1] if len(f) == 2 and f[1][:1] in EVENT_MAPS and f[1][1:3] in EVENT_KEYS else None for f in messages
+    ]
     if sum(c is not None for c in candidates) < SINGLES_TOGETHER:
         return [-1] * len(messages), []
     return read_each(candidates)
