@@ -94,3 +94,20 @@ def test_small_blocks_keep_the_same_figures_bit_for_bit() -> None:
         assert a[key].tobytes() == b[key].tobytes(), key
     assert whole._ll.tobytes() == few._ll.tobytes()
     assert whole.log_loss_window == few.log_loss_window
+
+
+@pytest.mark.parametrize("n", [1, 7, 8, 9, 128, 129, 999, 10_000])
+def test_the_compiled_sums_are_numpys_and_pythons_bit_for_bit(n: int) -> None:
+    """The window's mean is np.mean's (numpy's pairwise sum, one division) and the progressive sum
+    is the Python loop's (one addition at a time, in order): a restarted daemon that computed them
+    the old way would show the same figures."""
+    from oddsmill.progressive import _add_in_order, mean
+
+    rng = np.random.default_rng(n)
+    for scale in (1e-3, 1.0, 1e3):
+        values = rng.exponential(size=n) * scale
+        assert mean(values) == float(np.mean(values))
+        total = 0.25
+        for v in values.tolist():
+            total += v
+        assert _add_in_order(0.25, values) == total

@@ -15,6 +15,7 @@ import math
 from typing import Any
 
 import numpy as np
+from numba import njit
 
 CALIBRATION_BINS = 10
 HISTORY_POINTS = 512  # the history keeps at most this many points, thinning itself as it grows
@@ -38,6 +39,21 @@ def softplus(z: float) -> float:
     if z < 0.0:
         return math.log1p(math.exp(z))
     return LOG2 if z == 0.0 else z  # (a NaN stays NaN)
+
+
+@njit(cache=True)
+def _add_in_order(total: float, values: np.ndarray) -> float:
+    """total + values[0] + values[1] + ..., one addition at a time: the Python loop's result bit
+    for bit (IEEE additions in the same order), 500 values in 0.3 us instead of 15 to 45."""
+    for i in range(values.shape[0]):
+        total += float(values[i])
+    return total
+
+
+def mean(values: np.ndarray) -> float:
+    """np.mean of a float64 array, bit for bit (numpy's sum, then one division), without the
+    checks np.mean makes first (12.8 against 5.8 us for the 10,000 values of a window)."""
+    return float(np.add.reduce(values)) / int(values.shape[0])
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
@@ -109,10 +125,7 @@ class ProgressiveMetrics:
     def _add(self, z: np.ndarray, y: np.ndarray, ll: np.ndarray) -> None:
         # added one by one, so that the sum does not depend on where blocks begin and end (a
         # restarted daemon replays its journal in other blocks than it first saw)
-        total = self.sum
-        for v in ll.tolist():
-            total += v
-        self.sum = total
+        self.sum = _add_in_order(self.sum, ll)
         self.count += int(z.shape[0])
         w = self.window
         if z.shape[0] >= w:
@@ -139,7 +152,7 @@ class ProgressiveMetrics:
 
     @property
     def log_loss_window(self) -> float:
-        return float(np.mean(self._ll[: self._filled])) if self._filled else float("nan")
+        return mean(self._ll[: self._filled]) if self._filled else float("nan")
 
     @property
     def brier_window(self) -> float:
