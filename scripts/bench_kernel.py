@@ -39,7 +39,7 @@ def labels(xs: list[dict[str, float]], seed: int) -> list[int]:
     return [int(rng.random() < 1 / (1 + np.exp(-0.3 * sum(x.values())))) for x in xs]
 
 
-def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: int = 1000) -> float:
+def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: int = 1000, repeats: int = 3) -> float:
     blocks = []
     for lo in range(0, len(xs), block):
         b = BlockBuilder()
@@ -48,10 +48,13 @@ def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: i
             b.add(slots, values, K.OP_TRAIN, float(y), 1.0)
         blocks.append(b.build())
     lr.run(blocks[0])  # compile / warm
-    t0 = time.perf_counter()
-    for b in blocks[1:]:
-        lr.run(b)
-    return (len(blocks) - 1) * block / (time.perf_counter() - t0)
+    best = float("inf")
+    for _ in range(repeats):  # the best of a few passes: one pass is tens of milliseconds, and
+        t0 = time.perf_counter()  # the other processes of a shared machine come and go
+        for b in blocks[1:]:
+            lr.run(b)
+        best = min(best, time.perf_counter() - t0)
+    return (len(blocks) - 1) * block / best
 
 
 def main() -> None:

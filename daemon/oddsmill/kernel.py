@@ -40,7 +40,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+from llvmlite import ir  # type: ignore[import-untyped]
+from numba import njit, types
+from numba.core import cgutils
+from numba.extending import intrinsic
 
 # The entry points release the GIL (nogil): a race's candidates run their kernels on other threads,
 # each on a state of its own. Every function is compiled with error_model="numpy": a division by
@@ -85,6 +88,38 @@ CONSTANT_RTOL = 1e-9  # a feature whose sd is below this fraction of its mean is
 CENTRE_PERIOD = 1024  # centres follow their running means, brought up to date this often (steps)
 CENTRE_MIN_SHARE = 0.01  # centred only if present in at least this share of its warm-up window
 QUIET_MIN_EVENTS = 4  # events of a block sharing their slots go to _quiet_run from this many on
+
+
+@intrinsic
+def _prefetch(typingctx, arr, k):  # type: ignore[no-untyped-def]
+    """Ask the processor to start loading the cache line of arr's k-th element (flat index, C
+    order) for writing: LLVM's prefetch, which never faults and changes nothing."""
+
+    def codegen(context, builder, signature, args):  # type: ignore[no-untyped-def]
+        data = context.make_array(signature.args[0])(context, builder, args[0]).data
+        i8p = ir.IntType(8).as_pointer()
+        i32 = ir.IntType(32)
+        ptr = builder.bitcast(builder.gep(data, [args[1]]), i8p)
+        fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+        fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0")  # type: ignore[no-untyped-call]
+        builder.call(fn, [ptr, i32(1), i32(3), i32(1)])  # write, keep in all caches, data
+        return context.get_dummy_value()
+
+    return types.void(arr, k), codegen
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _prefetch_slots(sl, fl, idx, lo, hi):  # type: ignore[no-untyped-def]
+    """Start loading the slots of an event (every cache line of each row, and its flags) while
+    the events before it run: at 1e6 slots each is a miss to memory, and a step waited on them."""
+    for k in range(lo, hi):
+        j = idx[k]
+        # a row's 88 bytes meet up to three cache lines of 64: elements 0, 5 and 10 (40 bytes
+        # apart) are one in each
+        _prefetch(sl, j * N_ROWS)  # type: ignore[call-arg]
+        _prefetch(sl, j * N_ROWS + 5)
+        _prefetch(sl, j * N_ROWS + 10)
+        _prefetch(fl, j)
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -629,6 +664,8 @@ def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type:
             _shared_rows(prm, sc, sl, fl, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, ada)
             e = r
             continue
+        if e + 2 < n_ev:
+            _prefetch_slots(sl, fl, idx, ptr[e + 2], ptr[e + 3])
         out[e] = _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, ada)
         e += 1
 
