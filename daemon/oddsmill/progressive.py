@@ -73,6 +73,8 @@ class ProgressiveMetrics:
         self._y = np.zeros(window)
         self._ll = np.zeros(window)  # the log-loss of each, so a history point costs one sum
         self._filled = 0
+        self._window_at = -1  # the count at which log_loss_window was last computed, and its value
+        self._window_value = float("nan")
         self._head = 0
         # (labelled events so far, progressive log-loss, windowed log-loss) every `stride` labelled
         # events. Taken at exact counts, not at block ends, so a restarted daemon that replays its
@@ -152,7 +154,12 @@ class ProgressiveMetrics:
 
     @property
     def log_loss_window(self) -> float:
-        return mean(self._ll[: self._filled]) if self._filled else float("nan")
+        # the window changes only with the count: a race asks for every candidate's after each
+        # block, and a history point at the same count asked already
+        if self._window_at != self.count:
+            self._window_at = self.count
+            self._window_value = mean(self._ll[: self._filled]) if self._filled else float("nan")
+        return self._window_value
 
     @property
     def brier_window(self) -> float:
