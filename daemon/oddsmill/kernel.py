@@ -40,7 +40,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from llvmlite import ir  # type: ignore[import-untyped]
+from llvmlite import ir
 from numba import njit, types
 from numba.core import cgutils
 from numba.extending import intrinsic
