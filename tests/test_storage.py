@@ -105,6 +105,51 @@ def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # ty
     assert "torn record" in caplog.text
 
 
+def test_short_and_failed_writes_leave_the_journal_exact(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The writer buffers pieces (record heads and the bodies as received) and writes them with
+    os.writev. A write that takes fewer bytes than offered (as POSIX allows, and a nearly full disk
+    does) or fails must leave the file holding a prefix of the records and the buffer holding exactly
+    the rest, so that writing again continues where the file ends."""
+    import errno
+    import os
+
+    import msgpack
+    from oddsmill import storage
+
+    real = os.writev
+    plan = {"limit": 7, "fail_every": 4, "calls": 0}
+
+    def stingy(fd: int, parts: list[bytes]) -> int:  # at most `limit` bytes, and every 4th call fails
+        plan["calls"] += 1
+        if plan["calls"] % plan["fail_every"] == 0:
+            raise OSError(errno.ENOSPC, "No space left on device (injected)")
+        return real(fd, [b"".join(parts)[: plan["limit"]]])
+
+    seg = tmp_path / "journal-000000000000.omj"
+    bodies = [msgpack.packb({"id": i, "x": {"route_km": float(i) * 1.5}, "y": i % 2}) for i in range(40)]
+    j = JournalWriter(seg)  # its header written as usual
+    monkeypatch.setattr(storage.os, "writev", stingy)
+    failures = 0
+    for lo in range(0, 40, 3):
+        j.append_all(200.0 + lo, bodies[lo : lo + 3])
+        expected_end = j.tell()
+        while True:
+            try:
+                j.flush()
+                break
+            except OSError:
+                failures += 1
+                assert j.tell() == expected_end  # nothing lost, nothing counted twice
+                assert seg.stat().st_size <= expected_end
+        assert seg.stat().st_size == expected_end
+    monkeypatch.setattr(storage.os, "writev", real)
+    j.close()
+    assert failures >= 10 and plan["calls"] > 300  # the short and failed writes were exercised
+    got = list(read_journal(seg))
+    assert [msgpack.packb(b) for _, _, b in got] == bodies
+    assert [t for _, t, _ in got] == [200.0 + 3 * (i // 3) for i in range(40)]
+
+
 def test_only_the_newest_checkpoints_are_kept(tmp_path: Path) -> None:
     from oddsmill.storage import KEEP, list_checkpoints
 
