@@ -10,10 +10,29 @@ lazy catch-up, u + A v sums).
 from __future__ import annotations
 
 import math
+from typing import Any
 
 
 def sigmoid(z: float) -> float:
     return 1 / (1 + math.exp(-z)) if z >= 0 else math.exp(z) / (1 + math.exp(z))
+
+
+def oracle_for(s: Any) -> Oracle:
+    """The oracle with the settings of a LearnerSettings, read by attribute (the oracle imports
+    nothing of the learner's)."""
+    return Oracle(
+        s.schedule,
+        s.eta0,
+        s.l2,
+        s.decay_a,
+        s.power,
+        s.adagrad_delta,
+        s.average,
+        s.average_start,
+        s.scaling == "standardize",
+        s.scale_warmup,
+        s.max_centred,
+    )
 
 
 class Oracle:

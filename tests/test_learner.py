@@ -11,7 +11,7 @@ from oddsmill.schedules import rate
 from oddsmill.settings import LearnerSettings
 
 from tests.conftest import sparse_stream
-from tests.oracle import Oracle
+from tests.oracle import oracle_for
 
 
 def test_constant_rate_matches_river_step_for_step(phishing_data) -> None:  # type: ignore[no-untyped-def]
@@ -42,22 +42,6 @@ SETTINGS = [
 ]
 
 
-def _oracle_for(s: LearnerSettings) -> Oracle:
-    return Oracle(
-        s.schedule,
-        s.eta0,
-        s.l2,
-        s.decay_a,
-        s.power,
-        s.adagrad_delta,
-        s.average,
-        s.average_start,
-        s.scaling == "standardize",
-        s.scale_warmup,
-        s.max_centred,
-    )
-
-
 def _numeric(x: dict) -> dict:  # type: ignore[type-arg]
     """The oracle's view of an event: encoded names and float values."""
     out = {}
@@ -75,7 +59,7 @@ def test_lazy_updates_equal_the_dense_oracle(kw: dict, average: bool) -> None:  
     """The scale factor / lazy catch-up L2, the u + A v averages, the centring and the importance
     weights equal a dense step-by-step reference on sparse events, to 1e-12 relative."""
     s = LearnerSettings(**kw, average=average, average_start=50, scale_warmup=200)
-    lr, orc = Learner(s), _oracle_for(s)
+    lr, orc = Learner(s), oracle_for(s)
     weights = np.random.default_rng(7).uniform(0.2, 3.0, 1500)
     for i, (x, y) in enumerate(sparse_stream(1500, seed=3)):
         xe = _numeric(x)
@@ -111,7 +95,7 @@ def test_renormalisation_of_the_weight_scale_keeps_the_model() -> None:
     """With a strong L2 the scale falls under its floor many times; the model still equals the
     dense oracle."""
     s = LearnerSettings(schedule="constant", eta0=0.5, l2=0.5, average=True, scale_warmup=50)
-    lr, orc = Learner(s), _oracle_for(s)
+    lr, orc = Learner(s), oracle_for(s)
     for x, y in sparse_stream(600, seed=8):
         xe = _numeric(x)
         lr.learn_one(x, y)

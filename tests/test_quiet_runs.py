@@ -17,7 +17,7 @@ from oddsmill.encoding import Block, BlockBuilder, Rows
 from oddsmill.learner import Learner
 from oddsmill.settings import LearnerSettings
 
-from tests.oracle import Oracle
+from tests.oracle import oracle_for
 
 # Name sets of the invented courier stream, each always sent in this order. The first three are
 # frequent (centred once warm), "fragile" is rare (never centred), "detour_km" appears late.
@@ -214,19 +214,7 @@ def test_quiet_runs_equal_the_dense_oracle() -> None:
     """The dense, step-by-step oracle (tests/oracle.py, written from PROTOCOL 5 without the
     kernel's lazy scale or u + A v sums) on a columnar stream that is mostly quiet runs."""
     s = LearnerSettings(schedule="power", eta0=0.5, l2=1e-3, average=True, average_start=100, scale_warmup=100)
-    orc = Oracle(
-        s.schedule,
-        s.eta0,
-        s.l2,
-        s.decay_a,
-        s.power,
-        s.adagrad_delta,
-        s.average,
-        s.average_start,
-        True,
-        s.scale_warmup,
-        s.max_centred,
-    )
+    orc = oracle_for(s)
     lr = Learner(s)
     names = ("route_km", "weight_g", "stops_before")
     slots = np.array(lr.encode({name: 1.0 for name in names})[0], dtype=np.int64)
