@@ -227,3 +227,36 @@ def test_progress_shows_on_a_terminal_only() -> None:
         bar.done()
     assert "events/s" in tty.getvalue() and "log-loss" in tty.getvalue()
     assert pipe.getvalue() == ""
+
+
+def test_replay_races_the_candidates_and_inspect_lists_them(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """`replay --candidates auto` runs the race on a log and prints the table; `inspect` lists the
+    candidates with their figures. Each candidate is a full learner: its progressive log-loss
+    equals that of a plain `replay` with its settings, bit for bit (checked for the serving one
+    and the first one)."""
+    state = tmp_path / "race"
+    code, replayed, _ = run(["replay", str(DEMO), "--state", str(state), "--candidates", "auto"], capsys)
+    assert code == 0
+    rows = [line for line in replayed.splitlines() if line.startswith("eta0=")]
+    assert len(rows) == 9 and sum("<- serves" in row for row in rows) == 1
+    code, out, _ = run(["inspect", str(state), "--json"], capsys)
+    assert code == 0
+    doc = json.loads(out)
+    table = doc["candidates"]
+    assert [c["step"] for c in table] == [28_000] * 9
+    assert sum(c["serving"] for c in table) == 1
+    served = next(c for c in table if c["serving"])
+    assert doc["learner"] == served["learner"]  # the model inspect shows is the serving one's
+    assert len(doc["switches"]) == sum(line.startswith("switch at") for line in replayed.splitlines())
+    assert doc["switches"][-1]["to"] == served["candidate"]  # serving: where the last switch went
+    code, text, _ = run(["inspect", str(state)], capsys)
+    assert code == 0 and "race of 9 candidates" in text and "<- serves" in text
+    for c in {served["candidate"]: served, table[0]["candidate"]: table[0]}.values():
+        alone = tmp_path / c["candidate"].replace("=", "_").replace(",", "_")
+        flags = ["--eta0", str(c["learner"]["eta0"]), "--l2", str(c["learner"]["l2"])]
+        assert run(["replay", str(DEMO), "--state", str(alone), *flags], capsys)[0] == 0
+        _, out, _ = run(["inspect", str(alone), "--json"], capsys)
+        single = json.loads(out)
+        assert single["learner"] == c["learner"]
+        assert single["metrics"]["log_loss"] == c["log_loss"]
+        assert single["metrics"]["log_loss_window"] == c["log_loss_window"]
