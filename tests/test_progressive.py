@@ -111,3 +111,29 @@ def test_the_compiled_sums_are_numpys_and_pythons_bit_for_bit(n: int) -> None:
         for v in values.tolist():
             total += v
         assert _add_in_order(0.25, values) == total
+
+
+def test_the_window_figures_follow_every_update() -> None:
+    """The window's probabilities, bins, Brier score and log-loss are computed once a count and
+    kept: after every update they must be those of a copy restored from the state (which has
+    computed nothing yet), so a kept figure is never stale."""
+    from sklearn.metrics import brier_score_loss
+
+    rng = np.random.default_rng(9)
+    m = ProgressiveMetrics(window=300)
+    zs: list[float] = []
+    ys: list[float] = []
+    for size in (1, 5, 40, 3, 200, 7, 120):
+        z = rng.normal(0, 2, size)
+        y = (rng.random(size) < sigmoid(z)).astype(float)
+        m.update(z, y)
+        zs.extend(z.tolist())
+        ys.extend(y.tolist())
+        fresh = ProgressiveMetrics.from_state_dict(m.state_dict())
+        assert repr(m.calibration_bins()) == repr(fresh.calibration_bins())  # (empty bins hold NaN)
+        assert m.brier_window == fresh.brier_window
+        assert m.calibration_error_window == fresh.calibration_error_window
+        assert m.log_loss_window == fresh.log_loss_window
+        # Source: scikit-learn's brier_score_loss over the last 300 published scores
+        last_z, last_y = np.array(zs[-300:]), np.array(ys[-300:])
+        assert m.brier_window == pytest.approx(brier_score_loss(last_y, sigmoid(last_z)), rel=1e-12)
