@@ -178,3 +178,32 @@ def test_the_pending_store_is_bounded_by_count_and_counts_evictions() -> None:
         eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "x": {"a": 1.0}})])
     assert list(eng.pending) == ["P1", "P2"]  # the oldest went first
     assert eng.counters.pending_evicted == 1
+
+
+def test_held_requests_keep_their_scores_and_leave_the_garbage_collectors_sight() -> None:
+    """A held request is a tuple of numbers, so Python's collector stops tracking it (a million
+    tracked entries made each full collection stop the loop for a second, measured). Its score is
+    the one published for it, also when its outcome arrives in the same block, and a request held
+    again under the same id replaces the first."""
+    import gc
+
+    from oddsmill.engine import E_LOGIT
+
+    eng = Engine(Learner())
+    bodies = [{"id": f"P{i}", "x": {"route_km": float(i), "depot": "Eastgate"}} for i in range(50)]
+    scored = eng.process([(1.0, it) for b in bodies for it in decode_body(b)])
+    published = {r.id: r.logit for _, r in scored}  # type: ignore[union-attr]
+    # in one block: a new request, its outcome, and P3 held again with other features
+    block = [{"id": "P50", "x": {"route_km": 3.0}}, {"id": "P50", "y": 1}, {"id": "P3", "x": {"stops_before": 2.0}}]
+    again = eng.process([(2.0, it) for b in block for it in decode_body(b)])
+    scores = [r for _, r in again if hasattr(r, "logit")]
+    published["P3"] = scores[-1].logit  # type: ignore[union-attr]
+    gc.collect()
+    gc.collect()  # (a tuple is untracked once the tuples inside it are: the first pass may meet it first)
+    assert len(eng.pending) == 50 and "P50" not in eng.pending
+    for ident, entry in eng.pending.items():
+        assert entry[E_LOGIT] == published[ident]
+        assert not gc.is_tracked(entry)
+    first = scores[0].logit  # type: ignore[union-attr]
+    assert eng.metrics.count == 1  # P50's outcome, scored with the score published for it:
+    assert eng.metrics.sum == pytest.approx(np.logaddexp(0.0, first) - first)

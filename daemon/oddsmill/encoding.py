@@ -16,7 +16,7 @@ names not seen before are ignored (they add nothing to the logit and are not lea
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from itertools import accumulate
 
@@ -221,7 +221,7 @@ class BlockBuilder:
     def __len__(self) -> int:
         return self._events
 
-    def add(self, slots: list[int], values: list[float], op: int, y: float, w: float) -> None:
+    def add(self, slots: Sequence[int], values: Sequence[float], op: int, y: float, w: float) -> None:
         self.idx.extend(slots)
         self.val.extend(values)
         self.n.append(len(slots))
