@@ -6,6 +6,7 @@ Exit codes: 0 success; 2 bad usage or bad input file (one line naming it); 1 any
 from __future__ import annotations
 
 import argparse
+import gc
 import json
 import logging
 import sys
@@ -485,6 +486,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    # What exists now (the modules, numba's compiled code, the state just loaded, the pending
+    # store's dict) lives as long as the process: out of the garbage collector's sight, a full
+    # collection no longer walks it with the loop stopped. Measured with a million requests held:
+    # 1.06 s a full collection when they were objects, 0.11 s as tuples, under 1 ms frozen too.
+    # Only here: a daemon in a thread of another program (the demo, tests) leaves that program's
+    # collector alone.
+    gc.freeze()
     server.serve(stop)
     return 0 if server.clean_exit else 1
 
