@@ -32,6 +32,7 @@ from .errors import ConfigError, ProtocolError
 from .fastpath import read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
+from .progressive import FEW, ProgressiveMetrics
 from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
 from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
@@ -155,8 +156,10 @@ class ServerSettings:
 
 
 def warm_up(settings: LearnerSettings) -> None:
-    """Load the compiled kernel (about a second from numba's cache) before serving, so that the
-    first event is not answered a second late. A scratch learner: the real state is untouched."""
+    """Load every compiled function the loop calls (about a second from numba's cache) before
+    serving, so that the first event is not answered a second late, nor the first block of a kind
+    a few milliseconds late (test_server checks that a fresh process compiles or loads nothing
+    more). A scratch learner: the real state is untouched."""
     scratch = Learner(settings)
     scratch.learn_one({"warm": 1.0, "up": "yes"}, 1)
     scratch.predict_logit({"warm": 1.0})
@@ -166,6 +169,8 @@ def warm_up(settings: LearnerSettings) -> None:
     one = msgpack.packb({"x": {"warm": 1.0}, "y": 1})  # and the compiled reading of events
     read_batch(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
     read_each([one, one])
+    decode_body(unpack(msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes()})))  # a block's check
+    ProgressiveMetrics(window=2 * FEW).update(np.zeros(FEW + 1), np.ones(FEW + 1))  # a larger block's metrics
 
 
 def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
