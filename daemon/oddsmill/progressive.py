@@ -73,10 +73,11 @@ class ProgressiveMetrics:
         self._y = np.zeros(window)
         self._ll = np.zeros(window)  # the log-loss of each, so a history point costs one sum
         self._filled = 0
-        self._window_at = -1  # the count at which log_loss_window was last computed, and its value
-        self._window_value = float("nan")
-        self._figures_at = -1  # the count at which the window's probabilities and bins were computed
-        self._figures: tuple[np.ndarray, list[dict[str, float]]] = (np.empty(0), [])
+        # figures of the window kept until the count changes (the window changes only with it):
+        # a race asks for every candidate's log-loss after each block, a history point asks at the
+        # same count, and the loop refreshes its figures four times a second
+        self._kept_at = -1
+        self._kept: dict[str, Any] = {}
         self._head = 0
         # (labelled events so far, progressive log-loss, windowed log-loss) every `stride` labelled
         # events. Taken at exact counts, not at block ends, so a restarted daemon that replays its
@@ -156,12 +157,20 @@ class ProgressiveMetrics:
 
     @property
     def log_loss_window(self) -> float:
-        # the window changes only with the count: a race asks for every candidate's after each
-        # block, and a history point at the same count asked already
-        if self._window_at != self.count:
-            self._window_at = self.count
-            self._window_value = mean(self._ll[: self._filled]) if self._filled else float("nan")
-        return self._window_value
+        value: float = self._keep("log_loss", self._mean_log_loss)
+        return value
+
+    def _mean_log_loss(self) -> float:
+        return mean(self._ll[: self._filled]) if self._filled else float("nan")
+
+    def _keep(self, name: str, compute: Any) -> Any:
+        """`compute()`, once a count (see `_kept`)."""
+        if self._kept_at != self.count:
+            self._kept.clear()
+            self._kept_at = self.count
+        if name not in self._kept:
+            self._kept[name] = compute()
+        return self._kept[name]
 
     @property
     def brier_window(self) -> float:
@@ -174,13 +183,10 @@ class ProgressiveMetrics:
         return [dict(b) for b in self._window_figures()[1]]
 
     def _window_figures(self) -> tuple[np.ndarray, list[dict[str, float]]]:
-        """The window's probabilities and calibration bins, computed once a count: the daemon's
-        loop refreshes its figures four times a second, and computing the probabilities three
-        times and the bins twice each time (1.5 ms) stalled the scores behind it."""
-        if self._figures_at != self.count:
-            self._figures = self._compute_figures()
-            self._figures_at = self.count
-        return self._figures
+        """The window's probabilities and calibration bins, once a count: computing the
+        probabilities three times and the bins twice at each refresh (1.5 ms) stalled the scores."""
+        figures: tuple[np.ndarray, list[dict[str, float]]] = self._keep("figures", self._compute_figures)
+        return figures
 
     def _compute_figures(self) -> tuple[np.ndarray, list[dict[str, float]]]:
         z, y = self._recent()
