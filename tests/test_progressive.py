@@ -69,23 +69,23 @@ def test_history_points_fall_at_exact_counts_whatever_the_blocks() -> None:
         assert window == pytest.approx(log_loss(y[lo:c], p[lo:], labels=[0, 1]), rel=1e-10)
 
 
-def test_small_blocks_keep_the_same_figures_bit_for_bit() -> None:
-    """Blocks of at most FEW events are kept with Python floats (`softplus`, one event at a time):
-    the loss of each event, the sums, the window and the history equal the array path's exactly.
-    Outside reference: numpy's logaddexp(0, z), which the array path uses."""
-    from oddsmill.progressive import FEW, softplus
+def test_each_events_loss_is_numpys_bit_for_bit_and_blocks_do_not_matter() -> None:
+    """Each event's loss equals numpy's logaddexp(0, z) - y z (the outside reference) bit for bit,
+    extremes included, and blocks of one to eight events give the same sums, window and history
+    as one block, bit for bit."""
+    from oddsmill.progressive import _losses
 
     rng = np.random.default_rng(7)
     z = np.concatenate(
         [rng.normal(0, s, 50_000) for s in (1.0, 30.0, 1e3)] + [np.array([0.0, -0.0, 5e-324, 709.0, -745.0, 1e65])]
     )
-    assert [softplus(v) for v in z.tolist()] == np.logaddexp(0.0, z).tolist()
     y = (rng.random(z.size) < 0.5).astype(float)
+    assert _losses(z, y).tobytes() == (np.logaddexp(0.0, z) - y * z).tobytes()
     whole, few = ProgressiveMetrics(window=700), ProgressiveMetrics(window=700)
     whole.update(z, y)
     lo = 0
     while lo < z.size:
-        size = int(rng.integers(1, FEW + 1))
+        size = int(rng.integers(1, 9))
         few.update(z[lo : lo + size], y[lo : lo + size])
         lo += size
     a, b = whole.state_dict(), few.state_dict()
@@ -96,21 +96,32 @@ def test_small_blocks_keep_the_same_figures_bit_for_bit() -> None:
     assert whole.log_loss_window == few.log_loss_window
 
 
-@pytest.mark.parametrize("n", [1, 7, 8, 9, 128, 129, 999, 10_000])
-def test_the_compiled_sums_are_numpys_and_pythons_bit_for_bit(n: int) -> None:
-    """The window's mean is np.mean's (numpy's pairwise sum, one division) and the progressive sum
-    is the Python loop's (one addition at a time, in order): a restarted daemon that computed them
-    the old way would show the same figures."""
-    from oddsmill.progressive import _add_in_order, mean
+@pytest.mark.parametrize("n", [1, 63, 64, 65, 999, 10_000])
+def test_the_compiled_sums_hold_to_exact_sums(n: int) -> None:
+    """The window's sum (chunks of the ring summed in order, chunks written to summed again) is a
+    function of the ring's contents alone: after any writes it equals a fresh summation of every
+    chunk. Outside references: Python's math.fsum (the correctly rounded sum) for its accuracy, and
+    numpy's logaddexp(0, z) - y z for each event's loss, bit for bit."""
+    import math
+
+    from oddsmill.progressive import _losses, _window_sum
 
     rng = np.random.default_rng(n)
     for scale in (1e-3, 1.0, 1e3):
-        values = rng.exponential(size=n) * scale
-        assert mean(values) == float(np.mean(values))
-        total = 0.25
-        for v in values.tolist():
-            total += v
-        assert _add_in_order(0.25, values) == total
+        z = rng.normal(0, scale, n)
+        y = (rng.random(n) < 0.5).astype(float)
+        ll = _losses(z, y)
+        assert ll.tobytes() == (np.logaddexp(0.0, z) - y * z).tobytes()
+        chunks = np.zeros((n + 63) // 64)
+        dirty = np.ones(chunks.size, dtype=np.bool_)
+        assert _window_sum(ll, chunks, dirty) == pytest.approx(math.fsum(ll.tolist()), rel=1e-13)
+        for _ in range(5):  # a few slots rewritten, their chunks marked: the same as summing all again
+            at = rng.integers(0, n, 3)
+            ll[at] = rng.exponential(size=3) * scale
+            dirty[at // 64] = True
+            again = _window_sum(ll, chunks, dirty)
+            assert again == _window_sum(ll, np.zeros_like(chunks), np.ones_like(dirty))
+            assert again == pytest.approx(math.fsum(ll.tolist()), rel=1e-13)
 
 
 def test_the_window_figures_follow_every_update() -> None:

@@ -32,7 +32,7 @@ from .errors import ConfigError, ProtocolError
 from .fastpath import read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
-from .progressive import FEW, ProgressiveMetrics
+from .progressive import ProgressiveMetrics
 from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
 from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
@@ -170,7 +170,9 @@ def warm_up(settings: LearnerSettings) -> None:
     read_batch(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
     read_each([one, one])
     decode_body(unpack(msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes()})))  # a block's check
-    ProgressiveMetrics(window=2 * FEW).update(np.zeros(FEW + 1), np.ones(FEW + 1))  # a larger block's metrics
+    metrics = ProgressiveMetrics(window=2)
+    metrics.update(np.zeros(3), np.ones(3))  # the metrics' update
+    metrics.summary()  # and the window's figures
 
 
 def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
