@@ -20,6 +20,10 @@ def test_bench_measures_every_server_and_reports_ratios() -> None:
         for kind in ("floor", "peer", "oddsmill"):
             assert row[kind]["events_per_s"] > 0 and row[kind]["peak_memory_mib"] > 10
         assert row["oddsmill_to_floor"] == row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
+    cols = result["throughput"]["cols"]  # the race: the median of its pairs of runs, each reported
+    ratios = sorted(p["race"] / p["single"] for p in cols["race_pairs"])
+    assert len(ratios) == 3 and cols["race_to_oddsmill"] == ratios[1] > 0
+    assert cols["race_pairs"][0]["single"] == cols["oddsmill"]["events_per_s"]
     lat = result["latency"]
     assert lat["floor"]["received"] == lat["oddsmill"]["received"] == 2 * 1000  # every score came back
     assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
