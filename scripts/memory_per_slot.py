@@ -1,6 +1,6 @@
 """Memory a vocabulary slot costs: grow a learner's vocabulary to N one-hot names (20 to an event,
 as customer ids would arrive) and report the growth of the process's resident memory per slot,
-beside the bytes of the state arrays alone.
+beside the bytes of the state arrays and of the vocabulary's arrays alone.
 
     python scripts/memory_per_slot.py [--slots N]
 """
@@ -40,6 +40,7 @@ def main() -> None:
     arrays = sum(a.nbytes for a in (lr._sl, lr._fl, lr._wq, lr._cl))
     print(f"{slots:,} slots: resident memory +{grown / slots:.0f} bytes a slot")
     print(f"state arrays: {arrays / slots:.0f} bytes a slot (capacity {lr._sl.shape[0]:,} slots)")
+    print(f"vocabulary arrays: {lr.vocab.nbytes / slots:.0f} bytes a slot ({len(lr.vocab.index):,} names in its dict)")
 
 
 if __name__ == "__main__":

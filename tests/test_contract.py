@@ -9,6 +9,7 @@ from oddsmill.learner import Learner
 from oddsmill.settings import LearnerSettings
 
 from tests.conftest import sparse_stream
+from tests.tools import names_in
 
 SETTINGS = [
     LearnerSettings(schedule="constant", eta0=0.1),
@@ -35,7 +36,7 @@ def test_scoring_is_pure(s: LearnerSettings) -> None:
         lr.predict_proba(x)
         lr.predict_proba({**x, "never_seen": 4.0, "depot": "Nowhere"})
     after = lr.state_dict()
-    assert after["names"] == before["names"]
+    assert names_in(after) == names_in(before)
     assert after["scalars"].tobytes() == before["scalars"].tobytes()
     assert after["slots"].tobytes() == before["slots"].tobytes()
 

@@ -20,6 +20,7 @@ from oddsmill_client import CurveKeys, Producer, ScoreSubscriber
 
 from tests.conftest import RunningServer
 from tests.test_watching import run_cli
+from tests.tools import names_in
 
 
 @pytest.fixture
@@ -92,7 +93,7 @@ def test_only_allowed_clients_feed_or_read_the_daemon(tmp_path: Path, keys: dict
         running.close()
     journaled = [body for seg in list_journal(tmp_path / "state") for _, _, body in read_journal(seg)]
     assert not any("stolen" in str(body) for body in journaled)
-    assert "stolen" not in server.engine.learner.state_dict()["names"]
+    assert "stolen" not in names_in(server.engine.learner.state_dict())
 
 
 def test_curve_allows_binding_off_loopback_and_refuses_half_a_configuration(

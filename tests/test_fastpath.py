@@ -19,6 +19,8 @@ from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body, in_range, unpack
 from oddsmill.settings import LearnerSettings
 
+from tests.tools import names_in
+
 NAMES = ["route_km", "weight_g", "stops", "é_depot", "a"]
 values = st.floats(width=64) | st.floats(min_value=-1e6, max_value=1e6) | st.integers(-5, 5) | st.none() | st.just("x")
 # ids of every msgpack width, and ones the full path refuses (a bool, nil, a float, a list)
@@ -53,7 +55,7 @@ def same_state(a: Engine, b: Engine) -> None:
     x, y = a.state_dict(), b.state_dict()
     for key in ("scalars", "slots", "flags", "centred_list", "warmup_queue"):
         assert x["learner"][key].tobytes() == y["learner"][key].tobytes(), key
-    assert x["learner"]["names"] == y["learner"]["names"]
+    assert names_in(x["learner"]) == names_in(y["learner"])
     assert x["counters"] == y["counters"] and _f(x["metrics"]["sum"]) == _f(y["metrics"]["sum"])
 
 

@@ -80,7 +80,8 @@ def test_unpack_rejects_bytes_that_are_not_msgpack() -> None:
     ],
 )
 def test_features_that_encode_to_one_name_are_refused_and_add_nothing(x: dict) -> None:  # type: ignore[type-arg]
-    from oddsmill.encoding import Vocabulary, encode_features
+    from oddsmill.encoding import encode_features
+    from oddsmill.vocabulary import Vocabulary
 
     vocab = Vocabulary(max_features=100)
     with pytest.raises(ProtocolError) as e:
@@ -90,7 +91,8 @@ def test_features_that_encode_to_one_name_are_refused_and_add_nothing(x: dict) -
 
 
 def test_a_rejected_event_adds_no_name() -> None:
-    from oddsmill.encoding import Vocabulary, encode_features
+    from oddsmill.encoding import encode_features
+    from oddsmill.vocabulary import Vocabulary
 
     vocab = Vocabulary(max_features=100)
     with pytest.raises(ProtocolError):
@@ -99,7 +101,8 @@ def test_a_rejected_event_adds_no_name() -> None:
 
 
 def test_a_feature_too_large_for_a_float_is_rejected() -> None:
-    from oddsmill.encoding import Vocabulary, encode_features
+    from oddsmill.encoding import encode_features
+    from oddsmill.vocabulary import Vocabulary
 
     with pytest.raises(ProtocolError) as e:
         encode_features({"route_km": 10**400}, Vocabulary(max_features=10))

@@ -20,6 +20,7 @@ from oddsmill.race import Candidate, Race, auto_candidates
 from oddsmill.settings import LearnerSettings
 
 from tests.conftest import sparse_stream
+from tests.tools import names_in
 
 
 def drifting(n: int, change: int, seed: int) -> list[dict[str, Any]]:
@@ -126,7 +127,7 @@ def test_candidates_sharing_one_encoding_equal_engines_of_their_own() -> None:
         a, b = mine.state_dict(), theirs.state_dict()
         for key in ("scalars", "slots", "flags", "centred_list", "warmup_queue"):
             assert a["learner"][key].tobytes() == b["learner"][key].tobytes(), key
-        assert a["learner"]["names"] == b["learner"]["names"]
+        assert names_in(a["learner"]) == names_in(b["learner"])
         assert a["pending"] == b["pending"]  # the same ids in the same order, each with its own score
         assert a["counters"] == b["counters"] and a["last_seq"] == b["last_seq"]
         assert mine.metrics.sum == theirs.metrics.sum and mine.metrics.count == theirs.metrics.count

@@ -22,6 +22,8 @@ from oddsmill.learner import Learner
 from oddsmill.protocol import VALUE_MAX, VALUE_MIN, WEIGHT_MAX, decode_body, in_range, unpack
 from oddsmill.settings import SCHEDULES, LearnerSettings
 
+from tests.tools import names_in
+
 FLOAT = np.finfo(np.float64)
 
 
@@ -92,7 +94,7 @@ OUT = [
 
 def _state(engine: Engine) -> list[bytes | Any]:
     s = engine.state_dict()
-    return [s["learner"][k].tobytes() for k in ("scalars", "slots", "flags")] + [s["learner"]["names"], s["counters"]]
+    return [s["learner"][k].tobytes() for k in ("scalars", "slots", "flags")] + [names_in(s["learner"]), s["counters"]]
 
 
 @pytest.mark.parametrize(("what", "v"), OUT)

@@ -1,4 +1,5 @@
-"""Outside programs the integration tests drive: Chromium, Prometheus, promtool, tmux.
+"""Outside programs the integration tests drive: Chromium, Prometheus, promtool, tmux; and a
+reader of the names in a learner's state.
 
 `.ci/run` installs them from Debian's packages. Missing from a developer's machine, their tests
 skip; under CI (CI=true) a missing one fails its test, since CI is meant to have installed it.
@@ -10,6 +11,7 @@ import os
 import shutil
 import subprocess
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -49,3 +51,10 @@ def chromium(url: str, *args: str, user_data: Path, timeout: float = 60) -> str:
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=timeout)
     assert done.returncode == 0, f"chromium failed ({done.returncode}): {done.stderr[-2000:]}"
     return done.stdout
+
+
+def names_in(learner_state: dict[str, Any]) -> list[str]:
+    """The feature names a learner's state (`Learner.state_dict()`) holds, in slot order."""
+    from oddsmill.vocabulary import Vocabulary
+
+    return Vocabulary.from_state(int(learner_state["settings"]["max_features"]), learner_state).names

@@ -2,10 +2,10 @@
 
 A number v under name k is the numeric feature k with value v; a string s is the one-hot feature
 "k=s" with value 1; true/false are numeric 1/0; nil or a missing key is absent. A non-finite number
-is an error, and so is one out of the learner's range (`protocol.in_range`). The vocabulary is
-append-only: a name keeps its slot for the life of the state. When it holds `max_features` names,
-names not seen before are ignored (they add nothing to the logit and are not learned) and counted in
-`Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
+is an error, and so is one out of the learner's range (`protocol.in_range`). The vocabulary
+(vocabulary.py) is append-only: a name keeps its slot for the life of the state. When it holds
+`max_features` names, names not seen before are ignored (they add nothing to the logit and are not
+learned) and counted in `Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
 
 >>> v = Vocabulary(max_features=10)
 >>> encode_features({"route_km": 12.5, "depot": "harbour", "fragile": True, "note": None}, v)
@@ -24,41 +24,10 @@ import numpy as np
 
 from .errors import ProtocolError
 from .protocol import OUT_OF_RANGE, VALUE_MAX, VALUE_MIN, in_range
+from .vocabulary import Vocabulary
 
 SHAPES_KEPT = 4096  # sets of feature names whose slots are remembered
 FLOATS = {float}
-
-
-class Vocabulary:
-    """Feature names in slot order; append-only, capped."""
-
-    def __init__(self, max_features: int, names: list[str] | None = None) -> None:
-        self.max_features = max_features
-        self.names: list[str] = list(names or [])
-        self.index: dict[str, int] = {n: i for i, n in enumerate(self.names)}
-        self.ignored = 0
-        # The slots of a set of numeric feature names seen before, in the order they came: most
-        # producers send the same names every time, and then an event's encoding is one lookup.
-        # Names keep their slots for ever, so an entry never goes stale; the cache is bounded.
-        self.shapes: dict[tuple[str, ...], list[int]] = {}
-
-    def __len__(self) -> int:
-        return len(self.names)
-
-    def slot(self, name: str, grow: bool) -> int:
-        """The slot of `name`; a new slot if `grow` and there is room; -1 otherwise."""
-        j = self.index.get(name)
-        if j is not None:
-            return j
-        if not grow:
-            return -1
-        if len(self.names) >= self.max_features:
-            self.ignored += 1
-            return -1
-        j = len(self.names)
-        self.names.append(name)
-        self.index[name] = j
-        return j
 
 
 def encode_features(
@@ -143,11 +112,11 @@ def encode_features(
         if len(set(names)) != len(names):
             raise ProtocolError("bad_features", "two features encode to the same name", event_id)
     created: list[int] = []
-    if new:
-        for pos, name, is_num in new:
-            j = vocab.slot(name, grow)
+    if new:  # names not among the recently used: looked up (and added, in order) together
+        before = len(vocab)
+        for (pos, _, is_num), j in zip(new, vocab.slots([name for _, name, _ in new], grow), strict=True):
             slots[pos] = j
-            if j >= 0 and is_num:
+            if j >= before and is_num:
                 created.append(j)
         if min(slots) < 0:  # names the vocabulary could not take are left out
             keep = [k for k, j in enumerate(slots) if j >= 0]

@@ -378,8 +378,7 @@ class Engine:
         if item.ids is not None and bool(np.isnan(item.y).any()):
             return False
         vocab = self.learner.vocab
-        new = sum(1 for c in cols if c not in vocab.index)
-        return len(vocab) + new <= vocab.max_features
+        return len(vocab) + vocab.count_new(list(cols)) <= vocab.max_features
 
     def _add_columns(self, n: int, arrival: float, item: Columns, plan: Plan) -> None:
         """The rows of a plain columnar block into the block, as `prepare` would add them one by

@@ -20,9 +20,10 @@ from typing import Any
 import numpy as np
 
 from . import kernel as K
-from .encoding import Block, BlockBuilder, Rows, Vocabulary, encode_features
+from .encoding import Block, BlockBuilder, Rows, encode_features
 from .schedules import CODES, rate
 from .settings import LearnerSettings
+from .vocabulary import Vocabulary
 
 INITIAL_SLOTS = 64
 
@@ -219,28 +220,33 @@ class Learner:
 
     def coefficients(self, averaged: bool | None = None) -> Coefficients:
         """The model in the units the features were sent (the averaged weights when averaging)."""
+        intercept, coefs, _ = self._raw_coefficients(averaged)
+        return Coefficients(intercept, self.vocab.names, coefs)
+
+    def _raw_coefficients(self, averaged: bool | None = None) -> tuple[float, np.ndarray, np.ndarray]:
+        """(intercept, coefficients, scales) in the units the features were sent, slot order."""
         b, theta = self.standardised(averaged)
         centre, scale = self.scales()
         coefs = theta / scale
-        return Coefficients(float(b - np.sum(coefs * centre)), list(self.vocab.names), coefs)
+        return float(b - np.sum(coefs * centre)), coefs, scale
 
     def top_coefficients(self, k: int) -> tuple[float, list[dict[str, float | str]]]:
         """(intercept, the `k` coefficients of largest effect), largest first. The effect is the
         change in log-odds for one standard deviation of a numeric feature (for a category or a
         flag, its coefficient), so a feature sent in grams does not win or lose by its units."""
-        c = self.coefficients()
-        signed = c.coefs * self.scales()[1]
+        intercept, coefs, scale = self._raw_coefficients()  # (the names of the top k only)
+        signed = coefs * scale
         effect = np.abs(signed)
         if k < effect.size:
             part = np.argpartition(-effect, k)[:k]
             order = part[np.argsort(-effect[part], kind="stable")]
         else:
             order = np.argsort(-effect, kind="stable")
-        return c.intercept, [
+        return intercept, [
             {
-                "feature": c.names[j],
-                "coef": float(c.coefs[j]),
-                "odds_ratio": math.exp(min(float(c.coefs[j]), 709.0)),
+                "feature": self.vocab.name(j),
+                "coef": float(coefs[j]),
+                "odds_ratio": math.exp(min(float(coefs[j]), 709.0)),
                 "effect": float(signed[j]),
             }
             for j in order.tolist()
@@ -251,7 +257,7 @@ class Learner:
         n = len(self.vocab)
         return {
             "settings": self._settings.to_dict(),
-            "names": list(self.vocab.names),
+            **self.vocab.state(),  # the names: their UTF-8 bytes end to end, and where each ends
             "ignored": self.vocab.ignored,
             "scalars": self._sc.copy(),
             "slots": self._sl[:n].copy(),
@@ -263,12 +269,11 @@ class Learner:
     @classmethod
     def from_state_dict(cls, d: dict[str, Any]) -> Learner:
         lr = cls(LearnerSettings.from_dict(dict(d["settings"])))
-        names = list(d["names"])
-        lr.vocab = Vocabulary(lr._settings.max_features, names)
+        lr.vocab = Vocabulary.from_state(lr._settings.max_features, d)
         lr.vocab.ignored = int(d["ignored"])
         lr._sc = np.array(d["scalars"], dtype=np.float64)
         lr._nslots = int(lr._sc[K.S_NSLOTS])
-        n = len(names)
+        n = len(lr.vocab)
         lr._grow(n)
         lr._sl[:n] = d["slots"]
         lr._fl[:n] = d["flags"]

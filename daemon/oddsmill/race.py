@@ -169,7 +169,7 @@ class Race:
         """The candidates share the first one's vocabulary, counters and sequence numbers."""
         lead = self.engines[0]
         for e in self.engines[1:]:
-            if e.learner.vocab.names != lead.learner.vocab.names:
+            if not e.learner.vocab.same_names(lead.learner.vocab):
                 raise ValueError("a race's candidates disagree on the vocabulary")
             e.learner.vocab = lead.learner.vocab
             e.counters = lead.counters

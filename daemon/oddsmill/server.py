@@ -46,6 +46,7 @@ from .storage import (
     read_journal,
     write_checkpoint,
 )
+from .vocabulary import Vocabulary
 
 log = logging.getLogger("oddsmill")
 
@@ -170,6 +171,7 @@ def warm_up(settings: LearnerSettings) -> None:
     read_batch(msgpack.packb({"batch": [{"x": {"warm": 1.0}, "y": 1}]}))
     read_each([one, one])
     decode_body(unpack(msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes()})))  # a block's check
+    Vocabulary.from_state(1, {"name_bytes": b"w", "name_ends": [1]})  # the table's growth (rehash)
     metrics = ProgressiveMetrics(window=2)
     metrics.update(np.zeros(3), np.ones(3))  # the metrics' update
     metrics.summary()  # and the window's figures
