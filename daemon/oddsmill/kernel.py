@@ -70,9 +70,14 @@ N_PARAMS = 12
 # scalar state
 S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS = range(12)
 N_SCALARS = 12
-# per-slot columns
-R_V, R_U, R_G, R_LAST, R_MEAN, R_M2, R_COUNT, R_SCALE, R_FIRST, R_DPOS, R_SUM = range(11)
-N_ROWS = 11
+# per-slot columns. AdaGrad's two (its sum of squared gradients, the step a slot was last caught
+# up at) come last, and only AdaGrad's rows have them: the global schedules' rows are 9 columns (72
+# bytes), every use of R_G and R_LAST is on AdaGrad's path.
+R_V, R_U, R_MEAN, R_M2, R_COUNT, R_SCALE, R_FIRST, R_DPOS, R_SUM, R_G, R_LAST = range(11)
+N_ROWS = 11  # AdaGrad's row
+N_ROWS_GLOBAL = 9  # the global schedules' row
+# where each column was in the rows of checkpoints written before this order (all 11 columns)
+OLD_ROW_ORDER = (0, 1, 4, 5, 6, 7, 8, 9, 10, 2, 3)
 # per-slot flags
 F_NUMERIC = np.uint8(1)
 F_CENTERED = np.uint8(2)
@@ -112,13 +117,14 @@ def _prefetch(typingctx, arr, k):  # type: ignore[no-untyped-def]
 def _prefetch_slots(sl, fl, idx, lo, hi):  # type: ignore[no-untyped-def]
     """Start loading the slots of an event (every cache line of each row, and its flags) while
     the events before it run: at 1e6 slots each is a miss to memory, and a step waited on them."""
+    width = sl.shape[1]
     for k in range(lo, hi):
         j = idx[k]
-        # a row's 88 bytes meet up to three cache lines of 64: elements 0, 5 and 10 (40 bytes
-        # apart) are one in each
-        _prefetch(sl, j * N_ROWS)  # type: ignore[call-arg]
-        _prefetch(sl, j * N_ROWS + 5)
-        _prefetch(sl, j * N_ROWS + 10)
+        # a row's 72 or 88 bytes meet up to three cache lines of 64: elements 0, 5 and the last
+        # (at most 40 bytes apart) are one in each
+        _prefetch(sl, j * width)  # type: ignore[call-arg]
+        _prefetch(sl, j * width + 5)
+        _prefetch(sl, j * width + width - 1)
         _prefetch(fl, j)
 
 

@@ -28,6 +28,11 @@ from .vocabulary import Vocabulary
 INITIAL_SLOTS = 64
 
 
+def row_width(s: LearnerSettings) -> int:
+    """Columns of a slot's row: AdaGrad keeps two more (kernel.R_G, kernel.R_LAST)."""
+    return K.N_ROWS if s.schedule == "adagrad" else K.N_ROWS_GLOBAL
+
+
 def settings_record(s: LearnerSettings) -> np.ndarray:
     """The kernel's settings record."""
     prm = np.zeros(K.N_PARAMS)
@@ -68,7 +73,7 @@ class Learner:
         self._sc = np.zeros(K.N_SCALARS)
         self._sc[K.S_WS] = 1.0
         self._nslots = 0  # sc[S_NSLOTS] as a Python int: read on every event, where numpy's scalar costs 1.6 us
-        self._sl = np.zeros((0, K.N_ROWS))
+        self._sl = np.zeros((0, row_width(self._settings)))
         self._fl = np.zeros(0, dtype=np.uint8)
         self._cl = np.zeros(self._settings.max_centred, dtype=np.int64)
         self._wq = np.zeros(0, dtype=np.int64)
@@ -113,10 +118,11 @@ class Learner:
         if needed <= cap:
             return
         new_cap = max(needed, 2 * cap, INITIAL_SLOTS)
-        sl = np.zeros((new_cap, K.N_ROWS))
+        sl = np.zeros((new_cap, self._sl.shape[1]))
         sl[:cap] = self._sl
         sl[cap:, K.R_SCALE] = 1.0
-        sl[cap:, K.R_LAST] = self._sc[K.S_T]
+        if self._sl.shape[1] > K.R_LAST:
+            sl[cap:, K.R_LAST] = self._sc[K.S_T]
         sl[cap:, K.R_DPOS] = -1.0
         fl = np.zeros(new_cap, dtype=np.uint8)
         fl[:cap] = self._fl
@@ -261,6 +267,7 @@ class Learner:
             "ignored": self.vocab.ignored,
             "scalars": self._sc.copy(),
             "slots": self._sl[:n].copy(),
+            "slot_order": 2,  # kernel.R_* (1, or absent: OLD_ROW_ORDER)
             "flags": self._fl[:n].copy(),
             "centred_list": self._cl.copy(),
             "warmup_queue": self._wq[: int(self._sc[K.S_QLEN])].copy(),
@@ -275,7 +282,10 @@ class Learner:
         lr._nslots = int(lr._sc[K.S_NSLOTS])
         n = len(lr.vocab)
         lr._grow(n)
-        lr._sl[:n] = d["slots"]
+        slots = np.asarray(d["slots"], dtype=np.float64)
+        if int(d.get("slot_order", 1)) == 1:  # written before AdaGrad's columns came last
+            slots = slots[:, list(K.OLD_ROW_ORDER)]
+        lr._sl[:n] = slots[:, : lr._sl.shape[1]]
         lr._fl[:n] = d["flags"]
         lr._cl = np.array(d["centred_list"], dtype=np.int64)
         queue = np.asarray(d["warmup_queue"], dtype=np.int64)
