@@ -479,3 +479,42 @@ def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_se
     assert mine["counters"] == theirs["counters"]
     pub.close(0)
     ctx.term()
+
+
+def test_messages_refused_before_decoding_are_counted_again_after_kill_9(tmp_path: Path) -> None:
+    """A message that cannot be decoded (not msgpack, too large, not two frames) changes nothing
+    but its counter; a restart without a checkpoint (kill -9) must count it again from the
+    journal, as an uninterrupted run counted it, with its reason."""
+    import msgpack
+    import zmq
+    from oddsmill.server import Server
+
+    settings = ServerSettings(state_dir=tmp_path, http="off", fsync="os")
+    ctx: zmq.Context[Any] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://scores")
+    good = [[b"events", msgpack.packb(b)] for b in bodies(60, seed=22) if "x" in b and "y" in b]
+    bad = [
+        [b"events", b"\xc1"],  # not msgpack: undecodable
+        [b"events", msgpack.packb({"x": {"note": "n" * 70_000}, "y": 1})],  # a string past MAX_STR
+        [b"events"],  # one frame: undecodable
+        [b"events", msgpack.packb({"x": {"route_km": 3.0}, "y": 7})],  # decoded, then refused
+    ]
+    first = Server(settings, LearnerSettings())
+    first.checkpoint()
+    for k, message in enumerate(good):
+        first.handle([message, bad[k % len(bad)]] if k < 8 else [message], pub)
+    counted = dict(first.engine.counters.rejected)
+    assert counted == {"undecodable": 4, "too_large": 2, "bad_label": 2}
+    first.journal.close()  # and then kill -9: no checkpoint since the start
+
+    second = Server(settings, LearnerSettings())
+    second.journal.close()
+    assert second.engine.counters.rejected == counted
+    assert second.engine.learner.step == first.engine.learner.step == len(good)
+    for key in ("scalars", "slots"):
+        assert (
+            second.engine.state_dict()["learner"][key].tobytes() == first.engine.state_dict()["learner"][key].tobytes()
+        )
+    pub.close(0)
+    ctx.term()

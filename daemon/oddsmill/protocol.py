@@ -88,8 +88,27 @@ class Columns:
 Item = Event | Columns | ProtocolError
 
 
+# A message refused before it could be decoded (not msgpack, too large, not two frames) changes
+# nothing but its counter; the journal keeps a record of it all the same, so that a restart counts
+# it again. The record's body is a msgpack extension of this type holding the reason: no ingest body
+# can be one (`unpack` refuses every extension), so it only ever comes from the journal.
+REFUSED_EXT = 1
+
+
+def refused_record(reason: str) -> bytes:
+    """The journal body of a message refused before decoding: an ext 8 of type REFUSED_EXT."""
+    data = reason.encode()
+    return b"\xc7" + bytes((len(data), REFUSED_EXT)) + data
+
+
+def is_refused_record(raw: bytes) -> bool:
+    return raw[:1] == b"\xc7" and raw[2:3] == bytes((REFUSED_EXT,))
+
+
 def decode_body(body: object) -> list[Item]:
     """The events of one ingest body, in order; a bad body is a one-item list of its error."""
+    if isinstance(body, msgpack.ExtType) and body.code == REFUSED_EXT:  # (a journal's record)
+        return [ProtocolError(body.data.decode(), "refused before decoding (counted again from the journal)")]
     if not isinstance(body, Mapping):
         return [ProtocolError("not_a_map", f"a body must be a map, got {type(body).__name__}")]
     if "batch" in body:

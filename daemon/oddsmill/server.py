@@ -33,7 +33,7 @@ from .fastpath import read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .progressive import ProgressiveMetrics
-from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, unpack
+from .protocol import TRANSPORT_LIMIT, Columns, Item, decode_body, is_refused_record, refused_record, unpack
 from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
 from .storage import (
@@ -542,6 +542,7 @@ class Server:
                 rejects.append(
                     self._count(Rejection(None, "undecodable", f"a message has 2 frames, got {len(frames)}"))
                 )
+                raws.append(refused_record("undecodable"))  # journaled, so that a restart counts it
                 continue
             run = which[i]
             if run >= 0:
@@ -569,6 +570,7 @@ class Server:
                 body = unpack(frames[1])
             except ProtocolError as e:
                 rejects.append(self._count(Rejection(None, e.reason, e.detail)))
+                raws.append(refused_record(e.reason))
                 continue
             raws.append(frames[1])
             if isinstance(body, dict) and "batch" in body:
@@ -771,7 +773,10 @@ def _read_singles(messages: list[list[bytes]]) -> tuple[list[int], list[Columns 
 
 
 def _items(raw: bytes) -> list[Item]:
-    """The items of a body that was accepted (and journaled) before."""
+    """The items of a body held during an outage (a message refused before decoding has none: it
+    was counted when it came)."""
+    if is_refused_record(raw):
+        return []
     blocks = read_batch(raw)
     return list(blocks) if blocks is not None else decode_body(unpack(raw))
 
