@@ -8,6 +8,7 @@ beside the bytes of the state arrays and of the vocabulary's arrays alone.
 from __future__ import annotations
 
 import argparse
+import ctypes
 import gc
 
 from oddsmill.learner import Learner
@@ -41,6 +42,12 @@ def main() -> None:
     print(f"{slots:,} slots: resident memory +{grown / slots:.0f} bytes a slot")
     print(f"state arrays: {arrays / slots:.0f} bytes a slot (capacity {lr._sl.shape[0]:,} slots)")
     print(f"vocabulary arrays: {lr.vocab.nbytes / slots:.0f} bytes a slot ({len(lr.vocab.index):,} names in its dict)")
+    try:  # the heap memory glibc's allocator keeps after frees (the events' objects, grown arrays)
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        return
+    trimmed = resident_bytes() - before
+    print(f"after malloc_trim (free heap memory returned): +{trimmed / slots:.0f} bytes a slot")
 
 
 if __name__ == "__main__":
