@@ -107,7 +107,8 @@ def test_the_remembered_slots_of_a_name_set_encode_as_the_full_path_does(events:
         outcomes = []
         for vocab in (fast, full):
             try:
-                outcomes.append(encode_features(x, vocab, grow=True))
+                slots, values, created = encode_features(x, vocab, grow=True)
+                outcomes.append((list(slots), values, created))  # (remembered slots come as a shared tuple)
             except ProtocolError as e:
                 outcomes.append((e.reason, e.detail))
         assert outcomes[0] == outcomes[1]

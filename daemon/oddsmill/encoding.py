@@ -32,7 +32,7 @@ FLOATS = {float}
 
 def encode_features(
     x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
-) -> tuple[list[int], list[float], list[int]]:
+) -> tuple[Sequence[int], list[float], list[int]]:
     """Slots and values of the features of `x` (a map of str to number, str, bool or nil), and the
     slots this call created for numeric features. Raises ProtocolError (bad_features or non_finite)
     and then adds no name: new names get their slots only once the whole event has been read. One
@@ -49,7 +49,7 @@ def encode_features(
                 if total - total == 0.0:
                     sizes = list(map(abs, present))  # (zeros are dropped by filter: they are in range)
                     if max(sizes) <= VALUE_MAX and min(filter(None, sizes), default=VALUE_MIN) >= VALUE_MIN:
-                        return list(known), present, []
+                        return known, present, []  # (shared: callers only read it)
     if not isinstance(x, Mapping):
         raise ProtocolError("bad_features", f"x must be a map, got {type(x).__name__}", event_id)
     index = vocab.index
@@ -128,7 +128,7 @@ def encode_features(
         # its slot is the one of "key=value", not of the key.)
         if len(vocab.shapes) >= SHAPES_KEPT:
             vocab.shapes.clear()
-        vocab.shapes[tuple(x)] = slots
+        vocab.shapes[tuple(x)] = tuple(slots)
     return slots, values, created
 
 

@@ -13,7 +13,7 @@ The state is a few private arrays behind read-only properties; the compiled kern
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -130,7 +130,9 @@ class Learner:
         wq[:cap] = self._wq
         self._sl, self._fl, self._wq = sl, fl, wq
 
-    def encode(self, x: Mapping[str, Any], grow: bool = True, event_id: object = None) -> tuple[list[int], list[float]]:
+    def encode(
+        self, x: Mapping[str, Any], grow: bool = True, event_id: object = None
+    ) -> tuple[Sequence[int], list[float]]:
         """Slots and raw values of an event's features; new names get slots when `grow`."""
         slots, values, created = encode_features(x, self.vocab, grow, event_id)
         if created or len(self.vocab) > self._nslots:

@@ -123,7 +123,7 @@ class Vocabulary:
         self.ignored = 0
         # The slots of a set of numeric feature names seen before, in the order they came (see
         # encoding.encode_features): names keep their slots for ever, so an entry never goes stale.
-        self.shapes: dict[tuple[str, ...], list[int]] = {}
+        self.shapes: dict[tuple[str, ...], tuple[int, ...]] = {}
         self.index: dict[str, int] = {}  # recently used names (a cache, not the whole vocabulary)
         self._n = 0
         self._starts = np.zeros(INITIAL_NAMES + 1, dtype=np.int64)
