@@ -684,3 +684,13 @@ def learn_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, out):  # type: ignor
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
     _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, ada)
+
+
+@njit(cache=True, error_model="numpy")
+def learn_event(prm, sc, sl, fl, cl, wq, idx, val, op, y, w):  # type: ignore[no-untyped-def]
+    """`learn_block` over a block of one event (features idx with values val): the same call of
+    `_event`, so the same arithmetic bit for bit, without the block's five arrays to build. The
+    daemon's path for a lone message (Engine.one)."""
+    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    ada = prm[P_SCHED] == SCH_ADAGRAD
+    return _event(prm, sc, sl, fl, cl, wq, idx, val, 0, idx.shape[0], op, y, w, dx, ada)

@@ -177,6 +177,23 @@ class Learner:
             at = end
         return out
 
+    def run_one(self, slots: Sequence[int], values: Sequence[float], op: int, y: float, w: float) -> float:
+        """`run` over a block of one event (kernel.learn_event); returns its published logit."""
+        idx = np.array(slots, dtype=np.int64)
+        val = np.array(values, dtype=np.float64)
+        z: float = K.learn_event(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, idx, val, op, y, w)
+        return z
+
+    def run_rows(self, slots: Sequence[int], rows: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """`run` over training events that share their slots (row e: the values rows[e] at `slots`,
+        label y[e], weight 1), as a columnar block's rows run (kernel.learn_rows)."""
+        m = rows.shape[0]
+        out = np.empty(m)
+        op = np.full(m, K.OP_TRAIN, dtype=np.int8)
+        idx = np.array(slots, dtype=np.int64)
+        K.learn_rows(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, idx, rows, op, y, out)
+        return out
+
     def score(self, block: Block) -> np.ndarray:
         """Logits of a block's events with the current state; changes nothing."""
         out = np.empty(len(block))

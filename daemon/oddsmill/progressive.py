@@ -159,6 +159,8 @@ class ProgressiveMetrics:
         self._history = np.zeros((HISTORY_POINTS, 3))
         self._points = 0
         self.stride = HISTORY_STRIDE
+        self._one_z = np.zeros(1)  # update_one's arrays
+        self._one_y = np.zeros(1)
 
     @property
     def history(self) -> list[tuple[int, float, float]]:
@@ -185,6 +187,12 @@ class ProgressiveMetrics:
             self.stride,
             self._points,
         )
+
+    def update_one(self, z: float, y: float) -> None:
+        """`update` with one labelled event (its arrays are kept, not built a call)."""
+        self._one_z[0] = z
+        self._one_y[0] = y
+        self.update(self._one_z, self._one_y)
 
     def _recent(self) -> tuple[np.ndarray, np.ndarray]:
         return self._z[: self._filled], self._y[: self._filled]

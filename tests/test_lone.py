@@ -1,0 +1,331 @@
+"""The daemon's paths for small blocks against its full path: `Server._quick` (a block of numeric
+training events with the same known names, read in compiled code and learned as rows) and
+`Server._lone` (a few messages of one event each, through `Engine.one`). Whatever the messages and
+however they fall into blocks, the daemon must publish the same bytes, journal the same bytes and
+end in the same state, bit for bit, as with both paths turned off."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from oddsmill.engine import Engine, Rejection, Score
+from oddsmill.fastpath import RunReader, read_each
+from oddsmill.learner import Learner
+from oddsmill.protocol import Event, decode_body, unpack
+from oddsmill.settings import LearnerSettings
+
+from tests.test_fastpath import same_state
+
+NAMES = ["route_km", "weight_g", "stops"]
+
+
+class Recorder:
+    """Stands for the scores socket: keeps every frame sent, in order."""
+
+    def __init__(self) -> None:
+        self.frames: list[bytes] = []
+
+    def send(self, data: bytes, flags: int = 0) -> None:
+        self.frames.append(bytes(data))
+
+
+def run_server(state: Path, blocks: list[list[list[bytes]]], small_paths: bool, monkeypatch: Any) -> Any:
+    """Handle the blocks in a Server (no sockets), each at its own fixed arrival time; returns
+    (server, frames published, journal bytes)."""
+    from oddsmill.server import Server, ServerSettings
+
+    server = Server(ServerSettings(state_dir=state, pending_limit=5, pending_ttl=30.0), LearnerSettings(scale_warmup=4))
+    if not small_paths:
+        monkeypatch.setattr(server, "_quick", lambda *a: False)
+        monkeypatch.setattr(server, "_lone", lambda *a: [None])
+    pub = Recorder()
+    for k, block in enumerate(blocks):
+        monkeypatch.setattr(time, "time", lambda k=k: 1_000.0 + 7.0 * k)  # the arrival of block k
+        server.handle(block, pub)  # type: ignore[arg-type]
+    monkeypatch.undo()
+    server.journal.close()
+    journal = b"".join(p.read_bytes() for p in sorted(state.glob("journal-*")))
+    return server, pub.frames, journal
+
+
+def training(rng: np.random.Generator, names: list[str], ident: object = None) -> dict[str, Any]:
+    body: dict[str, Any] = {"x": {n: float(rng.normal() * 10) for n in names}, "y": int(rng.random() < 0.4)}
+    if ident is not None:
+        body["id"] = ident
+    return body
+
+
+KINDS = [
+    "train",  # numeric, the usual names: the quick path once the names are known
+    "train_id",
+    "train_str_id",
+    "train_other_order",  # the same names in another order: another run
+    "train_new_name",
+    "request",  # a scoring request with an id: held
+    "outcome",  # the outcome of an earlier request (or of none: unknown_outcome)
+    "one_hot",
+    "weighted",
+    "numbered",  # src and seq (one repeated: a duplicate)
+    "bad_label",
+    "not_msgpack",
+    "three_frames",
+    "batch",
+    "cols",
+]
+messages = st.sampled_from(KINDS)
+
+
+def build(kinds: list[str], seed: int) -> list[list[bytes]]:
+    rng = np.random.default_rng(seed)
+    out: list[list[bytes]] = []
+    for i, kind in enumerate(kinds):
+        body: Any
+        if kind == "train":
+            body = training(rng, NAMES)
+        elif kind == "train_id":
+            body = training(rng, NAMES, ident=i)
+        elif kind == "train_str_id":
+            body = training(rng, NAMES, ident=f"P{i:05d}")
+        elif kind == "train_other_order":
+            body = training(rng, NAMES[::-1], ident=i * 1000)
+        elif kind == "train_new_name":
+            body = training(rng, [*NAMES, f"extra_{i % 3}"])
+        elif kind == "request":
+            body = {"id": f"R{i % 7}", "x": {n: float(rng.normal()) for n in NAMES}}
+        elif kind == "outcome":
+            body = {"id": f"R{int(rng.integers(0, 9))}", "y": int(rng.random() < 0.5)}
+        elif kind == "one_hot":
+            body = {"x": {"route_km": 3.0, "depot": "Harbourside"}, "y": 1, "id": i}
+        elif kind == "weighted":
+            body = {**training(rng, NAMES), "w": 2.5}
+        elif kind == "numbered":
+            body = {**training(rng, NAMES), "src": "courier-app", "seq": i // 2}
+        elif kind == "bad_label":
+            body = {"x": {"route_km": 1.0}, "y": 3}
+        elif kind == "not_msgpack":
+            out.append([b"events", b"\xc1\xc1"])
+            continue
+        elif kind == "three_frames":
+            out.append([b"events", msgpack.packb(training(rng, NAMES)), b"extra"])
+            continue
+        elif kind == "batch":
+            body = {"batch": [training(rng, NAMES) for _ in range(3)]}
+        else:
+            rows = rng.normal(size=(3, 3))
+            body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 255]), "id": [1, 2, 3]}
+        out.append([b"events", msgpack.packb(body)])
+    return out
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.lists(st.sampled_from(["train", "train_id"]) | messages, min_size=1, max_size=40),
+    st.lists(st.integers(1, 6), min_size=1, max_size=40),
+    st.integers(0, 2**32 - 1),
+)
+def test_small_blocks_publish_journal_and_learn_what_the_full_path_does(
+    tmp_path_factory: Any, kinds: list[str], sizes: list[int], seed: int
+) -> None:
+    msgs = build(kinds, seed)
+    blocks, at, k = [], 0, 0
+    while at < len(msgs):
+        blocks.append(msgs[at : at + sizes[k % len(sizes)]])
+        at += sizes[k % len(sizes)]
+        k += 1
+    with pytest.MonkeyPatch.context() as mp:
+        fast, fast_frames, fast_journal = run_server(tmp_path_factory.mktemp("fast"), blocks, True, mp)
+    with pytest.MonkeyPatch.context() as mp:
+        full, full_frames, full_journal = run_server(tmp_path_factory.mktemp("full"), blocks, False, mp)
+    assert fast_frames == full_frames
+    assert fast_journal == full_journal
+    same_state(fast.engine, full.engine)
+    assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
+    assert fast.engine.metrics.history == full.engine.metrics.history
+
+
+def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) -> None:
+    """600 messages of every kind in blocks of 1 to 8, with both small paths counted: each takes
+    blocks, and the daemon publishes, journals and learns what it does with both turned off."""
+    from oddsmill.server import Server
+
+    rng = np.random.default_rng(77)
+    kinds = [str(k) for k in rng.choice(["train", "train_id", "request", "outcome"], size=600)]
+    for at in rng.integers(0, 600, size=60).tolist():
+        kinds[at] = str(rng.choice(KINDS))
+    msgs = build(kinds, 3)
+    blocks, at = [], 0
+    while at < len(msgs):
+        n = int(rng.integers(1, 9))
+        blocks.append(msgs[at : at + n])
+        at += n
+    taken = {"_quick": 0, "_lone": 0}
+    originals = {name: getattr(Server, name) for name in taken}
+
+    def counting(name: str) -> Any:
+        def counted(self: Any, *a: Any) -> Any:
+            done = originals[name](self, *a)
+            taken[name] += done is True or done == []  # (True: _quick's "done", []: _lone's)
+            return done
+
+        return counted
+
+    try:
+        for name in taken:
+            setattr(Server, name, counting(name))
+        with pytest.MonkeyPatch.context() as mp:
+            fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
+    finally:
+        for name, f in originals.items():
+            setattr(Server, name, f)
+    assert taken["_quick"] >= 10 and taken["_lone"] >= 10, taken
+    with pytest.MonkeyPatch.context() as mp:
+        full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
+    assert len(fast_frames) > 1000 and fast_frames == full_frames
+    assert fast_journal == full_journal
+    same_state(fast.engine, full.engine)
+    assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
+
+
+def test_the_quick_path_takes_known_names_and_declines_the_rest(tmp_path: Path) -> None:
+    """Which blocks each path takes (the equality test above would pass if neither took any)."""
+    from oddsmill.server import Server, ServerSettings
+
+    server = Server(ServerSettings(state_dir=tmp_path))
+    pub = Recorder()
+    rng = np.random.default_rng(5)
+    first = [[b"events", msgpack.packb(training(rng, NAMES, ident=i))] for i in range(3)]
+    assert not server._quick(first, pub, 1.0)  # type: ignore[arg-type]  # names not known yet
+    server.handle(first, pub)  # type: ignore[arg-type]  # the full path learns them
+    assert server.engine.learner.step == 3
+    again = [[b"events", msgpack.packb(training(rng, NAMES, ident=i))] for i in range(3, 8)]
+    assert server._quick(again, pub, 2.0)  # type: ignore[arg-type]
+    assert server.engine.learner.step == 8 and server.engine.counters.train == 8
+    answers = [msgpack.unpackb(f) for f in pub.frames[1::2]]
+    assert [a["id"] for a in answers] == list(range(8)) and [a["step"] for a in answers] == list(range(8))
+    mixed = [again[0], [b"events", msgpack.packb(training(rng, NAMES[::-1]))]]
+    assert not server._quick(mixed, pub, 3.0)  # type: ignore[arg-type]  # two runs of names
+    request = [[b"events", msgpack.packb({"id": "R1", "x": {"route_km": 1.0}})]]
+    assert not server._quick(request, pub, 3.0)  # type: ignore[arg-type]
+    assert server._lone(request, pub, 3.0) == []  # type: ignore[arg-type]  # done: held
+    assert "R1" in server.engine.pending
+    assert server._lone([[b"events", msgpack.packb({"batch": []})]], pub, 3.0) != []  # type: ignore[arg-type]
+    server.journal.close()
+
+
+def test_run_reader_reads_one_run_or_declines() -> None:
+    """RunReader.read against read_each: it reads a block exactly when read_each makes the whole
+    block one run, with the same names, rows, labels and ids (the arrays it keeps grow as needed)."""
+    reader = RunReader()
+    rng = np.random.default_rng(9)
+    cases: list[list[bytes]] = [
+        [msgpack.packb(training(rng, NAMES, ident=i)) for i in range(5)],
+        [msgpack.packb(training(rng, NAMES)) for _ in range(2)],
+        [msgpack.packb(training(rng, [f"n{j}" for j in range(300)], ident="x" * 300)) for _ in range(40)],
+        [msgpack.packb(training(rng, NAMES)), msgpack.packb(training(rng, NAMES[::-1]))],
+        [msgpack.packb(training(rng, NAMES)), msgpack.packb({**training(rng, NAMES), "w": 2.0})],
+        [msgpack.packb({"x": {"a": 1.0}})],
+        [msgpack.packb(training(rng, NAMES)) + b"\x00"],
+        [b"\x83\xa1x"],
+    ]
+    for raws in cases:
+        got = reader.read(raws)
+        which, blocks = read_each(list(raws))
+        one_run = len(blocks) == 1 and which == [0] * len(raws)
+        assert (got is not None) == one_run
+        if got is not None:
+            names, rows, y, ids = got
+            assert blocks[0] is not None
+            assert names == blocks[0].cols and rows.tolist() == blocks[0].rows.tolist()
+            assert y.tolist() == blocks[0].y.tolist() and ids == blocks[0].ids
+    # one byte changed anywhere in a block of three: read as read_each reads it, or declined
+    body = [msgpack.packb(training(rng, NAMES, ident=i)) for i in range(3)]
+    for _ in range(1500):
+        k = int(rng.integers(0, 3))
+        raw = bytearray(body[k])
+        raw[int(rng.integers(0, len(raw)))] = int(rng.integers(0, 256))
+        raws = [*body[:k], bytes(raw), *body[k + 1 :]]
+        got = reader.read(raws)
+        which, blocks = read_each(list(raws))
+        if got is not None:
+            assert len(blocks) == 1 and which == [0, 0, 0] and blocks[0] is not None
+            assert got[1].tolist() == blocks[0].rows.tolist() and got[3] == blocks[0].ids
+
+
+@pytest.mark.parametrize(
+    "learner",
+    [
+        LearnerSettings(scale_warmup=4),
+        LearnerSettings(schedule="adagrad", scale_warmup=4),
+        LearnerSettings(average=False, l2=1e-3, scale_warmup=4),
+        LearnerSettings(average_start=30, scaling="none", eta0=0.05),
+    ],
+    ids=["defaults", "adagrad", "plain", "raw-values"],
+)
+def test_engine_one_and_train_rows_equal_process(learner: LearnerSettings) -> None:
+    """Engine.one event by event and Engine.train_rows on runs, against Engine.process on the same
+    items: the same answers, state, pending store, counters and metrics, bit for bit."""
+    rng = np.random.default_rng(21)
+    items: list[Any] = []
+    for i in range(1500):
+        u = rng.random()
+        if u < 0.5:
+            items.append(decode_body(training(rng, NAMES, ident=i))[0])
+        elif u < 0.65:
+            items.append(Event(f"R{i % 11}", {n: float(rng.normal()) for n in NAMES}, None, 1.0, None))
+        elif u < 0.8:
+            items.append(Event(f"R{int(rng.integers(0, 13))}", None, int(rng.random() < 0.5), 1.0, None))
+        elif u < 0.9:
+            items.append(decode_body({"x": {"depot": str(rng.choice(["a", "b"])), "route_km": 1.0}, "y": 1})[0])
+        else:
+            items.append(decode_body({"x": {"route_km": float("nan")}, "y": 1})[0])  # refused: non_finite
+    one, full = Engine(Learner(learner), 100, 7, 400.0), Engine(Learner(learner), 100, 7, 400.0)
+    for i, item in enumerate(items):
+        arrival = 10.0 * i
+        want = full.process([(arrival, item)])
+        if isinstance(item, Event):
+            got = one.one(arrival, item)
+            assert [r for _, r in want] == ([] if got is None else [got])
+        else:
+            assert isinstance(want[0][1], Rejection)
+            one.process([(arrival, item)])
+    same_state(one, full)
+    assert one.state_dict()["pending"] == full.state_dict()["pending"]
+    # rows of known names: train_rows against process on the same columnar block
+    from oddsmill.protocol import Columns
+
+    assert one.pending  # held requests, all past their time-to-live at the first block below
+    for lo in range(0, 400, 40):
+        rows = rng.normal(size=(40, 3)) * 5
+        y = (rng.random(40) < 0.3).astype(float)
+        slots = one.learner.vocab.shapes.get(tuple(NAMES))
+        assert slots is not None
+        logits, step = one.train_rows(20_000.0 + lo, slots, rows, y)
+        want = full.process([(20_000.0 + lo, Columns(tuple(NAMES), rows, y, None))])
+        ((_, scores),) = want
+        assert not isinstance(scores, Rejection | Score)
+        assert logits.tobytes() == scores.logits.tobytes() and step == scores.step
+    assert not one.pending and one.counters.pending_expired > 0
+    same_state(one, full)
+
+
+def test_unpacked_bodies_are_not_read_twice(tmp_path: Path) -> None:
+    """A block the small paths decline after unpacking hands its bodies to the full path, which
+    answers as it would have (a columnar block after a lone event)."""
+    from oddsmill.server import Server, ServerSettings
+
+    server = Server(ServerSettings(state_dir=tmp_path))
+    pub = Recorder()
+    body = {"id": "A", "x": {"route_km": 2.0}, "y": 1}
+    block = [[b"events", msgpack.packb(body)], [b"events", msgpack.packb({"cols": ["a"], "rows": b"\x00" * 8})]]
+    bodies = server._lone(block, pub, 1.0)  # type: ignore[arg-type]
+    assert bodies == [unpack(block[0][1]), unpack(block[1][1])] and pub.frames == []
+    server.handle(block, pub)  # type: ignore[arg-type]
+    assert [msgpack.unpackb(f)["id"] for f in pub.frames[1::2]] == ["A", [None]]
+    server.journal.close()
