@@ -329,3 +329,71 @@ def test_unpacked_bodies_are_not_read_twice(tmp_path: Path) -> None:
     server.handle(block, pub)  # type: ignore[arg-type]
     assert [msgpack.unpackb(f)["id"] for f in pub.frames[1::2]] == ["A", [None]]
     server.journal.close()
+
+
+@pytest.mark.parametrize("fail_at", [3, 4], ids=["quick-block", "lone-block"])
+def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_path: Path, fail_at: int) -> None:
+    """The journal's write fails at a block the quick path (3) or the lone path (4) would take:
+    the block is scored with the model as it stands and held, the next one too; once writes
+    succeed again the held blocks are journaled and learned. Published frames, journal and state
+    equal those of the full path under the same failure."""
+    import errno
+
+    from oddsmill import storage
+
+    kinds = [["train"] * 3, ["train_id"] * 2, ["request"], ["train", "train"], ["request", "train_id"]]
+    kinds += [["train"] * 2, ["outcome"], ["train_id"] * 3, ["request"], ["train"] * 4]
+    msgs = build([k for block in kinds for k in block], 8)
+    blocks, at = [], 0
+    for block in kinds:
+        blocks.append(msgs[at : at + len(block)])
+        at += len(block)
+    real_writev = storage.os.writev
+
+    def run(state: Path, small_paths: bool) -> tuple[Any, list[bytes], bytes]:
+        from oddsmill.server import Server, ServerSettings
+
+        with pytest.MonkeyPatch.context() as mp:
+            server = Server(ServerSettings(state_dir=state), LearnerSettings(scale_warmup=4))
+            if not small_paths:
+                mp.setattr(server, "_quick", lambda *a: False)
+                mp.setattr(server, "_lone", lambda *a: [None])
+            taken = {"quick": 0, "lone": 0}
+            for name in ("_quick", "_lone"):
+                inner = getattr(server, name)
+
+                def counted(*a: Any, _inner: Any = inner, _name: str = name) -> Any:
+                    done = _inner(*a)
+                    taken[_name[1:]] += done is True or done == []
+                    return done
+
+                mp.setattr(server, name, counted)
+            pub = Recorder()
+            for k, block in enumerate(blocks):
+                mp.setattr(time, "time", lambda k=k: 2_000.0 + 3.0 * k)
+                if k in (fail_at, fail_at + 1):
+
+                    def full_disk(fd: int, parts: Any) -> int:
+                        raise OSError(errno.ENOSPC, "No space left on device (injected)")
+
+                    mp.setattr(storage.os, "writev", full_disk)
+                else:
+                    mp.setattr(storage.os, "writev", real_writev)
+                if k == fail_at + 2:
+                    assert server.outage is not None
+                    assert len(server.held) == len(blocks[fail_at]) + len(blocks[fail_at + 1])
+                    server._recover()
+                    assert server.outage is None and not server.held
+                server.handle(block, pub)  # type: ignore[arg-type]
+        if small_paths:  # the failing block went through the path under test
+            assert taken["quick" if fail_at == 3 else "lone"] >= 2, taken
+        server.journal.close()
+        journal = b"".join(p.read_bytes() for p in sorted(state.glob("journal-*")))
+        return server, pub.frames, journal
+
+    fast, fast_frames, fast_journal = run(tmp_path / "fast", True)
+    full, full_frames, full_journal = run(tmp_path / "full", False)
+    assert fast_frames == full_frames and len(fast_frames) > 20
+    assert fast_journal == full_journal
+    same_state(fast.engine, full.engine)
+    assert fast.engine.learner.step == 18  # 17 training events (the held ones too) and an outcome joined
