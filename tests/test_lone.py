@@ -62,8 +62,11 @@ def training(rng: np.random.Generator, names: list[str], ident: object = None) -
     return body
 
 
+BIG_IDS = [127, 128, 255, 256, 65535, 65536, 2**32 - 1, 2**32, 2**63 - 1, 2**63, 2**64 - 1]
+BIG_IDS += [-1, -32, -33, -128, -129, -32768, -32769, -(2**31), -(2**31) - 1, -(2**63)]
 KINDS = [
     "train",  # numeric, the usual names: the quick path once the names are known
+    "train_big_id",  # every width of msgpack integer (the compiled packing of its score)
     "train_id",
     "train_str_id",
     "train_other_order",  # the same names in another order: another run
@@ -91,6 +94,8 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
             body = training(rng, NAMES)
         elif kind == "train_id":
             body = training(rng, NAMES, ident=i)
+        elif kind == "train_big_id":
+            body = training(rng, NAMES, ident=BIG_IDS[i % len(BIG_IDS)])
         elif kind == "train_str_id":
             body = training(rng, NAMES, ident=f"P{i:05d}")
         elif kind == "train_other_order":
@@ -126,7 +131,7 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
 
 @settings(max_examples=40, deadline=None)
 @given(
-    st.lists(st.sampled_from(["train", "train_id"]) | messages, min_size=1, max_size=40),
+    st.lists(st.sampled_from(["train", "train_id", "train_big_id"]) | messages, min_size=1, max_size=40),
     st.lists(st.integers(1, 6), min_size=1, max_size=40),
     st.integers(0, 2**32 - 1),
 )
@@ -153,10 +158,11 @@ def test_small_blocks_publish_journal_and_learn_what_the_full_path_does(
 def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) -> None:
     """600 messages of every kind in blocks of 1 to 8, with both small paths counted: each takes
     blocks, and the daemon publishes, journals and learns what it does with both turned off."""
+    from oddsmill.quick import Known
     from oddsmill.server import Server
 
     rng = np.random.default_rng(77)
-    kinds = [str(k) for k in rng.choice(["train", "train_id", "request", "outcome"], size=600)]
+    kinds = [str(k) for k in rng.choice(["train", "train_id", "train_big_id", "request", "outcome"], size=600)]
     for at in rng.integers(0, 600, size=60).tolist():
         kinds[at] = str(rng.choice(KINDS))
     msgs = build(kinds, 3)
@@ -165,8 +171,13 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         n = int(rng.integers(1, 9))
         blocks.append(msgs[at : at + n])
         at += n
-    taken = {"_quick": 0, "_lone": 0}
-    originals = {name: getattr(Server, name) for name in taken}
+    taken = {"_quick": 0, "_lone": 0, "learn": 0}  # (learn: quick.py's compiled learning)
+    originals = {name: getattr(Server, name) for name in ("_quick", "_lone")}
+    learn = Known.learn
+
+    def learn_counted(self: Any, *a: Any) -> Any:
+        taken["learn"] += 1
+        return learn(self, *a)
 
     def counting(name: str) -> Any:
         def counted(self: Any, *a: Any) -> Any:
@@ -177,14 +188,16 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         return counted
 
     try:
-        for name in taken:
+        Known.learn = learn_counted  # type: ignore[method-assign]
+        for name in originals:
             setattr(Server, name, counting(name))
         with pytest.MonkeyPatch.context() as mp:
             fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
     finally:
+        Known.learn = learn  # type: ignore[method-assign]
         for name, f in originals.items():
             setattr(Server, name, f)
-    assert taken["_quick"] >= 10 and taken["_lone"] >= 10, taken
+    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5, taken
     with pytest.MonkeyPatch.context() as mp:
         full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
     assert len(fast_frames) > 1000 and fast_frames == full_frames

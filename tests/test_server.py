@@ -284,6 +284,7 @@ work = [
     [one(100, y=False)],  # a scoring request held...
     [[b"events", msgpack.packb({"id": 100, "y": 1})]],  # ...and its outcome
     [one(i, ident=False) for i in range(20)],
+    [one(i) for i in range(20, 23)],  # the names of the last block: learned in compiled code (quick.py)
     [[b"events", msgpack.packb({"x": {"depot": "Eastgate", "stops_before": 2.0}, "y": 0})]],
 ]
 for block in work:

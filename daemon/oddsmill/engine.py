@@ -12,7 +12,7 @@ from array import array
 from collections import OrderedDict
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any, Final
+from typing import TYPE_CHECKING, Any, Final
 
 import numpy as np
 
@@ -22,6 +22,9 @@ from .errors import ProtocolError
 from .learner import Learner
 from .progressive import ProgressiveMetrics
 from .protocol import Columns, Event, Item
+
+if TYPE_CHECKING:
+    from .quick import Known
 
 # A held scoring request: (slots, values, w, logit, clock): the logit is the score published for
 # it, the clock its arrival time (the time-to-live counts in the daemon's own clock). A plain tuple
@@ -248,6 +251,17 @@ class Engine:
         self.counters.train += rows.shape[0]
         self.metrics.update(logits, y)
         return logits, step
+
+    def train_known(self, arrival: float, known: Known) -> list[bytes]:
+        """`train_rows` on the block `known` has read (quick.py), in one compiled call: the same
+        state bit for bit (tests/test_lone.py). Returns the score bodies, packed."""
+        if self.pending:
+            self._expire(arrival)
+        ms = self.metrics.scalars()
+        bodies = known.learn(self.learner.arrays(), self.metrics.arrays(), ms, arrival)
+        self.metrics.set_scalars(ms)
+        self.counters.train += len(bodies)
+        return bodies
 
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:
         """Everything of a block but the kernel: sequence checks, encoding, the pending store and

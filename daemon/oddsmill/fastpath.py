@@ -467,6 +467,12 @@ class RunReader:
         self._nkeys = np.empty(0, dtype=np.int64)
         self._keypos = np.empty(0, dtype=np.int64)
         self._key = np.empty(0, dtype=np.uint8)
+        self._first: tuple[np.ndarray, int, int] = (np.empty(0, dtype=np.uint8), 0, 0)
+
+    def key_bytes(self) -> bytes:
+        """The key bytes (str headers and names) of the first event of the last block read."""
+        b, pos, k = self._first
+        return bytes(self._key[: _key_bytes(b, pos, k, self._key)])
 
     def read(
         self, raws: list[bytes]
@@ -491,6 +497,7 @@ class RunReader:
         k = _parse_run(b, starts, self._values, self._ys, self._ids, self._nkeys, self._keypos, MAX_STR, MAX_ITEMS)
         if k < 0:
             return None
+        self._first = (b, int(self._keypos[0]), int(k))
         names = _names_at(b, int(self._keypos[0]), int(k), self._key)
         if names is None:
             return None

@@ -177,6 +177,11 @@ class Learner:
             at = end
         return out
 
+    def arrays(self) -> tuple[np.ndarray, ...]:
+        """The kernel's state (settings, scalars, slot rows, flags, centred list, warm-up queue),
+        for compiled callers that run the kernel's steps themselves (quick.py)."""
+        return (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq)
+
     def run_one(self, slots: Sequence[int], values: Sequence[float], op: int, y: float, w: float) -> float:
         """`run` over a block of one event (kernel.learn_event); returns its published logit."""
         idx = np.array(slots, dtype=np.int64)

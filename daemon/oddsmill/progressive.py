@@ -188,6 +188,20 @@ class ProgressiveMetrics:
             self._points,
         )
 
+    def arrays(self) -> tuple[np.ndarray, ...]:
+        """The arrays `_record` updates, for compiled callers that record themselves (quick.py)."""
+        return (self._z, self._y, self._ll, self._chunks, self._dirty, self._history)
+
+    def scalars(self) -> np.ndarray:
+        """`_record`'s scalars (sum, count, head, filled, stride, points), for `set_scalars`."""
+        return np.array([self.sum, self.count, self._head, self._filled, self.stride, self._points], dtype=np.float64)
+
+    def set_scalars(self, ms: np.ndarray) -> None:
+        total, count, head, filled, stride, points = ms.tolist()
+        self.sum = total
+        self.count, self._head, self._filled = int(count), int(head), int(filled)
+        self.stride, self._points = int(stride), int(points)
+
     def update_one(self, z: float, y: float) -> None:
         """`update` with one labelled event (its arrays are kept, not built a call)."""
         self._one_z[0] = z

@@ -1,0 +1,302 @@
+"""The daemon's commonest block under load, in two compiled calls: messages of one numeric training
+event each, every one with the set of names the block before had (in the same order), with an
+integer id or none.
+
+`_read_known` reads the block (fastpath's reader) and checks it; nothing is changed, so the server
+journals the block only once it is known to be such. `_learn_known` then learns the events as the
+rows of one columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the
+progressive metrics (`progressive._record`, as `ProgressiveMetrics.update` does) and packs each
+score body (PROTOCOL 3) byte for byte as `msgpack.packb` packs the dict the full path builds. The
+same arithmetic as `Server._quick` on the same block, so the same state and the same bytes
+(tests/test_lone.py holds all three paths to the full one), with two calls where that path made
+four, and no Python object an event but its score's bytes.
+
+>>> import msgpack, numpy as np
+>>> body = np.zeros(80, dtype=np.uint8)
+>>> n = _pack_score(body, 0, True, 7, np.uint64(0), 0.0, 3, 1.5)
+>>> msgpack.unpackb(body[:n].tobytes())
+{'id': 7, 'p': 0.5, 'logit': 0.0, 'step': 3, 'ts': 1.5}
+"""
+
+from __future__ import annotations
+
+import math
+from itertools import accumulate
+
+import numpy as np
+from numba import njit
+
+from . import kernel as K
+from .fastpath import _event_at, _follows, _str
+from .progressive import _record
+from .protocol import MAX_ITEMS, MAX_MESSAGE, MAX_STR
+
+READ, NOT_SUCH, OTHER_NAMES, STR_ID = 0, -1, -2, -3  # what `_read_known` found
+SCORE_BYTES = 72  # at most, a score body: 5 keys, 4 numbers of 9 bytes and an id of 9
+_ID = np.frombuffer(b"\x85\xa2id", dtype=np.uint8)  # the body's map header and its first key
+_P = np.frombuffer(b"\xa1p", dtype=np.uint8)
+_LOGIT = np.frombuffer(b"\xa5logit", dtype=np.uint8)
+_STEP = np.frombuffer(b"\xa4step", dtype=np.uint8)
+_TS = np.frombuffer(b"\xa2ts", dtype=np.uint8)
+
+
+@njit(cache=True, error_model="numpy")
+def _read_known(b, starts, key, values, ys, ids, nkeys, keypos, max_str, max_items):  # type: ignore[no-untyped-def]
+    """Read messages end to end in b (message e from starts[e] to starts[e + 1]) into values (m x k,
+    k = the names of `key`), ys and ids (where each id's msgpack bytes begin, -1 without one).
+    READ when every message is one numeric training event whose x map has the key bytes `key`
+    (str headers and names, as fastpath._key_bytes copies them) and whose id, if any, is an
+    integer; otherwise NOT_SUCH, OTHER_NAMES (another set or order of names) or STR_ID."""
+    scratch = np.zeros(1, dtype=np.uint64)
+    as_float = scratch.view(np.float64)
+    used = 0
+    for e in range(starts.shape[0] - 1):
+        start, end = starts[e], starts[e + 1]
+        ok, pos, used = _event_at(
+            b, start, end, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items
+        )
+        if not ok or pos != end:
+            return NOT_SUCH
+        if e > 0:
+            if not _follows(b, e, nkeys, keypos):
+                return NOT_SUCH
+        else:  # the first event's names against the key
+            p = keypos[0]
+            q = 0
+            for _ in range(nkeys[0]):
+                s, length, after = _str(b, p, end)
+                if q + after - p > key.shape[0]:
+                    return OTHER_NAMES
+                for i in range(p, after):
+                    if b[i] != key[q]:
+                        return OTHER_NAMES
+                    q += 1
+                p = after + 9
+            if q != key.shape[0]:
+                return OTHER_NAMES
+        if ids[e] >= 0:
+            c = b[ids[e]]
+            if not (c <= 0x7F or c >= 0xE0 or 0xCC <= c <= 0xD3):
+                return STR_ID
+    return READ
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _put(out, p, src):  # type: ignore[no-untyped-def]
+    for i in range(src.shape[0]):
+        out[p + i] = src[i]
+    return p + src.shape[0]
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _put_be(out, p, bits, size):  # type: ignore[no-untyped-def]
+    """The low `size` bytes of bits, big-endian."""
+    for i in range(size):
+        out[p + i] = np.uint8((bits >> np.uint64(8 * (size - 1 - i))) & np.uint64(0xFF))
+    return p + size
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _put_float(out, p, v, scratch, as_float):  # type: ignore[no-untyped-def]
+    as_float[0] = v
+    out[p] = 0xCB
+    return _put_be(out, p + 1, scratch[0], 8)
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _put_int(out, p, v):  # type: ignore[no-untyped-def]
+    """An int64 as msgpack.packb packs it: the shortest form, unsigned ones for v >= 0."""
+    u = np.uint64(v)
+    if v >= 0:
+        if v < 128:
+            out[p] = np.uint8(v)
+            return p + 1
+        if v <= 0xFF:
+            out[p] = 0xCC
+            return _put_be(out, p + 1, u, 1)
+        if v <= 0xFFFF:
+            out[p] = 0xCD
+            return _put_be(out, p + 1, u, 2)
+        if v <= 0xFFFFFFFF:
+            out[p] = 0xCE
+            return _put_be(out, p + 1, u, 4)
+        out[p] = 0xCF
+        return _put_be(out, p + 1, u, 8)
+    if v >= -32:
+        out[p] = np.uint8(u & np.uint64(0xFF))
+        return p + 1
+    if v >= -128:
+        out[p] = 0xD0
+        return _put_be(out, p + 1, u, 1)
+    if v >= -32768:
+        out[p] = 0xD1
+        return _put_be(out, p + 1, u, 2)
+    if v >= -2147483648:
+        out[p] = 0xD2
+        return _put_be(out, p + 1, u, 4)
+    out[p] = 0xD3
+    return _put_be(out, p + 1, u, 8)
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _read_int(b, pos):  # type: ignore[no-untyped-def]
+    """(fits in int64, value, raw bits) of the msgpack integer at pos (checked by the reader); a
+    uint64 past int64's range comes back as its bits, to be packed as it came (0xCF)."""
+    c = np.int64(b[pos])
+    if c <= 0x7F:
+        return True, c, np.uint64(0)
+    if c >= 0xE0:
+        return True, c - 256, np.uint64(0)
+    size = 1 << ((c - 0xCC) & 3)
+    bits = np.uint64(0)
+    for i in range(size):
+        bits = (bits << np.uint64(8)) | np.uint64(b[pos + 1 + i])
+    if c <= 0xCF:  # unsigned
+        if c == 0xCF and bits >> np.uint64(63):
+            return False, np.int64(0), bits
+        return True, np.int64(bits), bits
+    shift = np.uint64(64 - 8 * size)  # signed: extend the sign of the top byte
+    return True, np.int64(bits << shift) >> np.int64(shift), bits
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _p(z):  # type: ignore[no-untyped-def]
+    """server._p, with the same libm exp."""
+    if z >= 0:
+        return 1.0 / (1.0 + math.exp(-z))
+    e = math.exp(z)
+    return e / (1.0 + e)
+
+
+@njit(cache=True, error_model="numpy")
+def _pack_score(out, p, has_id, ident, big_id, z, step, ts):  # type: ignore[no-untyped-def]
+    """One score body, {"id", "p", "logit", "step", "ts"} in that order, at out[p:]; returns its
+    end. The id: nil (not has_id), the int64 ident, or (ident 0, big_id set) a uint64 past int64."""
+    scratch = np.zeros(1, dtype=np.uint64)
+    as_float = scratch.view(np.float64)
+    p = _put(out, p, _ID)
+    if not has_id:
+        out[p] = 0xC0
+        p += 1
+    elif big_id != np.uint64(0):
+        out[p] = 0xCF
+        p = _put_be(out, p + 1, big_id, 8)
+    else:
+        p = _put_int(out, p, ident)
+    p = _put(out, p, _P)
+    p = _put_float(out, p, _p(z), scratch, as_float)
+    p = _put(out, p, _LOGIT)
+    p = _put_float(out, p, z, scratch, as_float)
+    p = _put(out, p, _STEP)
+    p = _put_int(out, p, step)
+    p = _put(out, p, _TS)
+    return _put_float(out, p, ts, scratch, as_float)
+
+
+@njit(cache=True, error_model="numpy")
+def _learn_known(  # type: ignore[no-untyped-def]
+    b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends
+):
+    """Learn the m events `_read_known` read (rows of values at `slots`, labels ys) as
+    kernel.learn_rows does, record them in the metrics as ProgressiveMetrics.update does (ms: its
+    sum, count, head, filled, stride and points, updated in place), and pack each one's score body
+    into out (body r ends at ends[r]; its id from b at ids[r])."""
+    k = slots.shape[0]
+    step0 = np.int64(sc[K.S_T])
+    rows = values[: m * k].reshape((m, k))
+    y = ys[:m]
+    z = np.empty(m)
+    dx = np.zeros(max(1, int(prm[K.P_MAX_CENTRED])))
+    ada = prm[K.P_SCHED] == K.SCH_ADAGRAD
+    K._shared_rows(
+        prm, sc, sl, fl, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, ada
+    )
+    total, count, head, filled, stride, points = _record(
+        z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
+        int(ms[4]), int(ms[5]),
+    )  # fmt: skip
+    ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
+    p = 0
+    for r in range(m):
+        if ids[r] < 0:
+            p = _pack_score(out, p, False, 0, np.uint64(0), z[r], step0 + r, arrival)
+        else:
+            fits, ident, bits = _read_int(b, ids[r])
+            p = _pack_score(out, p, True, ident, np.uint64(0) if fits else bits, z[r], step0 + r, arrival)
+        ends[r] = p
+
+
+class Known:
+    """The set of names the quick path learned last (its key bytes and slots, in one vocabulary)
+    and the arrays it reads blocks into, kept from block to block."""
+
+    def __init__(self) -> None:
+        self.vocab: object = None  # the vocabulary the slots are of
+        self.key = np.empty(0, dtype=np.uint8)
+        self.slots = np.empty(0, dtype=np.int64)
+        self._values = np.empty(0)
+        self._ys = np.empty(0)
+        self._ids = np.empty(0, dtype=np.int64)
+        self._nkeys = np.empty(0, dtype=np.int64)
+        self._keypos = np.empty(0, dtype=np.int64)
+        self._out = np.empty(0, dtype=np.uint8)
+        self._ends = np.empty(0, dtype=np.int64)
+        self._b = np.empty(0, dtype=np.uint8)
+        self._m = 0
+
+    def remember(self, vocab: object, key: bytes, slots: tuple[int, ...]) -> None:
+        """Names every one of which has a slot in `vocab`: their key bytes and slots."""
+        self.vocab = vocab
+        self.key = np.frombuffer(key, dtype=np.uint8)
+        self.slots = np.array(slots, dtype=np.int64)
+
+    def read(self, raws: list[bytes]) -> int:
+        """`_read_known` over the messages (READ, NOT_SUCH, OTHER_NAMES or STR_ID); after READ,
+        `learn` learns them."""
+        m = len(raws)
+        joined = b"".join(raws)
+        if max(map(len, raws)) > MAX_MESSAGE:
+            return NOT_SUCH
+        if self._ys.shape[0] < m:
+            self._ys = np.empty(2 * m)
+            self._ids = np.empty(2 * m, dtype=np.int64)
+            self._nkeys = np.zeros(2 * m, dtype=np.int64)
+            self._keypos = np.zeros(2 * m, dtype=np.int64)
+            self._ends = np.empty(2 * m, dtype=np.int64)
+            self._out = np.empty(2 * m * SCORE_BYTES, dtype=np.uint8)
+        k = self.slots.shape[0]
+        if self._values.shape[0] < m * k:
+            self._values = np.empty(2 * m * k)
+        starts = np.array([0, *accumulate(map(len, raws))], dtype=np.int64)
+        b = np.frombuffer(joined, dtype=np.uint8)
+        # (values has room for m x k: an event with more features than the key's fails the read)
+        status: int = _read_known(
+            b,
+            starts,
+            self.key,
+            self._values[: m * k],
+            self._ys,
+            self._ids,
+            self._nkeys,
+            self._keypos,
+            MAX_STR,
+            MAX_ITEMS,
+        )
+        self._b, self._m = b, m
+        return status
+
+    def learn(
+        self, arrays: tuple[np.ndarray, ...], metrics: tuple[np.ndarray, ...], ms: np.ndarray, arrival: float
+    ) -> list[bytes]:
+        """Learn the block `read` read, with the learner's arrays and the metrics' (ms: their
+        scalars, updated in place); the score bodies, in order."""
+        m = self._m
+        prm, sc, sl, fl, cl, wq = arrays
+        rz, ry, rll, chunks, dirty, history = metrics
+        _learn_known(
+            self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq,
+            rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends,
+        )  # fmt: skip
+        data = self._out[: int(self._ends[m - 1])].tobytes()
+        ends = self._ends[:m].tolist()
+        return [data[a:e] for a, e in zip([0, *ends[:-1]], ends, strict=True)]
