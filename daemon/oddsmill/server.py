@@ -777,7 +777,7 @@ class Server:
             self._fail(e)  # the caller holds this block
             return False
         self.records += len(raws)
-        self.unsaved.extend((arrival, raw) for raw in raws)
+        self.unsaved += [(arrival, raw) for raw in raws]
         if synced or self.settings.fsync == "os":  # handed to the OS is all "os" promises
             self._saved()
         elif not self._sync_in_background():

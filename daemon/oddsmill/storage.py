@@ -218,7 +218,7 @@ class JournalWriter:
 
     def _add(self, parts: list[bytes]) -> None:
         self._parts += parts
-        self._size += sum(len(p) for p in parts)
+        self._size += sum(map(len, parts))
 
     def append(self, arrival: float, raw_body: bytes) -> None:
         self._add(_record_parts(arrival, [raw_body]))
@@ -235,6 +235,9 @@ class JournalWriter:
             n = os.writev(self._fd, parts[:_IOV_MAX])
             self._end += n
             self._size -= n
+            if self._size == 0:  # all written (the usual case): nothing to count piece by piece
+                parts.clear()
+                return
             done = 0
             while done < len(parts) and n >= len(parts[done]):
                 n -= len(parts[done])
