@@ -243,6 +243,7 @@ class Known:
         self._ends = np.empty(0, dtype=np.int64)
         self._b = np.empty(0, dtype=np.uint8)
         self._m = 0
+        self._one = np.zeros(2, dtype=np.int64)  # the starts of a block of one message
 
     def remember(self, vocab: object, key: bytes, slots: tuple[int, ...]) -> None:
         """Names every one of which has a slot in `vocab`: their key bytes and slots."""
@@ -267,7 +268,11 @@ class Known:
         k = self.slots.shape[0]
         if self._values.shape[0] < m * k:
             self._values = np.empty(2 * m * k)
-        starts = np.array([0, *accumulate(map(len, raws))], dtype=np.int64)
+        if m == 1:  # (a lone message: the commonest block at a modest load)
+            starts = self._one
+            starts[1] = len(joined)
+        else:
+            starts = np.array([0, *accumulate(map(len, raws))], dtype=np.int64)
         b = np.frombuffer(joined, dtype=np.uint8)
         # (values has room for m x k: an event with more features than the key's fails the read)
         status: int = _read_known(
@@ -297,6 +302,8 @@ class Known:
             self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq,
             rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends,
         )  # fmt: skip
+        if m == 1:
+            return [self._out[: int(self._ends[0])].tobytes()]
         data = self._out[: int(self._ends[m - 1])].tobytes()
         ends = self._ends[:m].tolist()
         return [data[a:e] for a, e in zip([0, *ends[:-1]], ends, strict=True)]
