@@ -453,12 +453,10 @@ def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns | None]
     return which, blocks
 
 
-class RunReader:
-    """Reads a block of messages of one numeric training event each, all with the same names in the
-    same order, in one compiled call (`_parse_run`) into arrays it keeps from block to block: the
-    daemon's commonest block under load, where `read_each`'s arrays and blocks cost more than the
-    reading (31 against about 10 us for a block of one message of 20 features, measured). The
-    arrays it returns are views of its own: read them before the next `read`."""
+class EventArrays:
+    """The arrays a block of one-event messages is read into (values, labels, where each id begins,
+    how many features, where the x map's keys begin), kept from block to block and grown as needed:
+    for RunReader and quick.Known."""
 
     def __init__(self) -> None:
         self._values = np.empty(0)
@@ -466,6 +464,43 @@ class RunReader:
         self._ids = np.empty(0, dtype=np.int64)
         self._nkeys = np.empty(0, dtype=np.int64)
         self._keypos = np.empty(0, dtype=np.int64)
+        self._one = np.zeros(2, dtype=np.int64)  # the starts of a block of one message
+
+    def _fit(self, raws: list[bytes], values: int) -> tuple[bytes, np.ndarray] | None:
+        """The messages end to end and where each starts, with room for their events and `values`
+        values; None when one is longer than the decoder takes."""
+        m = len(raws)
+        if max(map(len, raws)) > MAX_MESSAGE:
+            return None
+        if self._ys.shape[0] < m:
+            self._ys = np.empty(2 * m)
+            self._ids = np.empty(2 * m, dtype=np.int64)
+            self._nkeys = np.zeros(2 * m, dtype=np.int64)
+            self._keypos = np.zeros(2 * m, dtype=np.int64)
+            self._grown(2 * m)
+        if self._values.shape[0] < values:
+            self._values = np.empty(2 * values)
+        joined = b"".join(raws)
+        if m == 1:  # (a lone message: the commonest block at a modest load)
+            starts = self._one
+            starts[1] = len(joined)
+        else:
+            starts = np.array(list(accumulate(map(len, raws), initial=0)), dtype=np.int64)
+        return joined, starts
+
+    def _grown(self, messages: int) -> None:
+        """Room for this many messages now (for a subclass's own arrays)."""
+
+
+class RunReader(EventArrays):
+    """Reads a block of messages of one numeric training event each, all with the same names in the
+    same order, in one compiled call (`_parse_run`) into arrays it keeps from block to block: the
+    daemon's commonest block under load, where `read_each`'s arrays and blocks cost more than the
+    reading (31 against about 10 us for a block of one message of 20 features, measured). The
+    arrays it returns are views of its own: read them before the next `read`."""
+
+    def __init__(self) -> None:
+        super().__init__()
         self._key = np.empty(0, dtype=np.uint8)
         self._first: tuple[np.ndarray, int, int] = (np.empty(0, dtype=np.uint8), 0, 0)
 
@@ -480,19 +515,12 @@ class RunReader:
         """(names, rows m x k, labels, ids or None) of the block, or None when it is anything else
         (then `read_each` and the full path decide)."""
         m = len(raws)
-        joined = b"".join(raws)
-        if max(map(len, raws)) > MAX_MESSAGE:
+        fitted = self._fit(raws, sum(map(len, raws)) // 9 + 1)  # (a value takes 9 bytes)
+        if fitted is None:
             return None
-        if self._ys.shape[0] < m:
-            self._ys = np.empty(2 * m)
-            self._ids = np.empty(2 * m, dtype=np.int64)
-            self._nkeys = np.zeros(2 * m, dtype=np.int64)
-            self._keypos = np.zeros(2 * m, dtype=np.int64)
-        if self._values.shape[0] < len(joined) // 9 + 1:  # (a value takes 9 bytes)
-            self._values = np.empty(2 * (len(joined) // 9 + 1))
+        joined, starts = fitted
         if self._key.shape[0] < len(raws[0]):  # (the first event's key bytes are some of its body's)
             self._key = np.empty(2 * len(raws[0]), dtype=np.uint8)
-        starts = np.array(list(accumulate(map(len, raws), initial=0)), dtype=np.int64)
         b = np.frombuffer(joined, dtype=np.uint8)
         k = _parse_run(b, starts, self._values, self._ys, self._ids, self._nkeys, self._keypos, MAX_STR, MAX_ITEMS)
         if k < 0:

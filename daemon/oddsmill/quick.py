@@ -21,15 +21,14 @@ four, and no Python object an event but its score's bytes.
 from __future__ import annotations
 
 import math
-from itertools import accumulate
 
 import numpy as np
 from numba import njit
 
 from . import kernel as K
-from .fastpath import _event_at, _follows, _str
+from .fastpath import EventArrays, _event_at, _follows, _str
 from .progressive import _record
-from .protocol import MAX_ITEMS, MAX_MESSAGE, MAX_STR
+from .protocol import MAX_ITEMS, MAX_STR
 
 READ, NOT_SUCH, OTHER_NAMES, STR_ID = 0, -1, -2, -3  # what `_read_known` found
 SCORE_BYTES = 72  # at most, a score body: 5 keys, 4 numbers of 9 bytes and an id of 9
@@ -226,24 +225,23 @@ def _learn_known(  # type: ignore[no-untyped-def]
         ends[r] = p
 
 
-class Known:
+class Known(EventArrays):
     """The set of names the quick path learned last (its key bytes and slots, in one vocabulary)
     and the arrays it reads blocks into, kept from block to block."""
 
     def __init__(self) -> None:
+        super().__init__()
         self.vocab: object = None  # the vocabulary the slots are of
         self.key = np.empty(0, dtype=np.uint8)
         self.slots = np.empty(0, dtype=np.int64)
-        self._values = np.empty(0)
-        self._ys = np.empty(0)
-        self._ids = np.empty(0, dtype=np.int64)
-        self._nkeys = np.empty(0, dtype=np.int64)
-        self._keypos = np.empty(0, dtype=np.int64)
         self._out = np.empty(0, dtype=np.uint8)
         self._ends = np.empty(0, dtype=np.int64)
         self._b = np.empty(0, dtype=np.uint8)
         self._m = 0
-        self._one = np.zeros(2, dtype=np.int64)  # the starts of a block of one message
+
+    def _grown(self, messages: int) -> None:
+        self._ends = np.empty(messages, dtype=np.int64)
+        self._out = np.empty(messages * SCORE_BYTES, dtype=np.uint8)
 
     def remember(self, vocab: object, key: bytes, slots: tuple[int, ...]) -> None:
         """Names every one of which has a slot in `vocab`: their key bytes and slots."""
@@ -255,38 +253,17 @@ class Known:
         """`_read_known` over the messages (READ, NOT_SUCH, OTHER_NAMES or STR_ID); after READ,
         `learn` learns them."""
         m = len(raws)
-        joined = b"".join(raws)
-        if max(map(len, raws)) > MAX_MESSAGE:
-            return NOT_SUCH
-        if self._ys.shape[0] < m:
-            self._ys = np.empty(2 * m)
-            self._ids = np.empty(2 * m, dtype=np.int64)
-            self._nkeys = np.zeros(2 * m, dtype=np.int64)
-            self._keypos = np.zeros(2 * m, dtype=np.int64)
-            self._ends = np.empty(2 * m, dtype=np.int64)
-            self._out = np.empty(2 * m * SCORE_BYTES, dtype=np.uint8)
         k = self.slots.shape[0]
-        if self._values.shape[0] < m * k:
-            self._values = np.empty(2 * m * k)
-        if m == 1:  # (a lone message: the commonest block at a modest load)
-            starts = self._one
-            starts[1] = len(joined)
-        else:
-            starts = np.array([0, *accumulate(map(len, raws))], dtype=np.int64)
+        fitted = self._fit(raws, m * k)
+        if fitted is None:
+            return NOT_SUCH
+        joined, starts = fitted
         b = np.frombuffer(joined, dtype=np.uint8)
         # (values has room for m x k: an event with more features than the key's fails the read)
         status: int = _read_known(
-            b,
-            starts,
-            self.key,
-            self._values[: m * k],
-            self._ys,
-            self._ids,
-            self._nkeys,
-            self._keypos,
-            MAX_STR,
+            b, starts, self.key, self._values[: m * k], self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
             MAX_ITEMS,
-        )
+        )  # fmt: skip
         self._b, self._m = b, m
         return status
 
