@@ -263,10 +263,17 @@ def _parse_each(b, starts, values, ys, ids, nkeys, keypos, newrun, read, max_str
     return e
 
 
+READ, NOT_SUCH, OTHER_NAMES, STR_ID = 0, -1, -2, -3  # what `_parse_run` found
+
+
 @njit(cache=True, error_model="numpy")
-def _parse_run(b, starts, values, ys, ids, nkeys, keypos, max_str, max_items):  # type: ignore[no-untyped-def]
-    """`_parse_each` for a block that must be one run: every message one numeric training event,
-    all with the names of the first in the same order. Returns the number of features, or -1."""
+def _parse_run(b, starts, key, ints_only, values, ys, ids, nkeys, keypos, max_str, max_items):  # type: ignore[no-untyped-def]
+    """`_parse_each` for a block that must be one run: read messages end to end in b (message e
+    from starts[e] to starts[e + 1]) into values, ys and ids (where each id's msgpack bytes begin,
+    -1 without one). READ when every message is one numeric training event with the names of the
+    first in the same order; and, when `key` is not empty, those names are `key` (their key bytes,
+    as `_key_bytes` copies them), and with `ints_only` every id is an integer. Otherwise NOT_SUCH,
+    OTHER_NAMES (not the names of `key`) or STR_ID."""
     scratch = np.zeros(1, dtype=np.uint64)
     as_float = scratch.view(np.float64)
     used = 0
@@ -275,9 +282,30 @@ def _parse_run(b, starts, values, ys, ids, nkeys, keypos, max_str, max_items):  
         ok, pos, used = _event_at(
             b, start, end, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items
         )
-        if not ok or pos != end or (e > 0 and not _follows(b, e, nkeys, keypos)):
-            return -1
-    return nkeys[0]
+        if not ok or pos != end:
+            return NOT_SUCH
+        if e > 0:
+            if not _follows(b, e, nkeys, keypos):
+                return NOT_SUCH
+        elif key.shape[0] > 0:  # the first event's names against the key
+            p = keypos[0]
+            q = 0
+            for _ in range(nkeys[0]):
+                s, length, after = _str(b, p, end)
+                if q + after - p > key.shape[0]:
+                    return OTHER_NAMES
+                for i in range(p, after):
+                    if b[i] != key[q]:
+                        return OTHER_NAMES
+                    q += 1
+                p = after + 9
+            if q != key.shape[0]:
+                return OTHER_NAMES
+        if ints_only and ids[e] >= 0:
+            c = b[ids[e]]
+            if not (c <= 0x7F or c >= 0xE0 or 0xCC <= c <= 0xD3):
+                return STR_ID
+    return READ
 
 
 @njit(cache=True, error_model="numpy")
@@ -453,6 +481,9 @@ def read_each(raws: list[bytes | None]) -> tuple[list[int], list[Columns | None]
     return which, blocks
 
 
+_ANY_NAMES = np.empty(0, dtype=np.uint8)  # (the key `_parse_run` checks no names against)
+
+
 class EventArrays:
     """The arrays a block of one-event messages is read into (values, labels, where each id begins,
     how many features, where the x map's keys begin), kept from block to block and grown as needed:
@@ -522,9 +553,13 @@ class RunReader(EventArrays):
         if self._key.shape[0] < len(raws[0]):  # (the first event's key bytes are some of its body's)
             self._key = np.empty(2 * len(raws[0]), dtype=np.uint8)
         b = np.frombuffer(joined, dtype=np.uint8)
-        k = _parse_run(b, starts, self._values, self._ys, self._ids, self._nkeys, self._keypos, MAX_STR, MAX_ITEMS)
-        if k < 0:
+        found = _parse_run(
+            b, starts, _ANY_NAMES, False, self._values, self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
+            MAX_ITEMS,
+        )  # fmt: skip
+        if found != READ:
             return None
+        k = self._nkeys[0]
         self._first = (b, int(self._keypos[0]), int(k))
         names = _names_at(b, int(self._keypos[0]), int(k), self._key)
         if names is None:

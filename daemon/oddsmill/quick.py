@@ -2,8 +2,8 @@
 event each, every one with the set of names the block before had (in the same order), with an
 integer id or none.
 
-`_read_known` reads the block (fastpath's reader) and checks it; nothing is changed, so the server
-journals the block only once it is known to be such. `_learn_known` then learns the events as the
+`fastpath._parse_run` reads the block and checks it against the names remembered; nothing is
+changed, so the server journals the block only once it is known to be such. `_learn_known` then learns the events as the
 rows of one columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the
 progressive metrics (`progressive._record`, as `ProgressiveMetrics.update` does) and packs each
 score body (PROTOCOL 3) byte for byte as `msgpack.packb` packs the dict the full path builds. The
@@ -26,58 +26,16 @@ import numpy as np
 from numba import njit
 
 from . import kernel as K
-from .fastpath import EventArrays, _event_at, _follows, _str
+from .fastpath import NOT_SUCH, EventArrays, _parse_run
 from .progressive import _record
 from .protocol import MAX_ITEMS, MAX_STR
 
-READ, NOT_SUCH, OTHER_NAMES, STR_ID = 0, -1, -2, -3  # what `_read_known` found
 SCORE_BYTES = 72  # at most, a score body: 5 keys, 4 numbers of 9 bytes and an id of 9
 _ID = np.frombuffer(b"\x85\xa2id", dtype=np.uint8)  # the body's map header and its first key
 _P = np.frombuffer(b"\xa1p", dtype=np.uint8)
 _LOGIT = np.frombuffer(b"\xa5logit", dtype=np.uint8)
 _STEP = np.frombuffer(b"\xa4step", dtype=np.uint8)
 _TS = np.frombuffer(b"\xa2ts", dtype=np.uint8)
-
-
-@njit(cache=True, error_model="numpy")
-def _read_known(b, starts, key, values, ys, ids, nkeys, keypos, max_str, max_items):  # type: ignore[no-untyped-def]
-    """Read messages end to end in b (message e from starts[e] to starts[e + 1]) into values (m x k,
-    k = the names of `key`), ys and ids (where each id's msgpack bytes begin, -1 without one).
-    READ when every message is one numeric training event whose x map has the key bytes `key`
-    (str headers and names, as fastpath._key_bytes copies them) and whose id, if any, is an
-    integer; otherwise NOT_SUCH, OTHER_NAMES (another set or order of names) or STR_ID."""
-    scratch = np.zeros(1, dtype=np.uint64)
-    as_float = scratch.view(np.float64)
-    used = 0
-    for e in range(starts.shape[0] - 1):
-        start, end = starts[e], starts[e + 1]
-        ok, pos, used = _event_at(
-            b, start, end, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items
-        )
-        if not ok or pos != end:
-            return NOT_SUCH
-        if e > 0:
-            if not _follows(b, e, nkeys, keypos):
-                return NOT_SUCH
-        else:  # the first event's names against the key
-            p = keypos[0]
-            q = 0
-            for _ in range(nkeys[0]):
-                s, length, after = _str(b, p, end)
-                if q + after - p > key.shape[0]:
-                    return OTHER_NAMES
-                for i in range(p, after):
-                    if b[i] != key[q]:
-                        return OTHER_NAMES
-                    q += 1
-                p = after + 9
-            if q != key.shape[0]:
-                return OTHER_NAMES
-        if ids[e] >= 0:
-            c = b[ids[e]]
-            if not (c <= 0x7F or c >= 0xE0 or 0xCC <= c <= 0xD3):
-                return STR_ID
-    return READ
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -196,7 +154,7 @@ def _pack_score(out, p, has_id, ident, big_id, z, step, ts):  # type: ignore[no-
 def _learn_known(  # type: ignore[no-untyped-def]
     b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends
 ):
-    """Learn the m events `_read_known` read (rows of values at `slots`, labels ys) as
+    """Learn the m events `read` read (rows of values at `slots`, labels ys) as
     kernel.learn_rows does, record them in the metrics as ProgressiveMetrics.update does (ms: its
     sum, count, head, filled, stride and points, updated in place), and pack each one's score body
     into out (body r ends at ends[r]; its id from b at ids[r])."""
@@ -250,7 +208,7 @@ class Known(EventArrays):
         self.slots = np.array(slots, dtype=np.int64)
 
     def read(self, raws: list[bytes]) -> int:
-        """`_read_known` over the messages (READ, NOT_SUCH, OTHER_NAMES or STR_ID); after READ,
+        """`fastpath._parse_run` over the messages (READ, NOT_SUCH, OTHER_NAMES or STR_ID); after READ,
         `learn` learns them."""
         m = len(raws)
         k = self.slots.shape[0]
@@ -260,8 +218,8 @@ class Known(EventArrays):
         joined, starts = fitted
         b = np.frombuffer(joined, dtype=np.uint8)
         # (values has room for m x k: an event with more features than the key's fails the read)
-        status: int = _read_known(
-            b, starts, self.key, self._values[: m * k], self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
+        status: int = _parse_run(
+            b, starts, self.key, True, self._values[: m * k], self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
             MAX_ITEMS,
         )  # fmt: skip
         self._b, self._m = b, m

@@ -30,12 +30,12 @@ from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
 from .errors import ConfigError, ProtocolError
-from .fastpath import RunReader, read_batch, read_each
+from .fastpath import NOT_SUCH, READ, RunReader, read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .progressive import ProgressiveMetrics
 from .protocol import TRANSPORT_LIMIT, Columns, Event, Item, decode_body, is_refused_record, refused_record, unpack
-from .quick import NOT_SUCH, READ, Known
+from .quick import Known
 from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
 from .storage import (
