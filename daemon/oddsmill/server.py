@@ -1,7 +1,8 @@
-"""The daemon's loop: poll, decode, journal, score and learn, publish, checkpoint.
+"""The daemon's loop: receive, decode, journal, score and learn, publish, checkpoint.
 
 The loop is the only writer of the learner's state. Each wake-up drains whatever is waiting (at most
-`block_max` messages, so a lone event is answered at once) into one block. Every message whose body
+`block_max` messages, so a lone event is answered at once) into one block. Small blocks of the
+commonest kinds skip the engine's plan (`_quick`, quick.py, `_lone`), with the same result. Every message whose body
 is msgpack is journaled (and the journal synced) before any score of its block is published; the
 engine then runs the block exactly sequentially. A checkpoint records the journal position it
 covers, so a restart loads the newest checkpoint and replays the journal after it: the state equals
