@@ -80,7 +80,8 @@ KINDS = [
     "not_msgpack",
     "three_frames",
     "batch",
-    "cols",
+    "cols",  # a columnar block with a scoring request (held): the full path
+    "cols_plain",  # every row labelled: Server._columns once its names are known
 ]
 messages = st.sampled_from(KINDS)
 
@@ -122,6 +123,11 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
             continue
         elif kind == "batch":
             body = {"batch": [training(rng, NAMES) for _ in range(3)]}
+        elif kind == "cols_plain":
+            rows = rng.normal(size=(4, 3)) * 3
+            body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 0, 1])}
+            if i % 2:
+                body["id"] = [f"C{i}-{r}" for r in range(4)]
         else:
             rows = rng.normal(size=(3, 3))
             body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 255]), "id": [1, 2, 3]}
@@ -166,13 +172,16 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     for at in rng.integers(0, 600, size=60).tolist():
         kinds[at] = str(rng.choice(KINDS))
     msgs = build(kinds, 3)
+    lone_columns = build(["cols_plain"] * 12, 4)
     blocks, at = [], 0
     while at < len(msgs):
         n = int(rng.integers(1, 9))
         blocks.append(msgs[at : at + n])
         at += n
-    taken = {"_quick": 0, "_lone": 0, "learn": 0}  # (learn: quick.py's compiled learning)
-    originals = {name: getattr(Server, name) for name in ("_quick", "_lone")}
+        if lone_columns and len(blocks) % 8 == 0:
+            blocks.append([lone_columns.pop()])  # a columnar block alone
+    taken = {"_quick": 0, "_lone": 0, "_columns": 0, "learn": 0}  # (learn: quick.py's compiled learning)
+    originals = {name: getattr(Server, name) for name in ("_quick", "_lone", "_columns")}
     learn = Known.learn
 
     def learn_counted(self: Any, *a: Any) -> Any:
@@ -182,7 +191,7 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     def counting(name: str) -> Any:
         def counted(self: Any, *a: Any) -> Any:
             done = originals[name](self, *a)
-            taken[name] += done is True or done == []  # (True: _quick's "done", []: _lone's)
+            taken[name] += done is True or done == []  # (True: _quick's and _columns' "done", []: _lone's)
             return done
 
         return counted
@@ -197,7 +206,7 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         Known.learn = learn  # type: ignore[method-assign]
         for name, f in originals.items():
             setattr(Server, name, f)
-    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5, taken
+    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5 and taken["_columns"] >= 8, taken
     with pytest.MonkeyPatch.context() as mp:
         full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
     assert len(fast_frames) > 1000 and fast_frames == full_frames

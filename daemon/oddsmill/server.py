@@ -633,6 +633,13 @@ class Server:
             except ProtocolError:
                 return bodies or [None]
             bodies.append(body)
+            if (
+                type(body) is dict
+                and "cols" in body
+                and len(messages) == 1
+                and self._columns(body, frames, pub, arrival)
+            ):
+                return []
             if type(body) is not dict or "batch" in body or "cols" in body:
                 return bodies
             ev = decode_body(body)[0]
@@ -663,6 +670,27 @@ class Server:
             send(b"rejects", zmq.SNDMORE)
             send(msgpack.packb(_rejection(r)))
         return []
+
+    def _columns(self, body: dict[str, Any], frames: list[bytes], pub: zmq.Socket[Any], arrival: float) -> bool:
+        """A lone columnar block of training events, every row labelled, unnumbered, every name
+        known: journaled, learned as `prepare` and `settle` would learn it (`Engine.train_rows`)
+        and answered with the same body. False, with nothing done, for any other."""
+        item = decode_body(body)[0]
+        if type(item) is not Columns or item.src is not None or item.seq is not None or not item.rows.shape[0]:
+            return False
+        if bool(np.isnan(item.y).any()):
+            return False
+        slots = self.engine.learner.vocab.shapes.get(item.cols)
+        if slots is None:
+            return False
+        if not self._journal(arrival, [frames[1]]):
+            self._block([frames], pub, arrival, [body])  # the write failed: the full path holds it
+            return True
+        logits, step = self.engine.train_rows(arrival, slots, item.rows, item.y)
+        steps = np.arange(step, step + logits.shape[0])
+        _publish(pub, [msgpack.packb(_score_body(ColumnScores(item.ids, logits, steps, arrival), "cols"))])
+        self.board.score_latency.observe(time.time() - arrival)
+        return True
 
     def _block(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float, unpacked: list[object]) -> None:
         """`handle` for any block (`unpacked`: the bodies of its first messages, when they were
