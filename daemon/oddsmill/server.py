@@ -1,10 +1,11 @@
 """The daemon's loop: receive, decode, journal, score and learn, publish, checkpoint.
 
 The loop is the only writer of the learner's state. Each wake-up drains whatever is waiting (at most
-`block_max` messages, so a lone event is answered at once) into one block. Small blocks of the
-commonest kinds skip the engine's plan (`_quick`, quick.py, `_lone`), with the same result. Every message whose body
+`block_max` messages, so a lone event is answered at once) into one block. Every message whose body
 is msgpack is journaled (and the journal synced) before any score of its block is published; the
-engine then runs the block exactly sequentially. A checkpoint records the journal position it
+engine then runs the block exactly sequentially. Blocks of the commonest kinds skip the engine's
+plan (`_quick` with quick.py, `_lone`, `_columns`), with the same bytes published and journaled and
+the same state. A checkpoint records the journal position it
 covers, so a restart loads the newest checkpoint and replays the journal after it: the state equals
 an uninterrupted run on the same messages, bit for bit.
 """
@@ -569,10 +570,12 @@ class Server:
 
     def _quick(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> bool:
         """A block of messages of one numeric training event each, all with the same names in the
-        same order, every name known: read in compiled code (fastpath.read_each), journaled, and
-        learned as the rows of one columnar block (`Engine.train_rows`), as the full path would
-        learn them, without its plan. The commonest block under load. False, with nothing done,
-        for any other block."""
+        same order, every name known: read in compiled code, journaled, and learned as the rows of
+        one columnar block, as the full path would learn them, without its plan. The names of the
+        block before, with integer ids or none, take two compiled calls (quick.py,
+        `Engine.train_known`); other names or str ids `fastpath.RunReader` and `Engine.train_rows`,
+        which remember the names for the next block. The commonest block under load. False, with
+        nothing done, for any other block."""
         raws: list[bytes] = []
         for frames in messages:
             if len(frames) != 2:
@@ -620,9 +623,9 @@ class Server:
     def _lone(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> list[object]:
         """A block of a few messages of one event each, the commonest wake-up at a modest load:
         journaled, then each run by `Engine.one` and published, as the full path does, with none
-        of a block's lists and dicts (in process: 45 against 130 us a message of 20 features).
-        Returns [] when done; otherwise, for the full path, the bodies unpacked so far (nothing has
-        been done with them)."""
+        of a block's lists and dicts (in process: 45 against 130 us a message of 20 features); a
+        lone columnar block goes to `_columns`. Returns [] when done; otherwise, for the full path,
+        the bodies unpacked so far (nothing has been done with them)."""
         bodies: list[object] = []
         events: list[Event] = []
         for frames in messages:
