@@ -590,11 +590,8 @@ class Server:
         if known.vocab is vocab:  # the names of the last block, in two compiled calls (quick.py)
             found = known.read(raws)
             if found == READ:
-                if not self._journal(arrival, raws):
-                    self._block(messages, pub, arrival, [])  # the write failed: the full path holds the block
-                    return True
-                _publish(pub, self.engine.train_known(arrival, known))
-                self.board.score_latency.observe(time.time() - arrival)
+                if self._journaled(messages, pub, arrival, raws, []):
+                    self._answer(pub, self.engine.train_known(arrival, known), arrival)
                 return True
             if found == NOT_SUCH:
                 return False
@@ -605,8 +602,7 @@ class Server:
         slots = vocab.shapes.get(names)
         if slots is None:  # a name not known yet (or not recently): the full path encodes them
             return False
-        if not self._journal(arrival, raws):
-            self._block(messages, pub, arrival, [])  # the write failed: the full path holds the block
+        if not self._journaled(messages, pub, arrival, raws, []):
             return True
         if idents is None or all(type(i) is int for i in idents):  # the next block may take quick.py
             known.remember(vocab, self.reader.key_bytes(), slots)
@@ -616,8 +612,7 @@ class Server:
         bodies = [
             pack(_score(i, z, step + r, arrival)) for r, (i, z) in enumerate(zip(ids, logits.tolist(), strict=True))
         ]
-        _publish(pub, bodies)
-        self.board.score_latency.observe(time.time() - arrival)
+        self._answer(pub, bodies, arrival)
         return True
 
     def _lone(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> list[object]:
@@ -649,16 +644,9 @@ class Server:
             if type(ev) is not Event:
                 return bodies
             events.append(ev)
-        send = pub.send
-        raws = [frames[1] for frames in messages]
-        results: list[Result | None]
-        if self._journal(arrival, raws):
-            results = [self.engine.one(arrival, ev) for ev in events]
-        else:  # the write failed: held, and scored with the model as it stands
-            self._hold(arrival, raws)
-            results = [None] * len(events)
-            for n, answer in self.engine.score_only([(arrival, ev) for ev in events]):
-                results[n] = answer
+        if not self._journaled(messages, pub, arrival, [frames[1] for frames in messages], bodies):
+            return []
+        results = [self.engine.one(arrival, ev) for ev in events]
         rejects: list[Rejection] = []  # published after the scores, as the full path does
         scores: list[bytes] = []
         for result in results:
@@ -666,12 +654,10 @@ class Server:
                 scores.append(msgpack.packb(_one(result)))
             elif isinstance(result, Rejection):
                 rejects.append(result)
-        _publish(pub, scores)
-        if scores:
-            self.board.score_latency.observe(time.time() - arrival)
+        self._answer(pub, scores, arrival)
         for r in rejects:
-            send(b"rejects", zmq.SNDMORE)
-            send(msgpack.packb(_rejection(r)))
+            pub.send(b"rejects", zmq.SNDMORE)
+            pub.send(msgpack.packb(_rejection(r)))
         return []
 
     def _columns(self, body: dict[str, Any], frames: list[bytes], pub: zmq.Socket[Any], arrival: float) -> bool:
@@ -686,14 +672,33 @@ class Server:
         slots = self.engine.learner.vocab.shapes.get(item.cols)
         if slots is None:
             return False
-        if not self._journal(arrival, [frames[1]]):
-            self._block([frames], pub, arrival, [body])  # the write failed: the full path holds it
-            return True
-        logits, step = self.engine.train_rows(arrival, slots, item.rows, item.y)
-        steps = np.arange(step, step + logits.shape[0])
-        _publish(pub, [msgpack.packb(_score_body(ColumnScores(item.ids, logits, steps, arrival), "cols"))])
-        self.board.score_latency.observe(time.time() - arrival)
+        if self._journaled([frames], pub, arrival, [frames[1]], [body]):
+            logits, step = self.engine.train_rows(arrival, slots, item.rows, item.y)
+            steps = np.arange(step, step + logits.shape[0])
+            body = _score_body(ColumnScores(item.ids, logits, steps, arrival), "cols")
+            self._answer(pub, [msgpack.packb(body)], arrival)
         return True
+
+    def _journaled(
+        self,
+        messages: list[list[bytes]],
+        pub: zmq.Socket[Any],
+        arrival: float,
+        raws: list[bytes],
+        unpacked: list[object],
+    ) -> bool:
+        """Journal a block one of the small paths took. When the write fails, the full path takes
+        the block (the outage holds it and scores it with the model as it stands), and False."""
+        if self._journal(arrival, raws):
+            return True
+        self._block(messages, pub, arrival, unpacked)
+        return False
+
+    def _answer(self, pub: zmq.Socket[Any], scores: list[bytes], arrival: float) -> None:
+        """Publish a block's score bodies, and observe its latency when there were any."""
+        if scores:
+            _publish(pub, scores)
+            self.board.score_latency.observe(time.time() - arrival)
 
     def _block(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float, unpacked: list[object]) -> None:
         """`handle` for any block (`unpacked`: the bodies of its first messages, when they were
