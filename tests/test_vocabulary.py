@@ -3,6 +3,7 @@ representation it replaced: the same slots, names, ignored counts and checkpoint
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -67,7 +68,7 @@ def test_a_large_vocabulary_grows_its_table_and_keeps_every_slot() -> None:
     names = [f"customer={k:07d}" for k in range(250_000)]
     assert v.slots(names[:100_000], grow=True) == list(range(100_000))
     assert v.slots(names, grow=True) == list(range(250_000))  # the first 100,000 found, the rest added
-    assert v._table.shape[0] >= 2 * len(v)  # at most half full
+    assert 4 * len(v) <= 3 * v._table.shape[0]  # at most three quarters full
     assert v.slots(names[::-1], grow=False) == list(range(250_000))[::-1]
     old = Vocabulary.from_state(300_000, {"names": names})  # a checkpoint from before the arrays
     assert old.same_names(v) and old.name(123_456) == "customer=0123456"
@@ -78,3 +79,23 @@ def test_a_state_whose_ends_do_not_fit_its_bytes_is_refused() -> None:
         Vocabulary.from_state(10, {"name_bytes": b"abc", "name_ends": [1, 5]})
     with pytest.raises(ValueError, match="do not fit"):
         Vocabulary.from_state(10, {"name_bytes": b"abc", "name_ends": [2, 1, 3]})
+
+
+def test_where_names_begin_widens_to_int64_when_the_bytes_pass_the_narrow_limit(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """int32 offsets hold 2 GiB of names; past that (here a limit of 5,000 bytes, patched) they
+    widen to int64 and every name keeps its slot, through a checkpoint too."""
+    monkeypatch.setattr(vocabulary, "NARROW_LIMIT", 5_000)
+    v = Vocabulary(max_features=10_000)
+    names = [f"depot=harbour-{k:05d}" for k in range(600)]  # 19 bytes a name
+    assert v.slots(names[:200], grow=True) == list(range(200))
+    assert v._starts.dtype == np.int32
+    assert v.slots(names, grow=True) == list(range(600))
+    assert v._starts.dtype == np.int64
+    assert v.slots(names[::-1], grow=False) == list(range(600))[::-1]
+    assert v.name(599) == "depot=harbour-00599" and v.slot("depot=harbour-00000", grow=False) == 0
+    state = v.state()
+    assert state["name_ends"].dtype == np.int64 and int(state["name_ends"][-1]) == 600 * 19
+    back = Vocabulary.from_state(10_000, state)
+    assert back._starts.dtype == np.int64 and back.same_names(v)

@@ -2,12 +2,16 @@
 
 A million names as Python objects (a str each, an int each for its slot, a dict entry and a list
 entry) took about 175 bytes a name, more than the learner's whole state a slot. Here the names are
-one run of UTF-8 bytes (`_blob`, name j between `_starts[j]` and `_starts[j + 1]`) and an
-open-addressing hash table of slots (`_table`, linear probing, FNV-1a over the bytes, at most half
-full), searched in compiled code: 37 bytes of arrays a name of 20 characters (measured at a million
-names; scripts/memory_per_slot.py). Recently used names also stay in `index`, a bounded dict from
-name to slot, so that an event whose names are known costs a dict lookup a name, as before; only
-names not in it go to the table, all of an event's in one call.
+one run of UTF-8 bytes (`_blob`, name j between `_starts[j]` and `_starts[j + 1]`, int32 until
+the bytes pass 2 GiB) and an open-addressing hash table of int32 slots (`_table`, linear probing,
+FNV-1a over the bytes, the place the hash modulo the table's size), searched in compiled code. The
+table grows by half when it would be more than three quarters full (MAX_LOAD), so it costs 5.3 to
+8 bytes a name (8 to 16 when it doubled and was kept at most half full), for about 8.5 probes to
+find that a name is new when it is fullest (2.5 at half full). In all 30 to 33 bytes of arrays a
+name of 20 characters (scripts/memory_per_slot.py). Recently used names
+also stay in `index`, a bounded dict from name to slot, so that an event whose names are known
+costs a dict lookup a name, as before; only names not in it go to the table, all of an event's in
+one call.
 
 Names are encoded with "surrogatepass", so any str (a lone surrogate from a JSON escape included)
 keeps its exact identity.
@@ -31,6 +35,8 @@ from numba import njit
 
 CACHE_NAMES = 1 << 16  # names kept in `index` (cleared when full)
 INITIAL_NAMES = 1024
+MAX_LOAD = (3, 4)  # the table is grown (by half) when more than three quarters of it would be used
+NARROW_LIMIT = 2**31 - 1  # where each name begins is kept in int32 while the bytes fit, then int64
 _CODEC = ("utf-8", "surrogatepass")
 _FNV_OFFSET = np.uint64(14695981039346656037)
 _FNV_PRIME = np.uint64(1099511628211)
@@ -48,8 +54,8 @@ def _hash(buf, lo, hi):  # type: ignore[no-untyped-def]
 @njit(cache=True, inline="always")
 def _probe(table, starts, blob, q, lo, hi):  # type: ignore[no-untyped-def]
     """The slot of the name q[lo:hi], or -1 - (the free place of the table where it would go)."""
-    mask = np.uint64(table.shape[0] - 1)
-    i = _hash(q, lo, hi) & mask
+    size_t = np.uint64(table.shape[0])
+    i = _hash(q, lo, hi) % size_t
     size = hi - lo
     while True:
         s = np.int64(table[np.int64(i)])
@@ -64,14 +70,16 @@ def _probe(table, starts, blob, q, lo, hi):  # type: ignore[no-untyped-def]
                     break
             if same:
                 return s
-        i = (i + np.uint64(1)) & mask
+        i = i + np.uint64(1)
+        if i == size_t:
+            i = np.uint64(0)
 
 
 @njit(cache=True)
 def _find_or_add(table, starts, blob, n, cap, q, qstarts, out):  # type: ignore[no-untyped-def]
     """out[i] = the slot of name i of q (its bytes q[qstarts[i]:qstarts[i + 1]]); a name not there
     gets slot n, n + 1, ... in order while n < cap, else -1. The caller made room for every name
-    in `starts`, `blob` and `table` (kept at most half full). Returns the new count of names."""
+    in `starts`, `blob` and `table` (kept at most MAX_LOAD full). Returns the new count of names."""
     for i in range(out.shape[0]):
         lo, hi = qstarts[i], qstarts[i + 1]
         r = _probe(table, starts, blob, q, lo, hi)
@@ -95,11 +103,13 @@ def _find_or_add(table, starts, blob, n, cap, q, qstarts, out):  # type: ignore[
 def _rehash(table, starts, blob, n):  # type: ignore[no-untyped-def]
     """Put names 0 .. n-1 into an empty table."""
     table[:] = -1
-    mask = np.uint64(table.shape[0] - 1)
+    size_t = np.uint64(table.shape[0])
     for s in range(n):
-        i = _hash(blob, starts[s], starts[s + 1]) & mask
+        i = _hash(blob, starts[s], starts[s + 1]) % size_t
         while table[np.int64(i)] >= 0:
-            i = (i + np.uint64(1)) & mask
+            i = i + np.uint64(1)
+            if i == size_t:
+                i = np.uint64(0)
         table[np.int64(i)] = s
 
 
@@ -127,7 +137,7 @@ class Vocabulary:
         self.shapes: dict[tuple[str, ...], tuple[int, ...]] = {}
         self.index: dict[str, int] = {}  # recently used names (a cache, not the whole vocabulary)
         self._n = 0
-        self._starts = np.zeros(INITIAL_NAMES + 1, dtype=np.int64)
+        self._starts = np.zeros(INITIAL_NAMES + 1, dtype=np.int32)
         self._blob = np.empty(INITIAL_NAMES * 16, dtype=np.uint8)
         self._dtype = np.int32 if max_features < 2**31 - 1 else np.int64
         self._table = np.full(2 * INITIAL_NAMES, -1, dtype=self._dtype)
@@ -140,19 +150,22 @@ class Vocabulary:
     def _reserve(self, names: int, size: int) -> None:
         """Room for `names` more names of `size` bytes in all."""
         need = self._n + names
-        if need + 1 > self._starts.shape[0]:
-            starts = np.empty(max(need + 1, 2 * self._starts.shape[0]), dtype=np.int64)
+        end = int(self._starts[self._n])
+        wide = self._starts.dtype == np.int32 and end + size > NARROW_LIMIT
+        if need + 1 > self._starts.shape[0] or wide:
+            dtype = np.int64 if wide else self._starts.dtype
+            starts = np.empty(max(need + 1, 2 * self._starts.shape[0]), dtype=dtype)
             starts[: self._n + 1] = self._starts[: self._n + 1]
             self._starts = starts
-        end = int(self._starts[self._n])
         if end + size > self._blob.shape[0]:
             blob = np.empty(max(end + size, 2 * self._blob.shape[0]), dtype=np.uint8)
             blob[:end] = self._blob[:end]
             self._blob = blob
-        if 2 * need > self._table.shape[0]:
+        used, of = MAX_LOAD
+        if of * need > used * self._table.shape[0]:
             size_t = self._table.shape[0]
-            while 2 * need > size_t:
-                size_t *= 2
+            while of * need > used * size_t:
+                size_t += size_t // 2
             self._table = np.empty(size_t, dtype=self._dtype)
             _rehash(self._table, self._starts, self._blob, self._n)
 
@@ -191,7 +204,7 @@ class Vocabulary:
     @property
     def nbytes(self) -> int:
         """Bytes of the arrays in use: the names' bytes, where each begins, and the table."""
-        return int(self._starts[self._n]) + 8 * (self._n + 1) + self._table.nbytes
+        return int(self._starts[self._n]) + self._starts.itemsize * (self._n + 1) + self._table.nbytes
 
     def name(self, j: int) -> str:
         a, b = int(self._starts[j]), int(self._starts[j + 1])
@@ -215,7 +228,8 @@ class Vocabulary:
     def state(self) -> dict[str, Any]:
         """The names for a checkpoint: their UTF-8 bytes end to end, and where each ends."""
         n = self._n
-        return {"name_bytes": self._blob[: int(self._starts[n])].tobytes(), "name_ends": self._starts[1 : n + 1].copy()}
+        ends = self._starts[1 : n + 1].astype(np.int64)
+        return {"name_bytes": self._blob[: int(self._starts[n])].tobytes(), "name_ends": ends}
 
     @classmethod
     def from_state(cls, max_features: int, d: dict[str, Any]) -> Vocabulary:
