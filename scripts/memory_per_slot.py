@@ -1,8 +1,11 @@
-"""Memory a vocabulary slot costs: grow a learner's vocabulary to N one-hot names (20 to an event,
-as customer ids would arrive) and report the growth of the process's resident memory per slot,
-beside the bytes of the state arrays and of the vocabulary's arrays alone.
+"""Memory a vocabulary slot costs: learn events of 20 one-hot names each (as customer ids would
+arrive, with a few numeric features beside them) until the vocabulary holds N names, and report
+the growth of the process's resident memory per slot, beside the bytes of the state arrays and of
+the vocabulary's arrays alone. `--encode-only` grows the vocabulary without learning (the figure
+of earlier sessions); `--glibc-threshold` leaves glibc's mmap threshold as it is (the daemon fixes
+it: learner.give_back_large_frees).
 
-    python scripts/memory_per_slot.py [--slots N]
+    python scripts/memory_per_slot.py [--slots N] [--encode-only] [--glibc-threshold]
 """
 
 from __future__ import annotations
@@ -11,7 +14,10 @@ import argparse
 import ctypes
 import gc
 
-from oddsmill.learner import Learner
+import numpy as np
+from oddsmill import kernel as K
+from oddsmill.encoding import BlockBuilder
+from oddsmill.learner import Learner, give_back_large_frees
 from oddsmill.settings import LearnerSettings
 
 
@@ -23,24 +29,47 @@ def resident_bytes() -> int:
     raise RuntimeError("no VmRSS in /proc/self/status")
 
 
+def grow(lr: Learner, n: int, encode_only: bool) -> None:
+    """Blocks of 500 events of 20 new ids each and two numeric features, until n slots."""
+    rng = np.random.default_rng(0)
+    k = 0
+    while len(lr.vocab) < n:
+        block = BlockBuilder()
+        for _ in range(500):
+            x: dict[str, object] = {f"f{j}": f"customer-{k * 20 + j:08d}" for j in range(20)}
+            x["route_km"] = float(rng.gamma(2.0, 10.0))
+            x["express"] = float(rng.random() < 0.3)
+            slots, values = lr.encode(x)
+            block.add(slots, values, K.OP_TRAIN, float(rng.random() < 0.2), 1.0)
+            k += 1
+        if not encode_only:
+            lr.run_segments(block.segments())
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--slots", type=int, default=1_000_000)
-    n = ap.parse_args().slots
+    ap.add_argument("--encode-only", action="store_true")
+    ap.add_argument("--glibc-threshold", action="store_true", help="keep glibc's own mmap threshold")
+    args = ap.parse_args()
+    n = args.slots
+    if not args.glibc_threshold:
+        give_back_large_frees()  # as `oddsmill serve` does
+    # A first learner of a few thousand slots loads every compiled function the loop calls (the
+    # table's growth included): code, not memory a slot.
+    grow(Learner(LearnerSettings(max_features=2 * n)), 5_000, args.encode_only)
     lr = Learner(LearnerSettings(max_features=2 * n))
-    lr.learn_one({"route_km": 1.0}, 1)
     gc.collect()
     before = resident_bytes()
-    k = 0
-    while len(lr.vocab) < n:
-        lr.encode({f"f{j}": f"customer-{k * 20 + j:08d}" for j in range(20)})
-        k += 1
+    grow(lr, n, args.encode_only)
     gc.collect()
     grown = resident_bytes() - before
     slots = len(lr.vocab)
-    arrays = sum(a.nbytes for a in (lr._sl, lr._fl, lr._wq, lr._cl))
-    print(f"{slots:,} slots: resident memory +{grown / slots:.0f} bytes a slot")
-    print(f"state arrays: {arrays / slots:.0f} bytes a slot (capacity {lr._sl.shape[0]:,} slots)")
+    arrays = sum(a.nbytes for a in lr.arrays(0)[1:])
+    learned = "" if args.encode_only else f", {lr.step:,} events learned"
+    print(f"{slots:,} slots{learned}: resident memory +{grown / slots:.0f} bytes a slot")
+    cap = lr.arrays(0)[2].shape[0]
+    print(f"state arrays: {arrays / slots:.0f} bytes a slot (capacity {cap:,} slots: unused rows are not resident)")
     print(f"vocabulary arrays: {lr.vocab.nbytes / slots:.0f} bytes a slot ({len(lr.vocab.index):,} names in its dict)")
     try:  # the heap memory glibc's allocator keeps after frees (the events' objects, grown arrays)
         ctypes.CDLL("libc.so.6").malloc_trim(0)

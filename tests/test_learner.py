@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from oddsmill import kernel as K
 from oddsmill.encoding import BlockBuilder
-from oddsmill.learner import Learner
+from oddsmill.learner import OLD_ROW_ORDER, Learner
 from oddsmill.schedules import rate
 from oddsmill.settings import LearnerSettings
 
@@ -181,7 +181,7 @@ def test_checkpoints_with_the_old_row_order_load_and_continue_bit_for_bit(schedu
     rows = np.zeros((d["slots"].shape[0], 11))
     rows[:, : d["slots"].shape[1]] = d["slots"]  # the new order, AdaGrad's columns last (or zeros)
     back = np.empty_like(rows)
-    back[:, list(K.OLD_ROW_ORDER)] = rows  # the columns where the old order had them
+    back[:, list(OLD_ROW_ORDER)] = rows  # the columns where the old order had them
     old["slots"] = back
     again = Learner.from_state_dict(old)
     assert again.state_dict()["slots"].tobytes() == d["slots"].tobytes()

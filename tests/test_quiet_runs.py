@@ -164,9 +164,8 @@ def quiet_steps(lr: Learner, slots: np.ndarray, m: int) -> int:
     rows = rng.normal(size=(m, slots.shape[0])) * 10 + 30
     op = np.full(m, K.OP_TRAIN, np.int8)
     y = (rng.random(m) < 0.4) * 1.0
-    return int(
-        K._quiet_run(lr._prm, lr._sc, lr._sl, lr._fl, lr._cl, lr._wq, slots, rows, op, y, np.ones(m), np.empty(m), 0)
-    )
+    prm, sc, sl, fl, cl, wq, dt = lr.arrays(slots.shape[0])
+    return int(K._quiet_run(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, np.ones(m), np.empty(m), 0))
 
 
 def test_a_quiet_run_stops_at_the_next_centre_update() -> None:

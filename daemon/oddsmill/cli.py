@@ -471,12 +471,14 @@ def cmd_serve(args: argparse.Namespace) -> int:
     import signal
     import threading
 
+    from .learner import give_back_large_frees
     from .server import Server
 
     settings, learner, warm = serve_settings(args)
     if args.print_config:
         print_config(settings, learner)
         return 0
+    give_back_large_frees()  # before the state is loaded: its arrays then leave no free heap behind
     server = Server(settings, learner, warm)
     stop = threading.Event()
 

@@ -258,7 +258,7 @@ class Engine:
         if self.pending:
             self._expire(arrival)
         ms = self.metrics.scalars()
-        bodies = known.learn(self.learner.arrays(), self.metrics.arrays(), ms, arrival)
+        bodies = known.learn(self.learner.arrays(known.slots.shape[0]), self.metrics.arrays(), ms, arrival)
         self.metrics.set_scalars(ms)
         self.counters.train += len(bodies)
         return bodies

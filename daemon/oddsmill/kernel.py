@@ -5,11 +5,14 @@ values `val[...]`, an operation `op[e]` (SCORE, TRAIN = score then learn, LEARN 
 outcome), a label and a weight. Events are processed one after another, exactly as if sent one by
 one; the block only amortises the call.
 
-The state lives in three arrays so that the kernel's signature stays short:
+The state lives in a few arrays so that the kernel's signature stays short:
 - `prm`, the settings record (float64, indices P_*), built once from `LearnerSettings`;
 - `sc`, the scalar state (indices S_*): step, weight scale, intercept, averaging sums, ...;
-- `sl`, per-slot values (one row per vocabulary slot, columns R_*: one slot's values share a cache
-  line or two) and `fl`, per-slot flags (F_*).
+- `sl`, per-slot values (one short row per vocabulary slot, columns R_*: 24 bytes, 40 for
+  AdaGrad), and `fl`, per-slot flags (F_*);
+- `dt`, the detail rows (D_*) of the slots whose warm-up statistics are not implied by their
+  count (below: most slots of a large vocabulary are ids and categories, which never need one);
+- `cl`, the centred set, and `wq`, the warm-up queue (slot, first step) of open windows.
 
 Coordinates. The model is always logit = b + sum over present j of theta_j x_j / s_j: an absent
 feature contributes nothing. theta_j is in standardised units: s_j comes from the feature's first
@@ -65,23 +68,32 @@ from numba.extending import intrinsic
     P_WARMUP,
     P_MAX_CENTRED,
     P_QUIET_RUNS,
-) = range(12)
-N_PARAMS = 12
-# scalar state
-S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS = range(12)
-N_SCALARS = 12
-# per-slot columns. AdaGrad's two (its sum of squared gradients, the step a slot was last caught
-# up at) come last, and only AdaGrad's rows have them: the global schedules' rows are 9 columns (72
-# bytes), every use of R_G and R_LAST is on AdaGrad's path.
-R_V, R_U, R_MEAN, R_M2, R_COUNT, R_SCALE, R_FIRST, R_DPOS, R_SUM, R_G, R_LAST = range(11)
-N_ROWS = 11  # AdaGrad's row
-N_ROWS_GLOBAL = 9  # the global schedules' row
-# where each column was in the rows of checkpoints written before this order (all 11 columns)
-OLD_ROW_ORDER = (0, 1, 4, 5, 6, 7, 8, 9, 10, 2, 3)
+    P_DETAIL_ALL,
+) = range(13)
+N_PARAMS = 13
+# scalar state (S_NDETAIL: detail rows in use; not in checkpoints, which hold full rows)
+S_T, S_WS, S_B, S_A, S_SB, S_NAVG, S_GB, S_NCENT, S_QHEAD, S_QLEN, S_NSLOTS, S_RENORMS, S_NDETAIL = range(13)
+N_SCALARS = 13
+N_SCALARS_SAVED = 12
+# Every slot has a short row in `sl` (R_*): its coefficient's two sums, and R_AUX. AdaGrad's two
+# columns (its sum of squared gradients, the step a slot was last caught up at) come last, and only
+# AdaGrad's rows have them. A slot whose learned values have all been 1 (a one-hot, an id, a flag)
+# needs nothing else: its warm-up statistics follow from how often it was learned (the mean of its
+# values 1, their M2 0, its scale 1), so R_AUX is that count, which is also the sum of its values.
+# At its first learned value other than 1, or when it is centred, or when a quiet run takes it, it
+# gets a detail row in `dt` (D_*, F_DETAIL set) with those statistics written out, and R_AUX
+# becomes the row's index. The step at which a slot was first learned lives in the warm-up queue
+# (`wq`: slot, first step) while its window is open, and in its detail row once it is centred.
+R_V, R_U, R_AUX, R_G, R_LAST = range(5)
+N_ROWS = 5  # AdaGrad's row
+N_ROWS_GLOBAL = 3  # the global schedules' row
+D_MEAN, D_M2, D_COUNT, D_SCALE, D_FIRST, D_DPOS, D_SUM = range(7)
+N_DETAIL = 7
 # per-slot flags
 F_NUMERIC = np.uint8(1)
 F_CENTERED = np.uint8(2)
 F_SEEN = np.uint8(4)  # learned at least once (its warm-up window has begun)
+F_DETAIL = np.uint8(8)  # has a detail row (R_AUX is its index)
 # operations
 OP_SCORE, OP_TRAIN, OP_LEARN = 0, 1, 2
 # schedule codes (as in schedules.CODES)
@@ -120,10 +132,9 @@ def _prefetch_slots(sl, fl, idx, lo, hi):  # type: ignore[no-untyped-def]
     width = sl.shape[1]
     for k in range(lo, hi):
         j = idx[k]
-        # a row's 72 or 88 bytes meet up to three cache lines of 64: elements 0, 5 and the last
-        # (at most 40 bytes apart) are one in each
+        # a row's 24 or 40 bytes meet one or two cache lines of 64: its first and last elements
+        # are one in each (a detail row belongs to a frequent slot, in cache already)
         _prefetch(sl, j * width)  # type: ignore[call-arg]
-        _prefetch(sl, j * width + 5)
         _prefetch(sl, j * width + width - 1)
         _prefetch(fl, j)
 
@@ -196,61 +207,73 @@ def _coef_ada(prm, sc, sl, j, averaged):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _xstd(sl: np.ndarray, fl: np.ndarray, j: int, x: float) -> float:
-    if fl[j] & F_CENTERED:
-        return float((x - sl[j, R_MEAN]) / sl[j, R_SCALE])
-    return float(x / sl[j, R_SCALE])
+def _xstd(sl: np.ndarray, fl: np.ndarray, dt: np.ndarray, j: int, x: float) -> float:
+    """x in the slot's standardised units. A slot without a detail row has centre 0 and scale 1,
+    and x / 1.0 is x, bit for bit."""
+    f = fl[j]
+    if f & F_DETAIL:
+        d = int(sl[j, R_AUX])
+        if f & F_CENTERED:
+            return float((x - dt[d, D_MEAN]) / dt[d, D_SCALE])
+        return float(x / dt[d, D_SCALE])
+    return float(x)
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _dpos(sl, dt, j):  # type: ignore[no-untyped-def]
+    """A centred slot's position in the centred set."""
+    return int(dt[int(sl[j, R_AUX]), D_DPOS])
 
 
 @njit(cache=True, error_model="numpy")
-def _gather(sl, fl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
+def _gather(sl, fl, dt, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
     """Put the values of the present centred features into dx (by position in the centred set)."""
     for k in range(lo, hi):
         j = idx[k]
         if fl[j] & F_CENTERED:
-            dx[int(sl[j, R_DPOS])] = val[k]
+            dx[_dpos(sl, dt, j)] = val[k]
 
 
 @njit(cache=True, error_model="numpy")
-def _clear(sl, fl, idx, lo, hi, dx):  # type: ignore[no-untyped-def]
+def _clear(sl, fl, dt, idx, lo, hi, dx):  # type: ignore[no-untyped-def]
     for k in range(lo, hi):
         j = idx[k]
         if fl[j] & F_CENTERED:
-            dx[int(sl[j, R_DPOS])] = 0.0
+            dx[_dpos(sl, dt, j)] = 0.0
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_global(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
     """The model's logit for one event (global schedules), reading the state only. `dx` holds the
     values of the centred features (0 where absent)."""
     z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
     for m in range(int(sc[S_NCENT])):
         j = cl[m]
-        z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, dx[m])
+        z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, dx[m])
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, val[k])
+            z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, val[k])
     return z
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_ada(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
     """_logit_global for AdaGrad. Two copies because numba compiles the per-feature loop ten times
     slower when a call to AdaGrad's catch-up sits in it, even untaken (measured)."""
     z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
     for m in range(int(sc[S_NCENT])):
         j = cl[m]
-        z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, dx[m])
+        z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, dx[m])
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, j, val[k])
+            z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, val[k])
     return z
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
+def _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
     """(averaged logit, current logit) in one pass (global schedules, averaging under way). The
     current one is summed in the order of _logit_global, so it is bit-identical to it."""
     n = sc[S_NAVG]
@@ -260,37 +283,37 @@ def _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx):  # type: ignore[no-u
     zc = sc[S_B]
     for m in range(int(sc[S_NCENT])):
         j = cl[m]
-        xs = _xstd(sl, fl, j, dx[m])
+        xs = _xstd(sl, fl, dt, j, dx[m])
         za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
         zc += ws * sl[j, R_V] * xs
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            xs = _xstd(sl, fl, j, val[k])
+            xs = _xstd(sl, fl, dt, j, val[k])
             za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
             zc += ws * sl[j, R_V] * xs
     return za, zc
 
 
 @njit(cache=True, error_model="numpy")
-def _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
     if prm[P_SCHED] == SCH_ADAGRAD:
-        return _logit_ada(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
-    return _logit_global(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+        return _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
+    return _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
-def score_block(prm, sc, sl, fl, cl, ptr, idx, val, out):  # type: ignore[no-untyped-def]
+def score_block(prm, sc, sl, fl, cl, dt, ptr, idx, val, out):  # type: ignore[no-untyped-def]
     """Logits of every event of a block with the state as it is (scoring never changes state)."""
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     for e in range(ptr.shape[0] - 1):
         lo, hi = ptr[e], ptr[e + 1]
         if sc[S_NCENT] > 0.0:
-            _gather(sl, fl, idx, val, lo, hi, dx)
-        out[e] = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+            _gather(sl, fl, dt, idx, val, lo, hi, dx)
+        out[e] = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
         if sc[S_NCENT] > 0.0:
-            _clear(sl, fl, idx, lo, hi, dx)
+            _clear(sl, fl, dt, idx, lo, hi, dx)
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -306,11 +329,13 @@ def _scale(mean: float, m2: float, n: float) -> float:
 
 
 @njit(cache=True, error_model="numpy")
-def _reparam(prm, sc, sl, fl, j, new_center, new_scale):  # type: ignore[no-untyped-def]
-    """Change feature j's centre and scale, rewriting theta_j and the intercept so that every
-    prediction (of the iterate and of the average) is unchanged. AdaGrad's lag must be caught up."""
-    old_center = sl[j, R_MEAN] if fl[j] & F_CENTERED else 0.0
-    old_scale = sl[j, R_SCALE]
+def _reparam(prm, sc, sl, fl, dt, j, new_center, new_scale):  # type: ignore[no-untyped-def]
+    """Change feature j's centre and scale (it has a detail row), rewriting theta_j and the
+    intercept so that every prediction (of the iterate and of the average) is unchanged. AdaGrad's
+    lag must be caught up."""
+    d = int(sl[j, R_AUX])
+    old_center = dt[d, D_MEAN] if fl[j] & F_CENTERED else 0.0
+    old_scale = dt[d, D_SCALE]
     shift = (new_center - old_center) / old_scale
     ratio = new_scale / old_scale
     # For AdaGrad ws stays 1 and A stays 0, so these read both families (branch-free: a call to
@@ -321,7 +346,44 @@ def _reparam(prm, sc, sl, fl, j, new_center, new_scale):  # type: ignore[no-unty
     sl[j, R_U] *= ratio
     sc[S_B] += theta * shift
     sc[S_SB] += tsum * shift
-    sl[j, R_SCALE] = new_scale
+    dt[d, D_SCALE] = new_scale
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _reparam_unit(sc, sl, j):  # type: ignore[no-untyped-def]
+    """`_reparam` of a slot without a detail row to its own centre 0 and scale 1 (a warm-up step
+    on a value of 1): shift 0.0 and ratio 1.0, so theta_j stays as it is and the intercepts add
+    theta * 0.0, as `_reparam` adds (which leaves them as they are unless theta is not finite)."""
+    theta = sc[S_WS] * sl[j, R_V]
+    tsum = sl[j, R_U] + sc[S_A] * sl[j, R_V]
+    sc[S_B] += theta * 0.0
+    sc[S_SB] += tsum * 0.0
+
+
+@njit(cache=True, error_model="numpy")
+def _promote(prm, sc, sl, fl, dt, j):  # type: ignore[no-untyped-def]
+    """Give slot j a detail row, with the statistics its count implies (n values of 1: mean 1,
+    M2 0, count min(n, warm-up), scale 1, sum n). The caller made room in dt."""
+    n = sl[j, R_AUX]
+    d = int(sc[S_NDETAIL])
+    sc[S_NDETAIL] = d + 1.0
+    dt[d, D_MEAN] = 1.0 if n > 0.0 else 0.0
+    dt[d, D_M2] = 0.0
+    dt[d, D_COUNT] = min(n, prm[P_WARMUP])
+    dt[d, D_SCALE] = 1.0
+    dt[d, D_FIRST] = 0.0
+    dt[d, D_DPOS] = -1.0
+    dt[d, D_SUM] = n
+    sl[j, R_AUX] = d
+    fl[j] |= F_DETAIL
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _count(prm, sl, fl, dt, j):  # type: ignore[no-untyped-def]
+    """The count of the slot's values its warm-up statistics hold."""
+    if fl[j] & F_DETAIL:
+        return float(dt[int(sl[j, R_AUX]), D_COUNT])
+    return float(min(sl[j, R_AUX], prm[P_WARMUP]))
 
 
 @njit(cache=True, error_model="numpy")
@@ -333,35 +395,41 @@ def _catch_up(prm, sc, sl, j):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _end_warmups(prm, sc, sl, fl, cl, wq):  # type: ignore[no-untyped-def]
+def _end_warmups(prm, sc, sl, fl, dt, cl, wq):  # type: ignore[no-untyped-def]
     """Features whose warm-up window (P_WARMUP learned events from their first) ends at this step:
     centre the frequent ones, with their mean over the window (absent counted as 0)."""
     t = sc[S_T]
     window = prm[P_WARMUP]
     joined = False
     while sc[S_QHEAD] < sc[S_QLEN]:
-        j = wq[int(sc[S_QHEAD])]
-        if sl[j, R_FIRST] + window > t:
+        q = int(sc[S_QHEAD])
+        j = int(wq[q, 0])
+        first = wq[q, 1]
+        if first + window > t:
             break
         sc[S_QHEAD] += 1.0
-        if sl[j, R_COUNT] < CENTRE_MIN_SHARE * window or sc[S_NCENT] >= prm[P_MAX_CENTRED]:
+        if _count(prm, sl, fl, dt, j) < CENTRE_MIN_SHARE * window or sc[S_NCENT] >= prm[P_MAX_CENTRED]:
             continue
         if prm[P_SCHED] == SCH_ADAGRAD:
             _catch_up(prm, sc, sl, j)
-        centre = sl[j, R_SUM] / (t - sl[j, R_FIRST])
-        _reparam(prm, sc, sl, fl, j, centre, sl[j, R_SCALE])
+        if not (fl[j] & F_DETAIL):
+            _promote(prm, sc, sl, fl, dt, j)
+        d = int(sl[j, R_AUX])
+        dt[d, D_FIRST] = first
+        centre = dt[d, D_SUM] / (t - first)
+        _reparam(prm, sc, sl, fl, dt, j, centre, dt[d, D_SCALE])
         fl[j] |= F_CENTERED
-        sl[j, R_MEAN] = centre
+        dt[d, D_MEAN] = centre
         m = int(sc[S_NCENT])
         cl[m] = j
-        sl[j, R_DPOS] = m
+        dt[d, D_DPOS] = m
         sc[S_NCENT] = m + 1.0
         joined = True
     return joined
 
 
 @njit(cache=True, error_model="numpy")
-def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gathered):  # type: ignore[no-untyped-def]
+def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gathered):  # type: ignore[no-untyped-def]
     """One step. `z_hint` is the current logit when the caller has it (NaN otherwise), with dx
     gathered; it is used when no change of coordinates happens in this step (bit-identical then)."""
     ada = prm[P_SCHED] == SCH_ADAGRAD
@@ -371,44 +439,57 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
         for k in range(lo, hi):
             _catch_up(prm, sc, sl, idx[k])
     if prm[P_SCALING] != 0.0:
-        changed = _end_warmups(prm, sc, sl, fl, cl, wq)
+        changed = _end_warmups(prm, sc, sl, fl, dt, cl, wq)
         # a centred feature's centre is its mean over every learned event since its first,
         # brought up to date every CENTRE_PERIOD steps
         for m in range(int(sc[S_NCENT]) if t % CENTRE_PERIOD == 0 else 0):
             j = cl[m]
-            centre = sl[j, R_SUM] / (t - sl[j, R_FIRST])
-            if centre != sl[j, R_MEAN]:
+            d = int(sl[j, R_AUX])
+            centre = dt[d, D_SUM] / (t - dt[d, D_FIRST])
+            if centre != dt[d, D_MEAN]:
                 changed = True
                 if ada:
                     _catch_up(prm, sc, sl, j)
-                _reparam(prm, sc, sl, fl, j, centre, sl[j, R_SCALE])
-                sl[j, R_MEAN] = centre
+                _reparam(prm, sc, sl, fl, dt, j, centre, dt[d, D_SCALE])
+                dt[d, D_MEAN] = centre
+        detail_all = prm[P_DETAIL_ALL] != 0.0
         for k in range(lo, hi):
             j = idx[k]
+            x = val[k]
+            if not (fl[j] & F_DETAIL) and (x != 1.0 or detail_all):
+                _promote(prm, sc, sl, fl, dt, j)
             if not (fl[j] & F_SEEN):
                 fl[j] |= F_SEEN
-                sl[j, R_FIRST] = t
-                wq[int(sc[S_QLEN])] = j
-                sc[S_QLEN] += 1.0
-            sl[j, R_SUM] += val[k]
-            if (fl[j] & F_CENTERED) or sl[j, R_COUNT] >= prm[P_WARMUP]:
+                q = int(sc[S_QLEN])
+                wq[q, 0] = j
+                wq[q, 1] = t
+                sc[S_QLEN] = q + 1.0
+            if not (fl[j] & F_DETAIL):  # x is 1: the count is the sum
+                n = sl[j, R_AUX]
+                sl[j, R_AUX] = n + 1.0
+                if n < prm[P_WARMUP]:
+                    changed = True
+                    _reparam_unit(sc, sl, j)
+                continue
+            d = int(sl[j, R_AUX])
+            dt[d, D_SUM] += x
+            if (fl[j] & F_CENTERED) or dt[d, D_COUNT] >= prm[P_WARMUP]:
                 continue
             # Welford's running mean and variance of the feature's present values
-            x = val[k]
-            cnt = sl[j, R_COUNT] + 1.0
-            delta = x - sl[j, R_MEAN]
-            mean = sl[j, R_MEAN] + delta / cnt
-            m2 = sl[j, R_M2] + delta * (x - mean)
+            cnt = dt[d, D_COUNT] + 1.0
+            delta = x - dt[d, D_MEAN]
+            mean = dt[d, D_MEAN] + delta / cnt
+            m2 = dt[d, D_M2] + delta * (x - mean)
             scale = _scale(mean, m2, cnt)
             changed = True
-            _reparam(prm, sc, sl, fl, j, 0.0, scale)
-            sl[j, R_MEAN] = mean
-            sl[j, R_M2] = m2
-            sl[j, R_COUNT] = cnt
+            _reparam(prm, sc, sl, fl, dt, j, 0.0, scale)
+            dt[d, D_MEAN] = mean
+            dt[d, D_M2] = m2
+            dt[d, D_COUNT] = cnt
     if changed or not gathered or z_hint != z_hint:
         if sc[S_NCENT] > 0.0:
-            _gather(sl, fl, idx, val, lo, hi, dx)
-        z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, False)
+            _gather(sl, fl, dt, idx, val, lo, hi, dx)
+        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, False)
     else:
         z = z_hint
     g = w * (y - sigmoid(z))
@@ -427,7 +508,7 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
                 if fl[j] & F_CENTERED:
                     continue
                 x = val[lo + m - ncent]
-            gj = g * _xstd(sl, fl, j, x)
+            gj = g * _xstd(sl, fl, dt, j, x)
             sl[j, R_G] += gj * gj
             eta_j = _ada_rate(prm, sl[j, R_G])
             sl[j, R_V] += eta_j * (gj - l2 * sl[j, R_V])
@@ -450,7 +531,7 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
                 if fl[j] & F_CENTERED:
                     continue
                 x = val[lo + m - ncent]
-            d = eta * g * _xstd(sl, fl, j, x) / ws
+            d = eta * g * _xstd(sl, fl, dt, j, x) / ws
             sl[j, R_V] += d
             sl[j, R_U] -= a_sum * d
         sc[S_B] += eta * g
@@ -465,7 +546,7 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
             sc[S_WS] = 1.0
             sc[S_RENORMS] += 1.0
     if sc[S_NCENT] > 0.0:
-        _clear(sl, fl, idx, lo, hi, dx)
+        _clear(sl, fl, dt, idx, lo, hi, dx)
     if averaging:
         sc[S_SB] += sc[S_B]
         sc[S_NAVG] += 1.0
@@ -473,31 +554,31 @@ def _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gath
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op, y, w, dx, ada):  # type: ignore[no-untyped-def]
+def _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op, y, w, dx, ada):  # type: ignore[no-untyped-def]
     """One event of a block (features idx[lo:hi] with values val[lo:hi]); returns its published
     logit (scored with the state before it is learned: progressive validation), NaN for LEARN."""
     if op == OP_LEARN:
-        _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, np.nan, False)
+        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, np.nan, False)
         return np.nan
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
     if sc[S_NCENT] > 0.0:
-        _gather(sl, fl, idx, val, lo, hi, dx)
+        _gather(sl, fl, dt, idx, val, lo, hi, dx)
     z_cur = np.nan
     if averaged and not ada and op == OP_TRAIN:
-        z, z_cur = _logit_pair(prm, sc, sl, fl, cl, idx, val, lo, hi, dx)
+        z, z_cur = _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx)
     else:
-        z = _logit(prm, sc, sl, fl, cl, idx, val, lo, hi, dx, averaged)
+        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
         if not averaged:
             z_cur = z
     if op == OP_TRAIN:
-        _learn_one(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, y, w, dx, z_cur, True)
+        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_cur, True)
     elif sc[S_NCENT] > 0.0:
-        _clear(sl, fl, idx, lo, hi, dx)
+        _clear(sl, fl, dt, idx, lo, hi, dx)
     return z
 
 
 @njit(cache=True, error_model="numpy")
-def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type: ignore[no-untyped-def]
+def _quiet_run(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, e0):  # type: ignore[no-untyped-def]
     """Events e0, e0 + 1, ... of rows that share their slots (row e has the values rows[e] at
     `slots`, weight w[e]), run on copies of their slots' state in small dense arrays for as long
     as the steps are quiet: a global schedule, every slot of the row past its warm-up (seen, and
@@ -505,8 +586,9 @@ def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type
     the weight scale. Each step is then the arithmetic of `_event` and `_learn_one` when nothing
     changes coordinates, with the same expressions in the same order (the logit sums the centred
     set, then the row's other slots in row order), so the state is bit-identical. The slots must be
-    distinct, as encoding makes them. Returns the first event not run; the caller runs that one
-    with `_event`, which may change coordinates, and comes back."""
+    distinct, as encoding makes them. With scaling, the run gives every slot of the row a detail
+    row first, so that the values need no check (the caller made room for them). Returns the first event not
+    run; the caller runs that one with `_event`, which may change coordinates, and comes back."""
     m, k = rows.shape
     if prm[P_SCHED] == SCH_ADAGRAD or e0 >= m:
         return e0
@@ -522,14 +604,17 @@ def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type
     if scaling:
         for c in range(k):
             j = slots[c]
-            if not (fl[j] & F_SEEN) or (not (fl[j] & F_CENTERED) and sl[j, R_COUNT] < prm[P_WARMUP]):
+            if not (fl[j] & F_SEEN) or (not (fl[j] & F_CENTERED) and _count(prm, sl, fl, dt, j) < prm[P_WARMUP]):
                 return e0
         if sc[S_QHEAD] < sc[S_QLEN]:
-            t_lim = sl[wq[int(sc[S_QHEAD])], R_FIRST] + prm[P_WARMUP]
+            t_lim = wq[int(sc[S_QHEAD]), 1] + prm[P_WARMUP]
         if ncent > 0:
             t_lim = min(t_lim, float(CENTRE_PERIOD * math.ceil(t / CENTRE_PERIOD)))
     if op[e0] != OP_SCORE and (t >= t_lim or ws * (1.0 - _global_rate(prm, t) * l2) < WS_FLOOR):
         return e0
+    for c in range(k if scaling else 0):
+        if not (fl[slots[c]] & F_DETAIL):
+            _promote(prm, sc, sl, fl, dt, slots[c])
     # The coordinates: the centred set in its order, then the row's other slots in row order.
     # col[a] is coordinate a's column in the row (-1: a centred slot absent from it, value 0).
     jj = np.empty(ncent + k, np.int64)
@@ -547,21 +632,22 @@ def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type
     for c in range(k):
         j = slots[c]
         if fl[j] & F_CENTERED:
-            col[int(sl[j, R_DPOS])] = c
+            col[_dpos(sl, dt, j)] = c
         else:
             jj[n] = j
             col[n] = c
             n += 1
     for a in range(n):
         j = jj[a]
+        d = int(sl[j, R_AUX])
         if fl[j] & F_CENTERED:
-            cen[a] = sl[j, R_MEAN]  # (x - 0.0) is x exactly, so the other slots share the formula
-        scl[a] = sl[j, R_SCALE]
+            cen[a] = dt[d, D_MEAN]  # (x - 0.0) is x exactly, so the other slots share the formula
+        scl[a] = dt[d, D_SCALE] if fl[j] & F_DETAIL else 1.0  # (without scaling, none has a detail row)
         v[a] = sl[j, R_V]
         u[a] = sl[j, R_U]
     sums = np.empty(k)
-    for c in range(k):
-        sums[c] = sl[slots[c], R_SUM]
+    for c in range(k if scaling else 0):
+        sums[c] = dt[int(sl[slots[c], R_AUX]), D_SUM]
     b, a_sum, sb, navg = sc[S_B], sc[S_A], sc[S_SB], sc[S_NAVG]
     avg_on = prm[P_AVG] != 0.0
     eta = ws_next = 0.0
@@ -617,14 +703,14 @@ def _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e0):  # type
     for a in range(n):
         sl[jj[a], R_V] = v[a]
         sl[jj[a], R_U] = u[a]
-    for c in range(k):
-        sl[slots[c], R_SUM] = sums[c]
+    for c in range(k if scaling else 0):
+        dt[int(sl[slots[c], R_AUX]), D_SUM] = sums[c]
     sc[S_T], sc[S_WS], sc[S_B], sc[S_A], sc[S_SB], sc[S_NAVG] = t, ws, b, a_sum, sb, navg
     return e
 
 
 @njit(cache=True, error_model="numpy")
-def _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, dx, ada):  # type: ignore[no-untyped-def]
+def _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, dx, ada):  # type: ignore[no-untyped-def]
     """Events that share their slots, in order: quiet runs in `_quiet_run`, the others (warm-ups,
     centre updates, folds) one at a time in `_event`."""
     quiet = prm[P_QUIET_RUNS] != 0.0 and not ada
@@ -632,10 +718,10 @@ def _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, dx, ada): 
     e = 0
     while e < rows.shape[0]:
         if quiet:
-            e = _quiet_run(prm, sc, sl, fl, cl, wq, slots, rows, op, y, w, out, e)
+            e = _quiet_run(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, e)
             if e >= rows.shape[0]:
                 break
-        out[e] = _event(prm, sc, sl, fl, cl, wq, slots, rows[e], 0, k, op[e], y[e], w[e], dx, ada)
+        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, slots, rows[e], 0, k, op[e], y[e], w[e], dx, ada)
         e += 1
 
 
@@ -648,7 +734,7 @@ def _same_slots(idx, lo, at, k):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
-def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
+def learn_block(prm, sc, sl, fl, cl, wq, dt, ptr, idx, val, op, y, w, out):  # type: ignore[no-untyped-def]
     """Run a block in order. `out[e]` gets the published logit of SCORE and TRAIN events (scored
     with the state before the event is learned: progressive validation) and NaN for LEARN ones.
     Consecutive events with the same slots in the same order (QUIET_MIN_EVENTS or more) run as the
@@ -667,30 +753,30 @@ def learn_block(prm, sc, sl, fl, cl, wq, ptr, idx, val, op, y, w, out):  # type:
                 r += 1
         if r - e >= QUIET_MIN_EVENTS and k > 0:
             rows = val[lo : ptr[r]].reshape((r - e, k))
-            _shared_rows(prm, sc, sl, fl, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, ada)
+            _shared_rows(prm, sc, sl, fl, dt, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, ada)
             e = r
             continue
         if e + 2 < n_ev:
             _prefetch_slots(sl, fl, idx, ptr[e + 2], ptr[e + 3])
-        out[e] = _event(prm, sc, sl, fl, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, ada)
+        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, ada)
         e += 1
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
-def learn_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, out):  # type: ignore[no-untyped-def]
+def learn_rows(prm, sc, sl, fl, cl, wq, dt, slots, rows, op, y, out):  # type: ignore[no-untyped-def]
     """`learn_block` for events that share their slots, as a columnar block's rows do: row e has
     the values rows[e] (C order) at `slots`, weight 1. The same arithmetic, event for event, with
     no index array a row to build."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    _shared_rows(prm, sc, sl, fl, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, ada)
+    _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, ada)
 
 
 @njit(cache=True, error_model="numpy")
-def learn_event(prm, sc, sl, fl, cl, wq, idx, val, op, y, w):  # type: ignore[no-untyped-def]
+def learn_event(prm, sc, sl, fl, cl, wq, dt, idx, val, op, y, w):  # type: ignore[no-untyped-def]
     """`learn_block` over a block of one event (features idx with values val): the same call of
     `_event`, so the same arithmetic bit for bit, without the block's five arrays to build. The
     daemon's path for a lone message (Engine.one)."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    return _event(prm, sc, sl, fl, cl, wq, idx, val, 0, idx.shape[0], op, y, w, dx, ada)
+    return _event(prm, sc, sl, fl, dt, cl, wq, idx, val, 0, idx.shape[0], op, y, w, dx, ada)

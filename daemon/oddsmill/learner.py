@@ -26,6 +26,46 @@ from .settings import LearnerSettings
 from .vocabulary import Vocabulary
 
 INITIAL_SLOTS = 64
+# A slot's full row, as checkpoints hold it (slot_order 2): every statistic written out, whatever
+# the kernel keeps in memory (a short row, and a detail row only where the statistics are not
+# implied). X_FIRST is the step a slot was first learned while its warm-up window is open or once
+# it is centred, else 0 (not needed then); X_DPOS is -1 unless it is centred.
+X_V, X_U, X_MEAN, X_M2, X_COUNT, X_SCALE, X_FIRST, X_DPOS, X_SUM, X_G, X_LAST = range(11)
+FULL_ROW, FULL_ROW_GLOBAL = 11, 9  # AdaGrad's, the global schedules'
+# where each column was in the rows of checkpoints written before slot_order 2 (all 11 columns)
+OLD_ROW_ORDER = (0, 1, 4, 5, 6, 7, 8, 9, 10, 2, 3)
+# the full row's columns a detail row holds as they are (D_FIRST only while a slot is centred)
+DETAIL_COLUMNS = (
+    (X_MEAN, K.D_MEAN),
+    (X_M2, K.D_M2),
+    (X_COUNT, K.D_COUNT),
+    (X_SCALE, K.D_SCALE),
+    (X_DPOS, K.D_DPOS),
+    (X_SUM, K.D_SUM),
+)
+
+
+MMAP_THRESHOLD = 1 << 20  # bytes: allocations this large get pages of their own (glibc)
+
+
+def give_back_large_frees() -> bool:
+    """Have glibc's allocator map every allocation of MMAP_THRESHOLD bytes or more on pages of
+    its own, returned to the system when freed. The state's and the vocabulary's arrays grow by
+    doubling; with glibc's own threshold (which rises to 32 MiB as large blocks are freed), the
+    grown arrays come from the heap, and the copies they replace stay there as free memory the
+    process keeps: 70 bytes a slot resident at a million slots against 61 with this (measured,
+    scripts/memory_per_slot.py). `oddsmill serve` calls it at start; False where there is no
+    glibc (the process then keeps its allocator as it is)."""
+    import ctypes
+    import ctypes.util
+
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        mallopt = libc.mallopt
+    except (OSError, AttributeError):
+        return False
+    m_mmap_threshold = -3  # <malloc.h>
+    return bool(mallopt(m_mmap_threshold, MMAP_THRESHOLD))
 
 
 def row_width(s: LearnerSettings) -> int:
@@ -76,7 +116,9 @@ class Learner:
         self._sl = np.zeros((0, row_width(self._settings)))
         self._fl = np.zeros(0, dtype=np.uint8)
         self._cl = np.zeros(self._settings.max_centred, dtype=np.int64)
-        self._wq = np.zeros(0, dtype=np.int64)
+        self._wq = np.zeros((0, 2))  # the warm-up queue: (slot, first step) of each open window
+        self._dt = np.zeros((0, K.N_DETAIL))
+        self._spare = 0  # kernel.S_NDETAIL and S_QLEN can grow this much more before _room looks
         self._grow(INITIAL_SLOTS)
 
     # -- read-only views -------------------------------------------------------------------------
@@ -118,17 +160,42 @@ class Learner:
         if needed <= cap:
             return
         new_cap = max(needed, 2 * cap, INITIAL_SLOTS)
+        # A new row is all zeros, which the kernel reads as never learned (memory the system gives
+        # as zeros, not touched until a slot is used). AdaGrad's R_LAST of 0 is not a step the
+        # slot was caught up at, but a coefficient of 0 needs no catching up from any step.
         sl = np.zeros((new_cap, self._sl.shape[1]))
         sl[:cap] = self._sl
-        sl[cap:, K.R_SCALE] = 1.0
-        if self._sl.shape[1] > K.R_LAST:
-            sl[cap:, K.R_LAST] = self._sc[K.S_T]
-        sl[cap:, K.R_DPOS] = -1.0
         fl = np.zeros(new_cap, dtype=np.uint8)
         fl[:cap] = self._fl
-        wq = np.zeros(new_cap, dtype=np.int64)
-        wq[:cap] = self._wq
-        self._sl, self._fl, self._wq = sl, fl, wq
+        self._sl, self._fl = sl, fl
+
+    def _room(self, n: int) -> None:
+        """Room for a call of the kernel over n feature values: each may give its slot a detail
+        row (and the centred set may take up to max_centred), and each may open a warm-up window.
+        The queue drops its closed windows first, and grows only when half of it is open ones."""
+        if n <= self._spare:
+            self._spare -= n
+            return
+        sc = self._sc
+        used = int(sc[K.S_NDETAIL])
+        need = used + n + self._settings.max_centred
+        if need > self._dt.shape[0]:
+            dt = np.zeros((max(need, 2 * self._dt.shape[0], INITIAL_SLOTS), K.N_DETAIL))
+            dt[:used] = self._dt[:used]
+            self._dt = dt
+        head, qlen = int(sc[K.S_QHEAD]), int(sc[K.S_QLEN])
+        if qlen + n > self._wq.shape[0]:
+            live = qlen - head
+            cap = self._wq.shape[0]
+            if 2 * (live + n) > cap:
+                wq = np.zeros((max(2 * (live + n), 2 * cap, INITIAL_SLOTS), 2))
+                wq[:live] = self._wq[head:qlen]
+                self._wq = wq
+            else:
+                self._wq[:live] = self._wq[head:qlen]  # (numpy copies overlapping ranges as if buffered)
+            sc[K.S_QHEAD], sc[K.S_QLEN] = 0.0, float(live)
+        free_rows = self._dt.shape[0] - self._settings.max_centred - int(sc[K.S_NDETAIL])
+        self._spare = min(free_rows, self._wq.shape[0] - int(sc[K.S_QLEN])) - n
 
     def encode(
         self, x: Mapping[str, Any], grow: bool = True, event_id: object = None
@@ -166,27 +233,35 @@ class Learner:
     def run_segments(self, segments: list[Block | Rows]) -> np.ndarray:
         """`run` over segments in order (CSR blocks, and the rows of columnar blocks as they are)."""
         out = np.empty(sum(len(s) for s in segments))
-        state = (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq)
         at = 0
         for seg in segments:
             end = at + len(seg)
             if isinstance(seg, Rows):
+                self._room(seg.slots.shape[0])
+                state = (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, self._dt)
                 K.learn_rows(*state, seg.slots, seg.rows, seg.op, seg.y, out[at:end])
             else:
+                self._room(seg.idx.shape[0])
+                state = (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, self._dt)
                 K.learn_block(*state, seg.ptr, seg.idx, seg.val, seg.op, seg.y, seg.w, out[at:end])
             at = end
         return out
 
-    def arrays(self) -> tuple[np.ndarray, ...]:
-        """The kernel's state (settings, scalars, slot rows, flags, centred list, warm-up queue),
-        for compiled callers that run the kernel's steps themselves (quick.py)."""
-        return (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq)
+    def arrays(self, k: int) -> tuple[np.ndarray, ...]:
+        """The kernel's state (settings, scalars, slot rows, flags, centred list, warm-up queue,
+        detail rows) with room for a call over events of k slots, for compiled callers that run
+        the kernel's steps themselves (quick.py)."""
+        self._room(k)
+        return (self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, self._dt)
 
     def run_one(self, slots: Sequence[int], values: Sequence[float], op: int, y: float, w: float) -> float:
         """`run` over a block of one event (kernel.learn_event); returns its published logit."""
         idx = np.array(slots, dtype=np.int64)
         val = np.array(values, dtype=np.float64)
-        z: float = K.learn_event(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, idx, val, op, y, w)
+        self._room(idx.shape[0])
+        z: float = K.learn_event(
+            self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, self._dt, idx, val, op, y, w
+        )
         return z
 
     def run_rows(self, slots: Sequence[int], rows: np.ndarray, y: np.ndarray) -> np.ndarray:
@@ -196,13 +271,14 @@ class Learner:
         out = np.empty(m)
         op = np.full(m, K.OP_TRAIN, dtype=np.int8)
         idx = np.array(slots, dtype=np.int64)
-        K.learn_rows(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, idx, rows, op, y, out)
+        self._room(idx.shape[0])
+        K.learn_rows(self._prm, self._sc, self._sl, self._fl, self._cl, self._wq, self._dt, idx, rows, op, y, out)
         return out
 
     def score(self, block: Block) -> np.ndarray:
         """Logits of a block's events with the current state; changes nothing."""
         out = np.empty(len(block))
-        K.score_block(self._prm, self._sc, self._sl, self._fl, self._cl, block.ptr, block.idx, block.val, out)
+        K.score_block(self._prm, self._sc, self._sl, self._fl, self._cl, self._dt, block.ptr, block.idx, block.val, out)
         return out
 
     # -- conveniences for one event ------------------------------------------------------------
@@ -244,9 +320,9 @@ class Learner:
 
     def scales(self) -> tuple[np.ndarray, np.ndarray]:
         """(centre, scale) of each slot: x_std = (x - centre) / scale."""
-        n = len(self.vocab)
-        centred = (self._fl[:n] & K.F_CENTERED) != 0
-        return np.where(centred, self._sl[:n, K.R_MEAN], 0.0), self._sl[:n, K.R_SCALE].copy()
+        full = self._full_rows(columns=(X_MEAN, X_SCALE))
+        centred = (self._fl[: len(self.vocab)] & K.F_CENTERED) != 0
+        return np.where(centred, full[:, 0], 0.0), full[:, 1]
 
     def coefficients(self, averaged: bool | None = None) -> Coefficients:
         """The model in the units the features were sent (the averaged weights when averaging)."""
@@ -283,18 +359,51 @@ class Learner:
         ]
 
     # -- state for checkpoints -------------------------------------------------------------------
-    def state_dict(self) -> dict[str, Any]:
+    def _full_rows(self, columns: Sequence[int] | None = None) -> np.ndarray:
+        """Each slot's full row (X_*; only `columns` of it, in that order, when given): the short
+        row's sums, the statistics a count implies or the detail row holds, and the first step
+        of an open warm-up window from the queue."""
         n = len(self.vocab)
+        width = FULL_ROW if self._settings.schedule == "adagrad" else FULL_ROW_GLOBAL
+        sl, fl = self._sl[:n], self._fl[:n]
+        full = np.zeros((n, width))
+        full[:, X_V], full[:, X_U] = sl[:, K.R_V], sl[:, K.R_U]
+        if width == FULL_ROW:
+            full[:, X_G], full[:, X_LAST] = sl[:, K.R_G], sl[:, K.R_LAST]
+        det = (fl & K.F_DETAIL) != 0
+        count = np.where(det, 0.0, sl[:, K.R_AUX])
+        full[:, X_MEAN] = count > 0.0
+        full[:, X_COUNT] = np.minimum(count, self._settings.scale_warmup)
+        full[:, X_SCALE] = 1.0
+        full[:, X_DPOS] = -1.0
+        full[:, X_SUM] = count
+        rows = self._dt[sl[det, K.R_AUX].astype(np.int64)]
+        for x, d in DETAIL_COLUMNS:
+            full[det, x] = rows[:, d]
+        centred = (fl & K.F_CENTERED) != 0
+        full[centred, X_FIRST] = self._dt[sl[centred, K.R_AUX].astype(np.int64), K.D_FIRST]
+        open_ = self._wq[int(self._sc[K.S_QHEAD]) : int(self._sc[K.S_QLEN])]
+        full[open_[:, 0].astype(np.int64), X_FIRST] = open_[:, 1]
+        return full if columns is None else full[:, list(columns)]
+
+    def state_dict(self) -> dict[str, Any]:
+        """The state with every statistic written out (full rows, the open warm-up windows): two
+        learners that learned the same events hold the same dict, however their detail rows were
+        laid out and their queue compacted."""
+        n = len(self.vocab)
+        scalars = self._sc[: K.N_SCALARS_SAVED].copy()
+        head, qlen = int(self._sc[K.S_QHEAD]), int(self._sc[K.S_QLEN])
+        scalars[K.S_QHEAD], scalars[K.S_QLEN] = 0.0, float(qlen - head)
         return {
             "settings": self._settings.to_dict(),
             **self.vocab.state(),  # the names: their UTF-8 bytes end to end, and where each ends
             "ignored": self.vocab.ignored,
-            "scalars": self._sc.copy(),
-            "slots": self._sl[:n].copy(),
-            "slot_order": 2,  # kernel.R_* (1, or absent: OLD_ROW_ORDER)
-            "flags": self._fl[:n].copy(),
+            "scalars": scalars,
+            "slots": self._full_rows(),
+            "slot_order": 2,  # X_* (1, or absent: OLD_ROW_ORDER)
+            "flags": self._fl[:n] & ~K.F_DETAIL,
             "centred_list": self._cl.copy(),
-            "warmup_queue": self._wq[: int(self._sc[K.S_QLEN])].copy(),
+            "warmup_queue": self._wq[head:qlen, 0].astype(np.int64),
         }
 
     @classmethod
@@ -302,16 +411,49 @@ class Learner:
         lr = cls(LearnerSettings.from_dict(dict(d["settings"])))
         lr.vocab = Vocabulary.from_state(lr._settings.max_features, d)
         lr.vocab.ignored = int(d["ignored"])
-        lr._sc = np.array(d["scalars"], dtype=np.float64)
-        lr._nslots = int(lr._sc[K.S_NSLOTS])
+        sc = np.zeros(K.N_SCALARS)
+        saved = np.asarray(d["scalars"], dtype=np.float64)[: K.N_SCALARS_SAVED]
+        sc[: saved.shape[0]] = saved
+        lr._sc = sc
+        lr._nslots = int(sc[K.S_NSLOTS])
         n = len(lr.vocab)
         lr._grow(n)
-        slots = np.asarray(d["slots"], dtype=np.float64)
+        rows = np.asarray(d["slots"], dtype=np.float64)
         if int(d.get("slot_order", 1)) == 1:  # written before AdaGrad's columns came last
-            slots = slots[:, list(K.OLD_ROW_ORDER)]
-        lr._sl[:n] = slots[:, : lr._sl.shape[1]]
-        lr._fl[:n] = d["flags"]
+            rows = rows[:, list(OLD_ROW_ORDER)]
+        fl = np.asarray(d["flags"], dtype=np.uint8) & ~K.F_DETAIL
+        sl = lr._sl
+        sl[:n, K.R_V], sl[:n, K.R_U] = rows[:, X_V], rows[:, X_U]
+        if sl.shape[1] == K.N_ROWS:
+            sl[:n, K.R_G], sl[:n, K.R_LAST] = rows[:, X_G], rows[:, X_LAST]
+        # A slot needs no detail row when its statistics are what its count implies, bit for bit.
+        total = rows[:, X_SUM]
+        count = np.minimum(total, lr._settings.scale_warmup)
+        bits = rows.view(np.int64)
+        implied = (
+            ((fl & K.F_CENTERED) == 0)
+            & (total >= 0.0)
+            & (total == np.floor(total))
+            & (rows[:, X_COUNT] == count)
+            & (bits[:, X_MEAN] == np.where(total > 0.0, 1.0, 0.0).view(np.int64))
+            & (bits[:, X_M2] == 0)
+            & (bits[:, X_SCALE] == np.float64(1.0).view(np.int64))
+        )
+        det = np.flatnonzero(~implied)
+        sl[:n, K.R_AUX] = np.where(implied, total, 0.0)
+        sl[det, K.R_AUX] = np.arange(det.shape[0])
+        fl[det] |= K.F_DETAIL
+        lr._fl[:n] = fl
+        lr._dt = np.zeros((max(det.shape[0] + lr._settings.max_centred, INITIAL_SLOTS), K.N_DETAIL))
+        for x, c in DETAIL_COLUMNS:
+            lr._dt[: det.shape[0], c] = rows[det, x]
+        lr._dt[: det.shape[0], K.D_FIRST] = np.where((fl[det] & K.F_CENTERED) != 0, rows[det, X_FIRST], 0.0)
+        sc[K.S_NDETAIL] = det.shape[0]
         lr._cl = np.array(d["centred_list"], dtype=np.int64)
-        queue = np.asarray(d["warmup_queue"], dtype=np.int64)
-        lr._wq[: queue.shape[0]] = queue
+        queue = np.asarray(d["warmup_queue"], dtype=np.int64)[int(sc[K.S_QHEAD]) : int(sc[K.S_QLEN])]
+        lr._wq = np.zeros((max(2 * queue.shape[0], INITIAL_SLOTS), 2))
+        lr._wq[: queue.shape[0], 0] = queue
+        lr._wq[: queue.shape[0], 1] = rows[queue, X_FIRST]
+        sc[K.S_QHEAD], sc[K.S_QLEN] = 0.0, float(queue.shape[0])
+        lr._spare = 0
         return lr

@@ -152,8 +152,9 @@ def _pack_score(out, p, has_id, ident, big_id, z, step, ts):  # type: ignore[no-
 
 @njit(cache=True, error_model="numpy")
 def _learn_known(  # type: ignore[no-untyped-def]
-    b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends
-):
+    b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
+    out, ends
+):  # fmt: skip
     """Learn the m events `read` read (rows of values at `slots`, labels ys) as
     kernel.learn_rows does, record them in the metrics as ProgressiveMetrics.update does (ms: its
     sum, count, head, filled, stride and points, updated in place), and pack each one's score body
@@ -166,7 +167,7 @@ def _learn_known(  # type: ignore[no-untyped-def]
     dx = np.zeros(max(1, int(prm[K.P_MAX_CENTRED])))
     ada = prm[K.P_SCHED] == K.SCH_ADAGRAD
     K._shared_rows(
-        prm, sc, sl, fl, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, ada
+        prm, sc, sl, fl, dt, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, ada
     )
     total, count, head, filled, stride, points = _record(
         z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
@@ -228,13 +229,14 @@ class Known(EventArrays):
     def learn(
         self, arrays: tuple[np.ndarray, ...], metrics: tuple[np.ndarray, ...], ms: np.ndarray, arrival: float
     ) -> list[bytes]:
-        """Learn the block `read` read, with the learner's arrays and the metrics' (ms: their
+        """Learn the block `read` read, with the learner's arrays (Learner.arrays, with room for
+        this block's slots) and the metrics' (ms: their
         scalars, updated in place); the score bodies, in order."""
         m = self._m
-        prm, sc, sl, fl, cl, wq = arrays
+        prm, sc, sl, fl, cl, wq, dt = arrays
         rz, ry, rll, chunks, dirty, history = metrics
         _learn_known(
-            self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq,
+            self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq, dt,
             rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends,
         )  # fmt: skip
         if m == 1:

@@ -187,7 +187,7 @@ def warm_up(settings: LearnerSettings) -> None:
     known.remember(None, b"\xa4warm", (0,))
     named = msgpack.packb({"x": {"warm": 1.0}, "y": 1, "id": 5})
     if known.read([named, named]) == READ:
-        known.learn(scratch.arrays(), metrics.arrays(), metrics.scalars(), 0.0)
+        known.learn(scratch.arrays(1), metrics.arrays(), metrics.scalars(), 0.0)
     metrics.summary()  # and the window's figures
 
 
