@@ -140,6 +140,19 @@ def _prefetch_slots(sl, fl, idx, lo, hi):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy", inline="always")
+def _prefetch_details(sl, fl, dt, idx, lo, hi):  # type: ignore[no-untyped-def]
+    """Start loading the detail rows of an event's slots (56 bytes: its first and last elements),
+    once their short rows are in cache (prefetched an event earlier): a second random access a
+    numeric slot, which a vocabulary of a million numeric names made a miss each."""
+    for k in range(lo, hi):
+        j = idx[k]
+        if fl[j] & F_DETAIL:
+            d = int(sl[j, R_AUX])
+            _prefetch(dt, d * N_DETAIL)  # type: ignore[call-arg]
+            _prefetch(dt, d * N_DETAIL + N_DETAIL - 1)
+
+
+@njit(cache=True, error_model="numpy", inline="always")
 def sigmoid(z: float) -> float:
     if z >= 0.0:
         return 1.0 / (1.0 + math.exp(-z))
@@ -243,75 +256,95 @@ def _clear(sl, fl, dt, idx, lo, hi, dx):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged):  # type: ignore[no-untyped-def]
     """The model's logit for one event (global schedules), reading the state only. `dx` holds the
-    values of the centred features (0 where absent)."""
+    values of the centred features (0 where absent). The standardised values go to xs, in the
+    order of the update's loop (the centred set, then the event's others at ncent + their place),
+    which reads them from there: the state's scales have not changed in between."""
     z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
-    for m in range(int(sc[S_NCENT])):
+    ncent = int(sc[S_NCENT])
+    for m in range(ncent):
         j = cl[m]
-        z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, dx[m])
+        x = xs[m] = _xstd(sl, fl, dt, j, dx[m])
+        z += _coef_global(prm, sc, sl, j, averaged) * x
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            z += _coef_global(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, val[k])
+            x = xs[ncent + k - lo] = _xstd(sl, fl, dt, j, val[k])
+            z += _coef_global(prm, sc, sl, j, averaged) * x
     return z
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged):  # type: ignore[no-untyped-def]
     """_logit_global for AdaGrad. Two copies because numba compiles the per-feature loop ten times
     slower when a call to AdaGrad's catch-up sits in it, even untaken (measured)."""
     z = sc[S_SB] / sc[S_NAVG] if averaged else sc[S_B]
-    for m in range(int(sc[S_NCENT])):
+    ncent = int(sc[S_NCENT])
+    for m in range(ncent):
         j = cl[m]
-        z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, dx[m])
+        x = xs[m] = _xstd(sl, fl, dt, j, dx[m])
+        z += _coef_ada(prm, sc, sl, j, averaged) * x
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            z += _coef_ada(prm, sc, sl, j, averaged) * _xstd(sl, fl, dt, j, val[k])
+            x = xs[ncent + k - lo] = _xstd(sl, fl, dt, j, val[k])
+            z += _coef_ada(prm, sc, sl, j, averaged) * x
     return z
 
 
 @njit(cache=True, error_model="numpy")
-def _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx):  # type: ignore[no-untyped-def]
+def _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs):  # type: ignore[no-untyped-def]
     """(averaged logit, current logit) in one pass (global schedules, averaging under way). The
-    current one is summed in the order of _logit_global, so it is bit-identical to it."""
+    current one is summed in the order of _logit_global, so it is bit-identical to it; xs as
+    there."""
     n = sc[S_NAVG]
     ws = sc[S_WS]
     a_sum = sc[S_A]
     za = sc[S_SB] / n
     zc = sc[S_B]
-    for m in range(int(sc[S_NCENT])):
+    ncent = int(sc[S_NCENT])
+    for m in range(ncent):
         j = cl[m]
-        xs = _xstd(sl, fl, dt, j, dx[m])
-        za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
-        zc += ws * sl[j, R_V] * xs
+        x = xs[m] = _xstd(sl, fl, dt, j, dx[m])
+        za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * x
+        zc += ws * sl[j, R_V] * x
     for k in range(lo, hi):
         j = idx[k]
         if not (fl[j] & F_CENTERED):
-            xs = _xstd(sl, fl, dt, j, val[k])
-            za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * xs
-            zc += ws * sl[j, R_V] * xs
+            x = xs[ncent + k - lo] = _xstd(sl, fl, dt, j, val[k])
+            za += (sl[j, R_U] + a_sum * sl[j, R_V]) / n * x
+            zc += ws * sl[j, R_V] * x
     return za, zc
 
 
 @njit(cache=True, error_model="numpy")
-def _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged):  # type: ignore[no-untyped-def]
+def _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged):  # type: ignore[no-untyped-def]
     if prm[P_SCHED] == SCH_ADAGRAD:
-        return _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
-    return _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
+        return _logit_ada(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged)
+    return _logit_global(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged)
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _scratch(prm, ptr):  # type: ignore[no-untyped-def]
+    """The two work arrays of a block: dx (the centred set's values) and xs (an event's
+    standardised values, the centred set's first)."""
+    kmax = 0
+    for e in range(ptr.shape[0] - 1):
+        kmax = max(kmax, ptr[e + 1] - ptr[e])
+    return np.zeros(max(1, int(prm[P_MAX_CENTRED]))), np.empty(int(prm[P_MAX_CENTRED]) + kmax + 1)
 
 
 @njit(cache=True, error_model="numpy", nogil=True)
 def score_block(prm, sc, sl, fl, cl, dt, ptr, idx, val, out):  # type: ignore[no-untyped-def]
     """Logits of every event of a block with the state as it is (scoring never changes state)."""
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
-    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    dx, xs = _scratch(prm, ptr)
     for e in range(ptr.shape[0] - 1):
         lo, hi = ptr[e], ptr[e + 1]
         if sc[S_NCENT] > 0.0:
             _gather(sl, fl, dt, idx, val, lo, hi, dx)
-        out[e] = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
+        out[e] = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged)
         if sc[S_NCENT] > 0.0:
             _clear(sl, fl, dt, idx, lo, hi, dx)
 
@@ -329,11 +362,10 @@ def _scale(mean: float, m2: float, n: float) -> float:
 
 
 @njit(cache=True, error_model="numpy")
-def _reparam(prm, sc, sl, fl, dt, j, new_center, new_scale):  # type: ignore[no-untyped-def]
-    """Change feature j's centre and scale (it has a detail row), rewriting theta_j and the
+def _reparam(prm, sc, sl, fl, dt, j, d, new_center, new_scale):  # type: ignore[no-untyped-def]
+    """Change feature j's centre and scale (its detail row is d), rewriting theta_j and the
     intercept so that every prediction (of the iterate and of the average) is unchanged. AdaGrad's
     lag must be caught up."""
-    d = int(sl[j, R_AUX])
     old_center = dt[d, D_MEAN] if fl[j] & F_CENTERED else 0.0
     old_scale = dt[d, D_SCALE]
     shift = (new_center - old_center) / old_scale
@@ -417,7 +449,7 @@ def _end_warmups(prm, sc, sl, fl, dt, cl, wq):  # type: ignore[no-untyped-def]
         d = int(sl[j, R_AUX])
         dt[d, D_FIRST] = first
         centre = dt[d, D_SUM] / (t - first)
-        _reparam(prm, sc, sl, fl, dt, j, centre, dt[d, D_SCALE])
+        _reparam(prm, sc, sl, fl, dt, j, d, centre, dt[d, D_SCALE])
         fl[j] |= F_CENTERED
         dt[d, D_MEAN] = centre
         m = int(sc[S_NCENT])
@@ -429,9 +461,10 @@ def _end_warmups(prm, sc, sl, fl, dt, cl, wq):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, gathered):  # type: ignore[no-untyped-def]
+def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, xs, z_hint, gathered):  # type: ignore[no-untyped-def]
     """One step. `z_hint` is the current logit when the caller has it (NaN otherwise), with dx
-    gathered; it is used when no change of coordinates happens in this step (bit-identical then)."""
+    gathered and xs filled by the logit's pass; it is used when no change of coordinates happens in
+    this step (bit-identical then)."""
     ada = prm[P_SCHED] == SCH_ADAGRAD
     t = sc[S_T]
     changed = False
@@ -450,7 +483,7 @@ def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, 
                 changed = True
                 if ada:
                     _catch_up(prm, sc, sl, j)
-                _reparam(prm, sc, sl, fl, dt, j, centre, dt[d, D_SCALE])
+                _reparam(prm, sc, sl, fl, dt, j, d, centre, dt[d, D_SCALE])
                 dt[d, D_MEAN] = centre
         detail_all = prm[P_DETAIL_ALL] != 0.0
         for k in range(lo, hi):
@@ -482,33 +515,31 @@ def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, 
             m2 = dt[d, D_M2] + delta * (x - mean)
             scale = _scale(mean, m2, cnt)
             changed = True
-            _reparam(prm, sc, sl, fl, dt, j, 0.0, scale)
+            _reparam(prm, sc, sl, fl, dt, j, d, 0.0, scale)
             dt[d, D_MEAN] = mean
             dt[d, D_M2] = m2
             dt[d, D_COUNT] = cnt
     if changed or not gathered or z_hint != z_hint:
         if sc[S_NCENT] > 0.0:
             _gather(sl, fl, dt, idx, val, lo, hi, dx)
-        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, False)
+        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, False)
     else:
         z = z_hint
     g = w * (y - sigmoid(z))
     l2 = prm[P_L2]
     averaging = prm[P_AVG] != 0.0 and t >= prm[P_AVG_START]
     ncent = int(sc[S_NCENT])
-    # The two update loops walk the same inputs (centred features, then the other present ones);
-    # a shared helper returning (slot, value) measured slower, so each loop picks them itself.
+    # The two update loops walk the same inputs (centred features, then the other present ones),
+    # whose standardised values the last logit's pass left in xs.
     if ada:
         for m in range(ncent + (hi - lo)):
             if m < ncent:
                 j = cl[m]
-                x = dx[m]
             else:
                 j = idx[lo + m - ncent]
                 if fl[j] & F_CENTERED:
                     continue
-                x = val[lo + m - ncent]
-            gj = g * _xstd(sl, fl, dt, j, x)
+            gj = g * xs[m]
             sl[j, R_G] += gj * gj
             eta_j = _ada_rate(prm, sl[j, R_G])
             sl[j, R_V] += eta_j * (gj - l2 * sl[j, R_V])
@@ -525,13 +556,11 @@ def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, 
         for m in range(ncent + (hi - lo)):
             if m < ncent:
                 j = cl[m]
-                x = dx[m]
             else:
                 j = idx[lo + m - ncent]
                 if fl[j] & F_CENTERED:
                     continue
-                x = val[lo + m - ncent]
-            d = eta * g * _xstd(sl, fl, dt, j, x) / ws
+            d = eta * g * xs[m] / ws
             sl[j, R_V] += d
             sl[j, R_U] -= a_sum * d
         sc[S_B] += eta * g
@@ -554,24 +583,24 @@ def _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_hint, 
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op, y, w, dx, ada):  # type: ignore[no-untyped-def]
+def _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op, y, w, dx, xs, ada):  # type: ignore[no-untyped-def]
     """One event of a block (features idx[lo:hi] with values val[lo:hi]); returns its published
     logit (scored with the state before it is learned: progressive validation), NaN for LEARN."""
     if op == OP_LEARN:
-        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, np.nan, False)
+        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, xs, np.nan, False)
         return np.nan
     averaged = prm[P_AVG] != 0.0 and sc[S_NAVG] > 0.0
     if sc[S_NCENT] > 0.0:
         _gather(sl, fl, dt, idx, val, lo, hi, dx)
     z_cur = np.nan
     if averaged and not ada and op == OP_TRAIN:
-        z, z_cur = _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx)
+        z, z_cur = _logit_pair(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs)
     else:
-        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, averaged)
+        z = _logit(prm, sc, sl, fl, dt, cl, idx, val, lo, hi, dx, xs, averaged)
         if not averaged:
             z_cur = z
     if op == OP_TRAIN:
-        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, z_cur, True)
+        _learn_one(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, y, w, dx, xs, z_cur, True)
     elif sc[S_NCENT] > 0.0:
         _clear(sl, fl, dt, idx, lo, hi, dx)
     return z
@@ -710,7 +739,7 @@ def _quiet_run(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, e0):  # 
 
 
 @njit(cache=True, error_model="numpy")
-def _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, dx, ada):  # type: ignore[no-untyped-def]
+def _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, dx, xs, ada):  # type: ignore[no-untyped-def]
     """Events that share their slots, in order: quiet runs in `_quiet_run`, the others (warm-ups,
     centre updates, folds) one at a time in `_event`."""
     quiet = prm[P_QUIET_RUNS] != 0.0 and not ada
@@ -721,7 +750,7 @@ def _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, dx, ad
             e = _quiet_run(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, w, out, e)
             if e >= rows.shape[0]:
                 break
-        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, slots, rows[e], 0, k, op[e], y[e], w[e], dx, ada)
+        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, slots, rows[e], 0, k, op[e], y[e], w[e], dx, xs, ada)
         e += 1
 
 
@@ -739,7 +768,7 @@ def learn_block(prm, sc, sl, fl, cl, wq, dt, ptr, idx, val, op, y, w, out):  # t
     with the state before the event is learned: progressive validation) and NaN for LEARN ones.
     Consecutive events with the same slots in the same order (QUIET_MIN_EVENTS or more) run as the
     rows of a columnar block do."""
-    dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    dx, xs = _scratch(prm, ptr)
     ada = prm[P_SCHED] == SCH_ADAGRAD
     look = prm[P_QUIET_RUNS] != 0.0 and not ada
     n_ev = ptr.shape[0] - 1
@@ -753,12 +782,14 @@ def learn_block(prm, sc, sl, fl, cl, wq, dt, ptr, idx, val, op, y, w, out):  # t
                 r += 1
         if r - e >= QUIET_MIN_EVENTS and k > 0:
             rows = val[lo : ptr[r]].reshape((r - e, k))
-            _shared_rows(prm, sc, sl, fl, dt, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, ada)
+            _shared_rows(prm, sc, sl, fl, dt, cl, wq, idx[lo:hi], rows, op[e:r], y[e:r], w[e:r], out[e:r], dx, xs, ada)
             e = r
             continue
         if e + 2 < n_ev:
             _prefetch_slots(sl, fl, idx, ptr[e + 2], ptr[e + 3])
-        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, ada)
+        if e + 1 < n_ev:
+            _prefetch_details(sl, fl, dt, idx, ptr[e + 1], ptr[e + 2])
+        out[e] = _event(prm, sc, sl, fl, dt, cl, wq, idx, val, lo, hi, op[e], y[e], w[e], dx, xs, ada)
         e += 1
 
 
@@ -768,8 +799,9 @@ def learn_rows(prm, sc, sl, fl, cl, wq, dt, slots, rows, op, y, out):  # type: i
     the values rows[e] (C order) at `slots`, weight 1. The same arithmetic, event for event, with
     no index array a row to build."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    xs = np.empty(int(prm[P_MAX_CENTRED]) + slots.shape[0] + 1)
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, ada)
+    _shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, np.ones(rows.shape[0]), out, dx, xs, ada)
 
 
 @njit(cache=True, error_model="numpy")
@@ -778,5 +810,6 @@ def learn_event(prm, sc, sl, fl, cl, wq, dt, idx, val, op, y, w):  # type: ignor
     `_event`, so the same arithmetic bit for bit, without the block's five arrays to build. The
     daemon's path for a lone message (Engine.one)."""
     dx = np.zeros(max(1, int(prm[P_MAX_CENTRED])))
+    xs = np.empty(int(prm[P_MAX_CENTRED]) + idx.shape[0] + 1)
     ada = prm[P_SCHED] == SCH_ADAGRAD
-    return _event(prm, sc, sl, fl, dt, cl, wq, idx, val, 0, idx.shape[0], op, y, w, dx, ada)
+    return _event(prm, sc, sl, fl, dt, cl, wq, idx, val, 0, idx.shape[0], op, y, w, dx, xs, ada)

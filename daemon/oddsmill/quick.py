@@ -165,9 +165,10 @@ def _learn_known(  # type: ignore[no-untyped-def]
     y = ys[:m]
     z = np.empty(m)
     dx = np.zeros(max(1, int(prm[K.P_MAX_CENTRED])))
+    xs = np.empty(int(prm[K.P_MAX_CENTRED]) + k + 1)
     ada = prm[K.P_SCHED] == K.SCH_ADAGRAD
     K._shared_rows(
-        prm, sc, sl, fl, dt, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, ada
+        prm, sc, sl, fl, dt, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, xs, ada
     )
     total, count, head, filled, stride, points = _record(
         z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
