@@ -24,6 +24,7 @@ from oddsmill.storage import list_journal, load_newest, read_journal
 
 from tests.conftest import Client, RunningServer, loopback
 from tests.test_server import bodies, replay_journal
+from tests.tools import full_rows
 
 
 def health(http: str) -> int:
@@ -63,7 +64,7 @@ def _raw_records(seg: Path) -> Iterator[tuple[int, float, bytes]]:
 def assert_state_is_the_replay_of_the_journal(state: Path, learner: LearnerSettings) -> None:
     saved, _ = load_newest(state)  # type: ignore[misc]
     engine, _ = replay_journal(state, learner)
-    mine, theirs = saved["engine"]["learner"], engine.learner.state_dict()
+    mine, theirs = full_rows(saved["engine"]["learner"]), engine.learner.state_dict()
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes()
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
     assert saved["engine"]["metrics"]["sum"] == engine.metrics.sum

@@ -22,6 +22,7 @@ from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
 from tests.conftest import Client, RunningServer, loopback, sparse_stream
+from tests.tools import full_rows
 
 
 def bodies(n: int, seed: int) -> list[dict[str, Any]]:
@@ -74,7 +75,7 @@ def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Pat
     for s in scores:
         assert s["p"] == pytest.approx(1 / (1 + np.exp(-s["logit"])), rel=1e-12)
     state, _ = load_newest(tmp_path)  # type: ignore[misc]
-    assert state["engine"]["learner"]["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
+    assert full_rows(state["engine"]["learner"])["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
 
 
 def free_port() -> int:
@@ -148,7 +149,7 @@ def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Pa
     ctx.term()
     state, _ = load_newest(tmp_path)  # type: ignore[misc]
     engine, _ = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
-    mine = state["engine"]["learner"]
+    mine = full_rows(state["engine"]["learner"])
     theirs = engine.learner.state_dict()
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes()
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()

@@ -58,3 +58,11 @@ def names_in(learner_state: dict[str, Any]) -> list[str]:
     from oddsmill.vocabulary import Vocabulary
 
     return Vocabulary.from_state(int(learner_state["settings"]["max_features"]), learner_state).names
+
+
+def full_rows(learner_state: dict[str, Any]) -> dict[str, Any]:
+    """A learner's state as `Learner.state_dict()` gives it (full rows), from any form a checkpoint
+    holds (checkpoints take the compact form, `slot_order` 3): the tests compare these."""
+    from oddsmill.learner import Learner
+
+    return Learner.from_state_dict(learner_state).state_dict()

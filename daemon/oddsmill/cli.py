@@ -179,7 +179,7 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
     race = Race(candidates, window)
     run_logs(race, read_items(args.logs))
     state = checkpoint_state(race.engine)
-    state["race"] = race.state_dict()
+    state["race"] = race.state_dict(compact=True)
     path = write_checkpoint(Path(args.state), race.engine.learner.step, state)
     if args.json:
         print(json.dumps({"candidates": race.table(), "switches": race.switches}, indent=2))
@@ -203,7 +203,7 @@ def checkpoint_state(engine: Any) -> dict[str, Any]:
     return {
         "kind": "oddsmill-state",
         "created": time.time(),
-        "engine": engine.state_dict(),
+        "engine": engine.state_dict(compact=True),
         "journal": None,
     }
 

@@ -531,10 +531,11 @@ class Engine:
         return expired
 
     # -- state -----------------------------------------------------------------------------------
-    def state_dict(self) -> dict[str, Any]:
+    def state_dict(self, compact: bool = False) -> dict[str, Any]:
+        """The engine's state; `compact` for checkpoints (Learner.state_dict)."""
         c = self.counters
         return {
-            "learner": self.learner.state_dict(),
+            "learner": self.learner.state_dict(compact),
             "metrics": self.metrics.state_dict(),
             "pending": [[k, list(e[E_SLOTS]), held_values(e).tolist(), *e[E_W:]] for k, e in self.pending.items()],
             "pending_limit": self.pending_limit,

@@ -320,9 +320,14 @@ class Learner:
 
     def scales(self) -> tuple[np.ndarray, np.ndarray]:
         """(centre, scale) of each slot: x_std = (x - centre) / scale."""
-        full = self._full_rows(columns=(X_MEAN, X_SCALE))
-        centred = (self._fl[: len(self.vocab)] & K.F_CENTERED) != 0
-        return np.where(centred, full[:, 0], 0.0), full[:, 1]
+        n = len(self.vocab)
+        fl = self._fl[:n]
+        centre, scale = np.zeros(n), np.ones(n)
+        det = np.flatnonzero(fl & K.F_DETAIL)
+        rows = self._dt[self._sl[det, K.R_AUX].astype(np.int64)]
+        scale[det] = rows[:, K.D_SCALE]
+        centre[det] = np.where((fl[det] & K.F_CENTERED) != 0, rows[:, K.D_MEAN], 0.0)
+        return centre, scale
 
     def coefficients(self, averaged: bool | None = None) -> Coefficients:
         """The model in the units the features were sent (the averaged weights when averaging)."""
@@ -359,10 +364,9 @@ class Learner:
         ]
 
     # -- state for checkpoints -------------------------------------------------------------------
-    def _full_rows(self, columns: Sequence[int] | None = None) -> np.ndarray:
-        """Each slot's full row (X_*; only `columns` of it, in that order, when given): the short
-        row's sums, the statistics a count implies or the detail row holds, and the first step
-        of an open warm-up window from the queue."""
+    def _full_rows(self) -> np.ndarray:
+        """Each slot's full row (X_*): the short row's sums, the statistics a count implies or the
+        detail row holds, and the first step of an open warm-up window from the queue."""
         n = len(self.vocab)
         width = FULL_ROW if self._settings.schedule == "adagrad" else FULL_ROW_GLOBAL
         sl, fl = self._sl[:n], self._fl[:n]
@@ -384,26 +388,46 @@ class Learner:
         full[centred, X_FIRST] = self._dt[sl[centred, K.R_AUX].astype(np.int64), K.D_FIRST]
         open_ = self._wq[int(self._sc[K.S_QHEAD]) : int(self._sc[K.S_QLEN])]
         full[open_[:, 0].astype(np.int64), X_FIRST] = open_[:, 1]
-        return full if columns is None else full[:, list(columns)]
+        return full
 
-    def state_dict(self) -> dict[str, Any]:
+    def state_dict(self, compact: bool = False) -> dict[str, Any]:
         """The state with every statistic written out (full rows, the open warm-up windows): two
         learners that learned the same events hold the same dict, however their detail rows were
-        laid out and their queue compacted."""
+        laid out and their queue compacted. `compact` (checkpoints) keeps the short rows instead,
+        with a detail row only for the slots whose statistics their count does not imply, in slot
+        order (`slot_order` 3): as canonical, and a third of the bytes at a million ids."""
         n = len(self.vocab)
         scalars = self._sc[: K.N_SCALARS_SAVED].copy()
         head, qlen = int(self._sc[K.S_QHEAD]), int(self._sc[K.S_QLEN])
         scalars[K.S_QHEAD], scalars[K.S_QLEN] = 0.0, float(qlen - head)
-        return {
+        d = {
             "settings": self._settings.to_dict(),
             **self.vocab.state(),  # the names: their UTF-8 bytes end to end, and where each ends
             "ignored": self.vocab.ignored,
             "scalars": scalars,
-            "slots": self._full_rows(),
-            "slot_order": 2,  # X_* (1, or absent: OLD_ROW_ORDER)
-            "flags": self._fl[:n] & ~K.F_DETAIL,
             "centred_list": self._cl.copy(),
             "warmup_queue": self._wq[head:qlen, 0].astype(np.int64),
+        }
+        if not compact:
+            return {**d, "slots": self._full_rows(), "slot_order": 2, "flags": self._fl[:n] & ~K.F_DETAIL}
+        short, flags = self._sl[:n].copy(), self._fl[:n].copy()
+        det = np.flatnonzero(flags & K.F_DETAIL)
+        rows = self._dt[short[det, K.R_AUX].astype(np.int64)]
+        centred = (flags[det] & K.F_CENTERED) != 0
+        stats = (rows[:, K.D_MEAN], rows[:, K.D_M2], rows[:, K.D_COUNT], rows[:, K.D_SCALE], rows[:, K.D_SUM])
+        keep = ~implied_by_count(*stats, centred, self._settings.scale_warmup)
+        short[det[~keep], K.R_AUX] = rows[~keep, K.D_SUM]  # its count
+        flags[det[~keep]] &= ~K.F_DETAIL
+        det, rows, centred = det[keep], rows[keep], centred[keep]
+        rows[~centred, K.D_FIRST] = 0.0
+        short[det, K.R_AUX] = np.arange(det.shape[0])
+        return {
+            **d,
+            "slots": short,
+            "slot_order": 3,  # kernel.R_* and D_*
+            "flags": flags,
+            "details": rows,
+            "warmup_first": self._wq[head:qlen, 1].copy(),
         }
 
     @classmethod
@@ -418,42 +442,88 @@ class Learner:
         lr._nslots = int(sc[K.S_NSLOTS])
         n = len(lr.vocab)
         lr._grow(n)
+        lr._cl = np.array(d["centred_list"], dtype=np.int64)
+        queue = np.asarray(d["warmup_queue"], dtype=np.int64)[int(sc[K.S_QHEAD]) : int(sc[K.S_QLEN])]
+        order = int(d.get("slot_order", 1))
+        if order == 3:
+            lr._load_short(n, d, queue)
+        else:
+            lr._load_full(n, d, order, queue)
+        sc[K.S_QHEAD], sc[K.S_QLEN] = 0.0, float(queue.shape[0])
+        lr._spare = 0
+        return lr
+
+    def _load_short(self, n: int, d: dict[str, Any], queue: np.ndarray) -> None:
+        """The state of `state_dict(compact=True)`."""
+        short = np.asarray(d["slots"], dtype=np.float64)
+        fl = np.asarray(d["flags"], dtype=np.uint8)
+        rows = np.asarray(d["details"], dtype=np.float64).reshape(-1, K.N_DETAIL)
+        first = np.asarray(d["warmup_first"], dtype=np.float64)
+        det = np.flatnonzero(fl & K.F_DETAIL)
+        if (
+            short.shape != (n, self._sl.shape[1])
+            or fl.shape != (n,)
+            or rows.shape[0] != det.shape[0]
+            or first.shape != queue.shape
+            or not np.array_equal(short[det, K.R_AUX], np.arange(det.shape[0]))
+        ):
+            raise ValueError("the checkpoint's slots, flags, details and warm-up queue do not fit each other")
+        self._sl[:n], self._fl[:n] = short, fl
+        self._dt = np.zeros((max(det.shape[0] + self._settings.max_centred, INITIAL_SLOTS), K.N_DETAIL))
+        self._dt[: det.shape[0]] = rows
+        self._sc[K.S_NDETAIL] = det.shape[0]
+        self._wq = np.zeros((max(2 * queue.shape[0], INITIAL_SLOTS), 2))
+        self._wq[: queue.shape[0], 0], self._wq[: queue.shape[0], 1] = queue, first
+
+    def _load_full(self, n: int, d: dict[str, Any], order: int, queue: np.ndarray) -> None:
+        """Full rows (`state_dict()`, and every checkpoint before `slot_order` 3): a detail row for
+        each slot whose statistics its count does not imply, in slot order."""
         rows = np.asarray(d["slots"], dtype=np.float64)
-        if int(d.get("slot_order", 1)) == 1:  # written before AdaGrad's columns came last
+        if order == 1:  # written before AdaGrad's columns came last
             rows = rows[:, list(OLD_ROW_ORDER)]
         fl = np.asarray(d["flags"], dtype=np.uint8) & ~K.F_DETAIL
-        sl = lr._sl
+        sl = self._sl
         sl[:n, K.R_V], sl[:n, K.R_U] = rows[:, X_V], rows[:, X_U]
         if sl.shape[1] == K.N_ROWS:
             sl[:n, K.R_G], sl[:n, K.R_LAST] = rows[:, X_G], rows[:, X_LAST]
-        # A slot needs no detail row when its statistics are what its count implies, bit for bit.
         total = rows[:, X_SUM]
-        count = np.minimum(total, lr._settings.scale_warmup)
-        bits = rows.view(np.int64)
-        implied = (
-            ((fl & K.F_CENTERED) == 0)
-            & (total >= 0.0)
-            & (total == np.floor(total))
-            & (rows[:, X_COUNT] == count)
-            & (bits[:, X_MEAN] == np.where(total > 0.0, 1.0, 0.0).view(np.int64))
-            & (bits[:, X_M2] == 0)
-            & (bits[:, X_SCALE] == np.float64(1.0).view(np.int64))
-        )
+        cols = (rows[:, X_MEAN], rows[:, X_M2], rows[:, X_COUNT], rows[:, X_SCALE], total)
+        implied = implied_by_count(*cols, (fl & K.F_CENTERED) != 0, self._settings.scale_warmup)
         det = np.flatnonzero(~implied)
         sl[:n, K.R_AUX] = np.where(implied, total, 0.0)
         sl[det, K.R_AUX] = np.arange(det.shape[0])
         fl[det] |= K.F_DETAIL
-        lr._fl[:n] = fl
-        lr._dt = np.zeros((max(det.shape[0] + lr._settings.max_centred, INITIAL_SLOTS), K.N_DETAIL))
+        self._fl[:n] = fl
+        self._dt = np.zeros((max(det.shape[0] + self._settings.max_centred, INITIAL_SLOTS), K.N_DETAIL))
         for x, c in DETAIL_COLUMNS:
-            lr._dt[: det.shape[0], c] = rows[det, x]
-        lr._dt[: det.shape[0], K.D_FIRST] = np.where((fl[det] & K.F_CENTERED) != 0, rows[det, X_FIRST], 0.0)
-        sc[K.S_NDETAIL] = det.shape[0]
-        lr._cl = np.array(d["centred_list"], dtype=np.int64)
-        queue = np.asarray(d["warmup_queue"], dtype=np.int64)[int(sc[K.S_QHEAD]) : int(sc[K.S_QLEN])]
-        lr._wq = np.zeros((max(2 * queue.shape[0], INITIAL_SLOTS), 2))
-        lr._wq[: queue.shape[0], 0] = queue
-        lr._wq[: queue.shape[0], 1] = rows[queue, X_FIRST]
-        sc[K.S_QHEAD], sc[K.S_QLEN] = 0.0, float(queue.shape[0])
-        lr._spare = 0
-        return lr
+            self._dt[: det.shape[0], c] = rows[det, x]
+        self._dt[: det.shape[0], K.D_FIRST] = np.where((fl[det] & K.F_CENTERED) != 0, rows[det, X_FIRST], 0.0)
+        self._sc[K.S_NDETAIL] = det.shape[0]
+        self._wq = np.zeros((max(2 * queue.shape[0], INITIAL_SLOTS), 2))
+        self._wq[: queue.shape[0], 0] = queue
+        self._wq[: queue.shape[0], 1] = rows[queue, X_FIRST]
+
+
+def implied_by_count(
+    mean: np.ndarray,
+    m2: np.ndarray,
+    count: np.ndarray,
+    scale: np.ndarray,
+    total: np.ndarray,
+    centred: np.ndarray,
+    warmup: int,
+) -> np.ndarray:
+    """Which slots need no detail row: not centred, and statistics that are, bit for bit, what
+    their learned values of 1 imply (the sum a whole count n, mean 1 or 0 when n is 0, M2 0,
+    count min(n, warm-up), scale 1; kernel._promote writes them)."""
+    expected_mean = np.where(total > 0.0, 1.0, 0.0).view(np.int64)
+    implied: np.ndarray = (
+        ~centred
+        & (total >= 0.0)
+        & (total == np.floor(total))
+        & (count == np.minimum(total, warmup))
+        & (mean.view(np.int64) == expected_mean)
+        & (m2.view(np.int64) == 0)
+        & (scale.view(np.int64) == np.float64(1.0).view(np.int64))
+    )
+    return implied

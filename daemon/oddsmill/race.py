@@ -223,10 +223,10 @@ class Race:
             for k, (name, e) in enumerate(zip(self.names, self.engines, strict=True))
         ]
 
-    def state_dict(self) -> dict[str, Any]:
+    def state_dict(self, compact: bool = False) -> dict[str, Any]:
         return {
             "names": list(self.names),
-            "engines": [e.state_dict() for e in self.engines],
+            "engines": [e.state_dict(compact) for e in self.engines],
             "serving": self.serving,
             "switches": list(self.switches),
             "leader": -1 if self.leader is None else self.leader,

@@ -417,11 +417,11 @@ class Server:
         state = {
             "kind": "oddsmill-state",
             "created": time.time(),
-            "engine": self.engine.state_dict(),
+            "engine": self.engine.state_dict(compact=True),
             "journal": position,
         }
         if self.race is not None:
-            state["race"] = self.race.state_dict()
+            state["race"] = self.race.state_dict(compact=True)
         path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
         self.positions = (self.positions + [position])[-KEEP:]
         self._retire_segments()

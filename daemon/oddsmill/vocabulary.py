@@ -228,7 +228,7 @@ class Vocabulary:
     def state(self) -> dict[str, Any]:
         """The names for a checkpoint: their UTF-8 bytes end to end, and where each ends."""
         n = self._n
-        ends = self._starts[1 : n + 1].astype(np.int64)
+        ends = self._starts[1 : n + 1].astype(np.int64)  # (checkpoints store int64, not int32)
         return {"name_bytes": self._blob[: int(self._starts[n])].tobytes(), "name_ends": ends}
 
     @classmethod
