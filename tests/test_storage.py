@@ -35,8 +35,9 @@ def _items(events, start):  # type: ignore[no-untyped-def]
     return out
 
 
+@pytest.mark.parametrize("compact", [True, False], ids=["checkpoint form", "full rows and lists"])
 @pytest.mark.parametrize("schedule", ["constant", "inverse-time", "power", "adagrad"])
-def test_save_load_continue_equals_an_uninterrupted_run(tmp_path: Path, schedule: str) -> None:
+def test_save_load_continue_equals_an_uninterrupted_run(tmp_path: Path, schedule: str, compact: bool) -> None:
     events = sparse_stream(1200, seed=11)
     first, second = _items(events[:600], 0), _items(events[600:], 600)
     s = LearnerSettings(schedule=schedule, average_start=200, scale_warmup=300)
@@ -45,9 +46,13 @@ def test_save_load_continue_equals_an_uninterrupted_run(tmp_path: Path, schedule
         straight.process(chunk)
     resumed = Engine(Learner(s), window=100)
     resumed.process(first)
-    write_checkpoint(tmp_path, resumed.learner.step, {"engine": resumed.state_dict()})
+    write_checkpoint(tmp_path, resumed.learner.step, {"engine": resumed.state_dict(compact)})
     state, _ = load_newest(tmp_path)  # type: ignore[misc]
     again = Engine.from_state_dict(state["engine"])
+    held = [e[0] for e in again.pending.values()]
+    assert len(held) > 0 and list(again.pending) == list(resumed.pending)
+    if compact:  # requests with the same names share one tuple of slots again, as before the save
+        assert len({id(t) for t in held}) == len(set(held))
     again.process(second)
     a, b = straight.state_dict(), again.state_dict()
     assert a["learner"]["scalars"].tobytes() == b["learner"]["scalars"].tobytes()

@@ -537,7 +537,9 @@ class Engine:
         return {
             "learner": self.learner.state_dict(compact),
             "metrics": self.metrics.state_dict(),
-            "pending": [[k, list(e[E_SLOTS]), held_values(e).tolist(), *e[E_W:]] for k, e in self.pending.items()],
+            "pending": self._pending_columns()
+            if compact
+            else [[k, list(e[E_SLOTS]), held_values(e).tolist(), *e[E_W:]] for k, e in self.pending.items()],
             "pending_limit": self.pending_limit,
             "pending_ttl": self.pending_ttl,
             "counters": {
@@ -552,6 +554,44 @@ class Engine:
             "last_seq": dict(self.last_seq),
         }
 
+    def _pending_columns(self) -> dict[str, Any]:
+        """The held requests for a checkpoint, as columns in the store's order: the ids, each
+        request's set of slots as an index into the distinct sets, its values end to end (`ends`:
+        where each request's end), its weight, score and arrival. A list of lists a request took
+        9 s to build and 2.8 s to write at a million held (measured at 200,000: 1.8 and 0.55 s)."""
+        n = len(self.pending)
+        columns = zip(*self.pending.values(), strict=True) if n else ((),) * 5
+        slots, values, w, logit, clock = columns
+        index: dict[tuple[int, ...], int] = {}  # the distinct sets of slots, in order of first use
+        which = np.fromiter((index.setdefault(s, len(index)) for s in slots), np.int64, n)
+        shapes = [list(s) for s in index]
+        return {
+            "keys": list(self.pending),
+            "shapes": shapes,
+            "shape": which,
+            "values": np.frombuffer(b"".join(values), dtype=np.float64),
+            "ends": np.cumsum(np.fromiter(map(len, values), np.int64, n)) // 8,
+            "w": np.array(w, dtype=np.float64),
+            "logit": np.array(logit, dtype=np.float64),
+            "clock": np.array(clock, dtype=np.float64),
+        }
+
+    def _load_pending_columns(self, p: dict[str, Any]) -> None:
+        """The held requests of `_pending_columns`, in order; requests with the same set of slots
+        share one tuple (8 bytes a request where a tuple of 20 slots takes 200)."""
+        shapes = [tuple(int(j) for j in s) for s in p["shapes"]]
+        raw = np.asarray(p["values"], dtype=np.float64).tobytes()
+        ends = np.asarray(p["ends"], dtype=np.int64) * 8
+        starts = np.concatenate([[0], ends])[:-1].astype(np.int64)
+        columns = (p["shape"], starts, ends, p["w"], p["logit"], p["clock"])
+        n = len(p["keys"])
+        if any(len(c) != n for c in columns) or (n and (ends[-1] != len(raw) or np.any(ends < starts))):
+            raise ValueError("the checkpoint's held requests do not fit together")
+        which, a, b, w, logit, clock = (np.asarray(c).tolist() for c in columns)
+        pending = self.pending
+        for k, j, lo, hi, wi, li, ci in zip(p["keys"], which, a, b, w, logit, clock, strict=True):
+            pending[k] = (shapes[j], raw[lo:hi], wi, li, ci)
+
     @classmethod
     def from_state_dict(cls, d: dict[str, Any]) -> Engine:
         m = ProgressiveMetrics.from_state_dict(d["metrics"])
@@ -562,8 +602,11 @@ class Engine:
             float(d["pending_ttl"]),
         )
         eng.metrics = m
-        for k, slots, values, w, logit, clock in d["pending"]:
-            eng.pending[k] = pending_entry(slots, values, w, logit, clock)
+        if isinstance(d["pending"], dict):
+            eng._load_pending_columns(d["pending"])
+        else:
+            for k, slots, values, w, logit, clock in d["pending"]:
+                eng.pending[k] = pending_entry(slots, values, w, logit, clock)
         c = d["counters"]
         eng.counters = Counters(
             c["train"],
