@@ -53,8 +53,8 @@ def give_back_large_frees() -> bool:
     its own, returned to the system when freed. The state's and the vocabulary's arrays grow by
     doubling; with glibc's own threshold (which rises to 32 MiB as large blocks are freed), the
     grown arrays come from the heap, and the copies they replace stay there as free memory the
-    process keeps: 70 bytes a slot resident at a million slots against 61 with this (measured,
-    scripts/memory_per_slot.py). `oddsmill serve` calls it at start; False where there is no
+    process keeps: 64 bytes a slot resident at a million slots against 57 to 58 with this
+    (measured, scripts/memory_per_slot.py). `oddsmill serve` calls it at start; False where there is no
     glibc (the process then keeps its allocator as it is)."""
     import ctypes
     import ctypes.util
