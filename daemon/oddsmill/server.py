@@ -255,6 +255,9 @@ class Server:
         self.positions: list[dict[str, Any]] = [self._loaded_position] if self._loaded_position else []
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
+        self.checkpoint_begun = self.last_checkpoint  # when the newest checkpoint, written or not, began
+        # a checkpoint being written on a thread of its own: (the thread, its result, position, step)
+        self.writing: tuple[threading.Thread, list[Any], dict[str, Any], int] | None = None
         self.bound: dict[str, str] = {}
         self.ready = threading.Event()
         self.clean_exit = True  # False when the daemon stopped with messages it could not save
@@ -401,16 +404,68 @@ class Server:
         return JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
 
     def checkpoint(self) -> Path | None:
-        """Write a checkpoint; None (and an outage begins) when the state directory refuses it."""
+        """Write a checkpoint now (after the one being written, if any); None (and an outage
+        begins) when the state directory refuses it."""
+        self.collect_checkpoint(wait=True)
         if self.outage is not None:
             return None
         try:
-            return self._checkpoint()
+            position, state, step = self._checkpoint_state()
+            path = write_checkpoint(self.settings.state_dir, step, state)
         except OSError as e:
             self._fail(e)
             return None
+        self._checkpoint_written(path, position, step)
+        return path
 
-    def _checkpoint(self) -> Path:
+    def checkpoint_soon(self) -> None:
+        """The loop's checkpoints: the state is taken here (copies, the loop stopped for that only:
+        8 to 40 ms at a million slots) and written on a thread of its own, which took the loop
+        another 0.3 s at a million slots and 1.6 to 2.4 s with a million requests held (encoding,
+        SHA-256, fsync). `collect_checkpoint` takes the result; a failed write begins an outage as
+        a failed write in the loop does."""
+        if self.writing is not None or self.outage is not None:
+            return
+        try:
+            position, state, step = self._checkpoint_state()
+        except OSError as e:
+            self._fail(e)
+            return
+        result: list[Any] = []
+
+        def write() -> None:
+            try:
+                result.append(write_checkpoint(self.settings.state_dir, step, state))
+            except BaseException as e:  # noqa: BLE001 (handed to the loop, which raises what it does not handle)
+                result.append(e)
+
+        thread = threading.Thread(target=write, name="oddsmill-checkpoint", daemon=True)
+        self.writing = (thread, result, position, step)
+        self.last_checkpoint_step, self.checkpoint_begun = step, time.time()
+        thread.start()
+
+    def collect_checkpoint(self, wait: bool = False) -> None:
+        """Take the result of the checkpoint being written, once it is done (or, with `wait`,
+        after it is done)."""
+        if self.writing is None:
+            return
+        thread, result, position, step = self.writing
+        if thread.is_alive() and not wait:
+            return
+        thread.join()
+        self.writing = None
+        outcome = result[0]
+        if isinstance(outcome, OSError):
+            if self.outage is None:  # (during an outage the recovery writes a checkpoint itself)
+                self._fail(outcome)
+            return
+        if isinstance(outcome, BaseException):
+            raise outcome
+        self._checkpoint_written(outcome, position, step)
+
+    def _checkpoint_state(self) -> tuple[dict[str, Any], dict[str, Any], int]:
+        """(journal position, state, step) of a checkpoint: the journal synced up to here, and the
+        state as copies, which the loop may go on changing while they are written."""
         self.journal.sync()
         self._saved()
         position = {"segment": self.journal.path.name, "offset": self.journal.tell(), "records": self.records}
@@ -422,14 +477,16 @@ class Server:
         }
         if self.race is not None:
             state["race"] = self.race.state_dict(compact=True)
-        path = write_checkpoint(self.settings.state_dir, self.engine.learner.step, state)
+        return position, state, self.engine.learner.step
+
+    def _checkpoint_written(self, path: Path, position: dict[str, Any], step: int) -> None:
         self.positions = (self.positions + [position])[-KEEP:]
         self._retire_segments()
         self.last_checkpoint = time.time()
-        self.last_checkpoint_step = self.engine.learner.step
+        self.last_checkpoint_step = max(self.last_checkpoint_step, step)
+        self.checkpoint_begun = max(self.checkpoint_begun, self.last_checkpoint)
         self._refresh()
-        log.info("checkpoint %s (step %d)", path.name, self.engine.learner.step)
-        return path
+        log.info("checkpoint %s (step %d)", path.name, step)
 
     def _retire_segments(self) -> None:
         """Delete journal segments wholly before the oldest kept checkpoint, but `journal_keep`."""
@@ -533,8 +590,9 @@ class Server:
                     self._recover()
                 if time.monotonic() - self.last_refresh >= SNAPSHOT_SECONDS:
                     self._refresh()
-                if self.outage is None and (due or time.time() - self.last_checkpoint >= s.checkpoint_seconds):
-                    self.checkpoint()
+                self.collect_checkpoint()
+                if self.outage is None and (due or time.time() - self.checkpoint_begun >= s.checkpoint_seconds):
+                    self.checkpoint_soon()
             if self.outage is not None:
                 self._recover()
             if self.outage is not None:

@@ -1,0 +1,121 @@
+"""The loop's checkpoints are written on a thread of their own (Server.checkpoint_soon): the loop
+goes on learning while one is written, the checkpoint holds the state as it was when it began (not
+what the loop changed since), a restart from it equals the live state bit for bit, and a failed
+write begins an outage as a failed write in the loop does."""
+
+from __future__ import annotations
+
+import copy
+import errno
+import threading
+from pathlib import Path
+from typing import Any
+
+import msgpack
+import numpy as np
+import pytest
+from oddsmill import server as server_module
+from oddsmill.server import Server, ServerSettings
+from oddsmill.storage import load_newest
+
+from tests.tools import full_rows
+
+
+class Recorder:
+    def __init__(self) -> None:
+        self.frames = 0
+
+    def send(self, data: bytes, flags: int = 0) -> None:
+        self.frames += 1
+
+
+def messages(n: int, seed: int) -> list[list[bytes]]:
+    """Parcel events: numeric features, a depot, scoring requests with ids and their outcomes."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for i in range(n):
+        body: dict[str, Any] = {"x": {"route_km": float(rng.gamma(3, 14)), "depot": f"D{rng.integers(0, 5)}"}}
+        if i % 4 == 0:
+            body["id"] = f"{seed}-{i}"  # held until its outcome
+        else:
+            body["y"] = int(rng.random() < 0.3)
+        out.append([b"events", msgpack.packb(body)])
+        if i % 4 == 3:
+            out.append([b"events", msgpack.packb({"id": f"{seed}-{i - 3}", "y": 1})])
+    return out
+
+
+def held_write(monkeypatch: pytest.MonkeyPatch, fail: bool = False) -> threading.Event:
+    """The checkpoint writer waits for the returned event, then writes (or fails as a full disk)."""
+    real = server_module.write_checkpoint
+    go = threading.Event()
+
+    def write(*args: Any, **kwargs: Any) -> Path:
+        assert go.wait(20)
+        if fail:
+            raise OSError(errno.ENOSPC, "No space left on device (injected)")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(server_module, "write_checkpoint", write)
+    return go
+
+
+def test_the_loop_learns_on_while_a_checkpoint_is_written(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    settings = ServerSettings(state_dir=tmp_path, http="off", window=100)  # (the window wraps meanwhile)
+    server = Server(settings)
+    pub = Recorder()
+    for m in messages(300, 1):
+        server.handle([m], pub)  # type: ignore[arg-type]
+    go = held_write(monkeypatch)
+    at_begin = copy.deepcopy(server.engine.state_dict())  # (a copy of its own, whatever the dict shares)
+    server.checkpoint_soon()
+    assert server.writing is not None  # begun, not written: the writer waits
+    step = server.engine.learner.step
+    for m in messages(300, 2):  # the loop goes on learning meanwhile
+        server.handle([m], pub)  # type: ignore[arg-type]
+    assert server.engine.learner.step > step
+    server.collect_checkpoint()  # not done yet: nothing taken
+    assert server.writing is not None and not list(tmp_path.glob("checkpoint-*.omc"))
+    go.set()
+    server.collect_checkpoint(wait=True)
+    assert server.writing is None and server.outage is None
+    state, path = load_newest(tmp_path)  # type: ignore[misc]
+    assert path.name == f"checkpoint-{step:012d}.omc"
+    saved = full_rows(state["engine"]["learner"])
+    for key in ("scalars", "slots", "flags", "warmup_queue"):  # the state as it was when it began
+        assert saved[key].tobytes() == at_begin["learner"][key].tobytes(), key
+    assert state["engine"]["counters"] == at_begin["counters"]
+    for key in ("z", "y", "history"):  # the metrics' window too
+        assert state["engine"]["metrics"][key].tobytes() == at_begin["metrics"][key].tobytes(), key
+    assert state["journal"] == server.positions[-1]
+    # a restart from it and the journal after it is the live state, bit for bit
+    server.journal.close()
+    again = Server(settings)
+    again.journal.close()
+    live, restored = server.engine.state_dict(), again.engine.state_dict()
+    for key in ("scalars", "slots", "flags", "warmup_queue"):
+        assert restored["learner"][key].tobytes() == live["learner"][key].tobytes(), key
+    assert restored["pending"] == live["pending"] and restored["counters"] == live["counters"]
+
+
+def test_a_failed_checkpoint_write_on_its_thread_begins_an_outage(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    server = Server(ServerSettings(state_dir=tmp_path, http="off"))
+    pub = Recorder()
+    for m in messages(100, 3):
+        server.handle([m], pub)  # type: ignore[arg-type]
+    go = held_write(monkeypatch, fail=True)
+    server.checkpoint_soon()
+    go.set()
+    server.collect_checkpoint(wait=True)
+    assert server.outage is not None and "No space left" in server.outage
+    step = server.engine.learner.step
+    frames = pub.frames
+    for m in messages(40, 4):  # scored, held for the outage, not learned
+        server.handle([m], pub)  # type: ignore[arg-type]
+    assert server.engine.learner.step == step and pub.frames > frames and server.held
+    monkeypatch.undo()
+    server._recover()  # the disk answers again: the held messages are journaled and learned
+    assert server.outage is None and not server.held and server.engine.learner.step > step
+    server.journal.close()
