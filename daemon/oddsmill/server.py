@@ -404,19 +404,11 @@ class Server:
         return JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
 
     def checkpoint(self) -> Path | None:
-        """Write a checkpoint now (after the one being written, if any); None (and an outage
-        begins) when the state directory refuses it."""
+        """Write a checkpoint now (after the one being written, if any), as the loop does but
+        waiting for it; None (and an outage begins) when the state directory refuses it."""
         self.collect_checkpoint(wait=True)
-        if self.outage is not None:
-            return None
-        try:
-            position, state, step = self._checkpoint_state()
-            path = write_checkpoint(self.settings.state_dir, step, state)
-        except OSError as e:
-            self._fail(e)
-            return None
-        self._checkpoint_written(path, position, step)
-        return path
+        self.checkpoint_soon()
+        return self.collect_checkpoint(wait=True)
 
     def checkpoint_soon(self) -> None:
         """The loop's checkpoints: the state is taken here (copies, the loop stopped for that only:
@@ -444,24 +436,26 @@ class Server:
         self.last_checkpoint_step, self.checkpoint_begun = step, time.time()
         thread.start()
 
-    def collect_checkpoint(self, wait: bool = False) -> None:
+    def collect_checkpoint(self, wait: bool = False) -> Path | None:
         """Take the result of the checkpoint being written, once it is done (or, with `wait`,
-        after it is done)."""
+        after it is done): its path, or None (none written, not done, or it failed)."""
         if self.writing is None:
-            return
+            return None
         thread, result, position, step = self.writing
         if thread.is_alive() and not wait:
-            return
+            return None
         thread.join()
         self.writing = None
         outcome = result[0]
         if isinstance(outcome, OSError):
             if self.outage is None:  # (during an outage the recovery writes a checkpoint itself)
                 self._fail(outcome)
-            return
+            return None
         if isinstance(outcome, BaseException):
             raise outcome
         self._checkpoint_written(outcome, position, step)
+        path: Path = outcome
+        return path
 
     def _checkpoint_state(self) -> tuple[dict[str, Any], dict[str, Any], int]:
         """(journal position, state, step) of a checkpoint: the journal synced up to here, and the
