@@ -19,10 +19,13 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from importlib import resources
 from typing import Any
 
-from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+import numpy as np
+from prometheus_client import CollectorRegistry, Counter, generate_latest
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
 from prometheus_client.registry import Collector
+from prometheus_client.samples import Sample
+from prometheus_client.utils import floatToGoString
 
 from .engine import Engine
 
@@ -125,20 +128,70 @@ def _candidates(race: Any) -> list[dict[str, Any]]:
     ]
 
 
+class Timings(Collector):
+    """A Prometheus histogram the loop fills in bulk, exposed as prometheus_client's `Histogram`
+    is (its buckets, count, sum and creation time). `observe` only appends to a list: 50 ns,
+    against 0.9 us for `Histogram.observe`, which the loop's path for a lone message paid twice.
+    `fold` (the loop, as it takes its snapshot) bins what was observed, so a scrape sees the
+    timings as stale as the snapshot's figures, SNAPSHOT_SECONDS at most."""
+
+    def __init__(self, name: str, documentation: str, buckets: tuple[float, ...], registry: CollectorRegistry) -> None:
+        self.name, self.documentation = name, documentation
+        self._bounds = np.array([*buckets, math.inf])
+        self._counts = np.zeros(self._bounds.shape[0], dtype=np.int64)
+        self._sum = 0.0
+        self._created = time.time()
+        self._lock = threading.Lock()  # fold (the loop) against collect (a scrape, on its thread)
+        self._observed: list[float] = []
+        self.observe = self._observed.append
+        registry.register(self)
+
+    def fold(self) -> None:
+        """Bin what was observed since the last fold (the loop's thread only)."""
+        if not self._observed:
+            return
+        values = np.array(self._observed)
+        self._observed.clear()
+        # a value on a bound counts in that bound's bucket (le: less than or equal)
+        counts = np.bincount(np.searchsorted(self._bounds, values, side="left"), minlength=self._counts.shape[0])
+        with self._lock:
+            self._counts += counts
+            self._sum += float(values.sum())
+
+    def describe(self) -> Iterator[Metric]:
+        yield HistogramMetricFamily(self.name, self.documentation)
+
+    def collect(self) -> Iterator[Metric]:
+        with self._lock:
+            cumulative = np.cumsum(self._counts).tolist()
+            total = self._sum
+        family = HistogramMetricFamily(self.name, self.documentation)
+        # the bounds as Histogram writes them ("+Inf", "0.0001")
+        bounds = [floatToGoString(b) for b in self._bounds.tolist()]  # type: ignore[no-untyped-call]
+        family.add_metric([], list(zip(bounds, cumulative, strict=True)), total)
+        family.samples.append(Sample(self.name + "_created", {}, self._created))
+        yield family
+
+
+# prometheus_client's default buckets (seconds), which oddsmill_batch_seconds has always had
+DEFAULT_BUCKETS = (0.005, 0.01, 0.025, 0.05, 0.075, 0.1, 0.25, 0.5, 0.75, 1.0, 2.5, 5.0, 7.5, 10.0)
+LATENCY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0)
+
+
 class Board:
     """Where the loop leaves its latest snapshot and observes its timings."""
 
     def __init__(self, registry: CollectorRegistry) -> None:
         self.registry = registry
         self.snapshot = Snapshot(loop_time=time.time())
-        self.batch_seconds = Histogram(
-            "oddsmill_batch_seconds", "Time to process one block of messages.", registry=registry
+        self.batch_seconds = Timings(
+            "oddsmill_batch_seconds", "Time to process one block of messages.", DEFAULT_BUCKETS, registry
         )
-        self.score_latency = Histogram(
+        self.score_latency = Timings(
             "oddsmill_score_latency_seconds",
             "From a message's arrival to its score being published.",
-            buckets=(0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0),
-            registry=registry,
+            LATENCY_BUCKETS,
+            registry,
         )
         self.write_failures = Counter(
             "oddsmill_write_failures",

@@ -292,6 +292,8 @@ class Server:
             self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top, race=self.race
         )
         self.board.held = len(self.held)
+        self.board.batch_seconds.fold()
+        self.board.score_latency.fold()
         self.last_refresh = now
         if now - self.last_rate >= RATE_SECONDS:
             self.board.sample_rates()
