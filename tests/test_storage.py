@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import logging
 import pickle
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -17,6 +18,7 @@ from oddsmill.storage import (
     JournalWriter,
     decode_checkpoint,
     encode_checkpoint,
+    journal_record,
     load_newest,
     read_journal,
     write_checkpoint,
@@ -110,11 +112,15 @@ def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # ty
     assert "torn record" in caplog.text
 
 
-def test_short_and_failed_writes_leave_the_journal_exact(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.mark.parametrize("first", ["append_all then flush", "write_all"])
+def test_short_and_failed_writes_leave_the_journal_exact(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, first: str
+) -> None:
     """The writer buffers pieces (record heads and the bodies as received) and writes them with
     os.writev. A write that takes fewer bytes than offered (as POSIX allows, and a nearly full disk
     does) or fails must leave the file holding a prefix of the records and the buffer holding exactly
-    the rest, so that writing again continues where the file ends."""
+    the rest, so that writing again continues where the file ends. `write_all` (the daemon's
+    write, which skips the buffer when it is empty) must leave them as `append_all` then `flush` do."""
     import errno
     import os
 
@@ -136,14 +142,19 @@ def test_short_and_failed_writes_leave_the_journal_exact(tmp_path: Path, monkeyp
     monkeypatch.setattr(storage.os, "writev", stingy)
     failures = 0
     for lo in range(0, 40, 3):
-        j.append_all(200.0 + lo, bodies[lo : lo + 3])
-        expected_end = j.tell()
+        expected_end = j.tell() + sum(len(journal_record(200.0 + lo, b)) for b in bodies[lo : lo + 3])
+        write = j.flush
+        if first == "write_all":
+            write = partial(j.write_all, 200.0 + lo, bodies[lo : lo + 3])
+        else:
+            j.append_all(200.0 + lo, bodies[lo : lo + 3])
         while True:
             try:
-                j.flush()
+                write()
                 break
             except OSError:
                 failures += 1
+                write = j.flush
                 assert j.tell() == expected_end  # nothing lost, nothing counted twice
                 assert seg.stat().st_size <= expected_end
         assert seg.stat().st_size == expected_end
@@ -152,6 +163,8 @@ def test_short_and_failed_writes_leave_the_journal_exact(tmp_path: Path, monkeyp
     assert failures >= 10 and plan["calls"] > 300  # the short and failed writes were exercised
     got = list(read_journal(seg))
     assert [msgpack.packb(b) for _, _, b in got] == bodies
+    for t, b in ((200.0, bodies[0]), (1.7e9 + 0.123, bodies[1]), (-0.0, bodies[2])):  # the payload is
+        assert journal_record(t, b)[8:] == msgpack.packb([t, msgpack.unpackb(b)])  # msgpack's own
     assert [t for _, t, _ in got] == [200.0 + 3 * (i // 3) for i in range(40)]
 
 

@@ -862,8 +862,7 @@ class Server:
         """Journal a block's messages before anything of it is learned or published; False when
         the write failed and the block is not in the journal."""
         try:
-            self.journal.append_all(arrival, raws)
-            synced = self._persist()
+            synced = self._persist(arrival, raws)
         except OSError as e:
             self._fail(e)  # the caller holds this block
             return False
@@ -946,14 +945,15 @@ class Server:
         self.checkpoint()
         self._refresh()
 
-    def _persist(self) -> bool:
-        """The journal's block reaches the operating system (and with fsync = "block" the disk);
-        True when it was synced. With "interval" the fsync runs in the background
+    def _persist(self, arrival: float, raws: list[bytes]) -> bool:
+        """Journal a block's records: they reach the operating system (and with fsync = "block"
+        the disk); True when they were synced. With "interval" the fsync runs in the background
         (`_sync_in_background`): it took 20 ms and more here, every second, with the loop stopped."""
         if self.settings.fsync == "block":
+            self.journal.append_all(arrival, raws)
             self.journal.sync()
             return True
-        self.journal.flush()
+        self.journal.write_all(arrival, raws)
         return False
 
     def _sync_in_background(self) -> bool:

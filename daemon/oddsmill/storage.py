@@ -47,6 +47,7 @@ CHECKPOINT_RE = re.compile(r"^checkpoint-(\d+)\.omc$")
 JOURNAL_MAGIC = b"oddsmill journal\n"
 JOURNAL_VERSION = 1
 _RECORD = struct.Struct("<II")
+_ARRIVAL = struct.Struct(">d")  # a msgpack float 64's bytes after its 0xcb
 JOURNAL_RE = re.compile(r"^journal-(\d+)\.omj$")
 MAX_RECORD = 1 << 30  # a length field beyond this is damage, not a record
 
@@ -172,7 +173,7 @@ def _record_parts(arrival: float, raw_bodies: list[bytes]) -> list[bytes]:
     """The records of bodies that arrived together, as pieces to write one after another (record
     head, payload head, body): the payload head is packed once, and the bodies are not copied (a
     columnar block's body is tens of kilobytes; copying it twice cost more than its CRC)."""
-    head = b"\x92" + msgpack.packb(float(arrival))
+    head = b"\x92\xcb" + _ARRIVAL.pack(arrival)  # [arrival, ...: msgpack.packb(float(arrival))'s bytes
     crc_head = zlib.crc32(head)
     parts: list[bytes] = []
     for raw in raw_bodies:
@@ -227,24 +228,50 @@ class JournalWriter:
         """`append` each body, in order (a block's messages all arrived at once)."""
         self._add(_record_parts(arrival, raw_bodies))
 
+    def write_all(self, arrival: float, raw_bodies: list[bytes]) -> None:
+        """`append_all`, then `flush`: how the daemon journals each block. With nothing buffered
+        (the usual case) the records go to one writev at once, without passing through the
+        buffer: 2 against 3.5 us for a lone message of 20 features, measured."""
+        parts = _record_parts(arrival, raw_bodies)
+        if self._parts or len(parts) > _IOV_MAX:
+            self._add(parts)
+            self.flush()
+            return
+        size = sum(map(len, parts))
+        try:
+            n = os.writev(self._fd, parts)
+        except OSError:
+            self._parts, self._size = parts, size  # buffered, as a failed flush leaves them
+            raise
+        if n == size:
+            self._end += n
+            return
+        self._parts, self._size = parts, size  # a short write: buffered as flush leaves it, and
+        self._written(n)  # the rest written now
+        self.flush()
+
+    def _written(self, n: int) -> None:
+        """n more bytes of the buffer reached the file: drop them from it."""
+        parts = self._parts
+        self._end += n
+        self._size -= n
+        if self._size == 0:  # all written (the usual case): nothing to count piece by piece
+            parts.clear()
+            return
+        done = 0
+        while done < len(parts) and n >= len(parts[done]):
+            n -= len(parts[done])
+            done += 1
+        del parts[:done]
+        if n:
+            parts[0] = parts[0][n:]
+
     def flush(self) -> None:
         """Hand what was appended to the operating system: it survives the process dying. After
         a failed or short write the buffer starts at the first byte the file does not have."""
         parts = self._parts
         while parts:
-            n = os.writev(self._fd, parts[:_IOV_MAX])
-            self._end += n
-            self._size -= n
-            if self._size == 0:  # all written (the usual case): nothing to count piece by piece
-                parts.clear()
-                return
-            done = 0
-            while done < len(parts) and n >= len(parts[done]):
-                n -= len(parts[done])
-                done += 1
-            del parts[:done]
-            if n:
-                parts[0] = parts[0][n:]
+            self._written(os.writev(self._fd, parts[:_IOV_MAX]))
 
     def sync(self) -> None:
         """flush, then fsync: it survives the machine losing power. Waits for a background fsync
