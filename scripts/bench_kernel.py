@@ -5,7 +5,10 @@ shared machines, ratios much less).
    river's LogisticRegression predict_proba_one + learn_one on the same events, and oddsmill's
    own one-event-at-a-time Python path for reference; once on events that all carry the same 20
    names (the kernel's quiet runs), once on events whose names are drawn from 1,000;
-2. flatness: time per event as the vocabulary grows from 1e3 to 1e6 slots, 20 features present.
+2. flatness: time per event as the vocabulary grows from 1e3 to 1e6 slots, 20 features present:
+   numeric values (each of a million names has warm-up statistics of its own: a detail row, a
+   second miss to memory a feature), and one-hot ones (value 1: ids and categories, what a
+   vocabulary of a million is made of in practice, with no detail rows).
 
     python scripts/bench_kernel.py [--events N] [--json]
 """
@@ -95,20 +98,26 @@ def main() -> None:
     one_rate = n_river / (time.perf_counter() - t0)
     defaults = kernel_rate(Learner(LearnerSettings()), xs, ys)
 
-    def sweep(settings: LearnerSettings) -> dict[int, float]:
+    def sweep(settings: LearnerSettings, one_hot: bool = False) -> dict[int, float]:
         out = {}
         for vocab in (1_000, 10_000, 100_000, 1_000_000):
             lr = Learner(settings)
             for j in range(vocab):  # the vocabulary at its full size before timing
                 lr.encode({f"f{j}": 1.0})
             vx = events(args.events, vocab, 3)
-            out[vocab] = 1e9 / kernel_rate(lr, vx, labels(vx, 4))  # ns per event
+            vy = labels(vx, 4)
+            if one_hot:
+                vx = [dict.fromkeys(x, 1.0) for x in vx]
+            # best of nine passes: at 1e3 a slot's warm-up (its first 1,000 values) ends in the
+            # third, and with three the 1e3 figure was partly warm-up work (1,167 against 800 ns)
+            out[vocab] = 1e9 / kernel_rate(lr, vx, vy, repeats=9)  # ns per event
         return out
 
     flat = sweep(LearnerSettings())
     # at 1e3 slots every feature is frequent enough to be centred, which the defaults pay for; the
     # second sweep shows the vocabulary's own effect
     flat_plain = sweep(LearnerSettings(max_centred=0))
+    flat_one_hot = sweep(LearnerSettings(), one_hot=True)
     result = {
         "kernel_events_per_s": ours,
         "kernel_defaults_events_per_s": defaults,
@@ -123,6 +132,8 @@ def main() -> None:
         "flatness_1e6_over_1e3": flat[1_000_000] / flat[1_000],
         "ns_per_event_by_vocabulary_no_centring": flat_plain,
         "flatness_no_centring_1e6_over_1e3": flat_plain[1_000_000] / flat_plain[1_000],
+        "ns_per_event_by_vocabulary_one_hot": flat_one_hot,
+        "flatness_one_hot_1e6_over_1e3": flat_one_hot[1_000_000] / flat_one_hot[1_000],
     }
     if args.json:
         print(json.dumps(result, indent=2))
@@ -139,10 +150,11 @@ def main() -> None:
     print(f"  river predict_proba_one + learn_one    {varied_river:>12,.0f} events/s")
     print("time per event as the vocabulary grows (defaults, 20 features present):")
     for vocab, ns in flat.items():
-        plain = flat_plain[vocab]
+        plain, hot = flat_plain[vocab], flat_one_hot[vocab]
         print(
             f"  {vocab:>9,} slots  {ns:8.0f} ns   {ns / flat[1_000]:.2f}x the 1e3 figure"
-            f"   (no centring: {plain:6.0f} ns, {plain / flat_plain[1_000]:.2f}x)"
+            f"   (no centring: {plain:6.0f} ns, {plain / flat_plain[1_000]:.2f}x;"
+            f" one-hot: {hot:6.0f} ns, {hot / flat_one_hot[1_000]:.2f}x)"
         )
 
 
