@@ -37,6 +37,7 @@ def test_print_config_reads_back_and_flags_win(tmp_path: Path, capsys) -> None: 
         ("[server]\ningest_knd = 'pull'\n", [], "unknown setting server.ingest_knd"),
         ("[server]\ncheckpoint_events = 'often'\n", [], "server.checkpoint_events must be int, got 'often'"),
         ("[server]\nblock_max = 0\n", [], "block_max must be an integer >= 1, got 0"),
+        ("[server]\nblock_bytes = -5\n", [], "block_bytes must be an integer >= 1, got -5"),
         ("[servr]\n", [], "unknown table or key 'servr'"),
         ("", ["--ingest", "tcp://0.0.0.0:7571"], "not a loopback address"),
     ],

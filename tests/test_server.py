@@ -336,3 +336,36 @@ def test_warm_up_leaves_nothing_to_compile_or_load_for_the_loop() -> None:
     loop held its block up by 3 to 4 ms; the first compiled call of a process, by half a second)."""
     out = subprocess.run([sys.executable, "-c", WARM_CHECK], capture_output=True, text=True, timeout=300, check=True)
     assert out.stdout.strip() == "nothing", out.stdout + out.stderr
+
+
+@pytest.mark.parametrize("most,most_bytes", [(4096, 5000), (7, 1 << 20), (3, 2000), (1, 10)])
+def test_a_wake_up_takes_at_most_block_max_messages_and_block_bytes(most: int, most_bytes: int) -> None:
+    """The loop's drain (server._drain) over a backlog of messages of mixed sizes (lone events to
+    columnar blocks): the blocks take the queue in order, none has more than `most` messages, each
+    stops taking messages once it holds `most_bytes` (its last may cross it), and a block ends
+    early only when the queue is empty."""
+    from oddsmill import server as server_module
+
+    rng = np.random.default_rng(3)
+    queue = [
+        [b"events", bytes(int(n))] for n in rng.choice([40, 400, 1500, 82_000], size=300, p=[0.4, 0.4, 0.15, 0.05])
+    ]
+    waiting_now = list(queue)
+
+    def recv(flags: int = 0) -> list[bytes]:
+        assert flags == zmq.NOBLOCK
+        return waiting_now.pop(0)
+
+    def waiting() -> int:
+        return int(zmq.POLLIN) if waiting_now else 0
+
+    blocks = []
+    while waiting_now:
+        blocks.append(server_module._drain(waiting_now.pop(0), recv, waiting, most, most_bytes))
+    assert [m for b in blocks for m in b] == queue
+    for k, block in enumerate(blocks):
+        sizes = [sum(map(len, m)) for m in block]
+        assert len(block) <= most and sum(sizes[:-1]) < most_bytes
+        if k < len(blocks) - 1:  # it ended at a bound, not for want of messages
+            assert len(block) == most or sum(sizes) >= most_bytes
+    assert len(blocks) > 1 and (most == 1 or max(map(len, blocks)) > 1)

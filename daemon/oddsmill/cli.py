@@ -392,6 +392,7 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
     "checkpoint_seconds": float,
     "segment_bytes": int,
     "block_max": int,
+    "block_bytes": int,
     "pending_limit": int,
     "pending_ttl": float,
     "allow_insecure_bind": bool,
@@ -735,6 +736,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--race-margin", dest="race_margin", type=float, help="relative lead a challenger needs (0.02)")
     s.add_argument("--race-patience", dest="race_patience", type=int, help="labelled events it must hold it (2000)")
     s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
+    s.add_argument("--block-bytes", dest="block_bytes", type=int, help="bytes a block at most (default 4 MiB)")
     s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
     s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")
     s.add_argument(
