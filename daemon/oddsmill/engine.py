@@ -257,9 +257,8 @@ class Engine:
         state bit for bit (tests/test_lone.py). Returns the score bodies, packed."""
         if self.pending:
             self._expire(arrival)
-        ms = self.metrics.scalars()
-        bodies = known.learn(self.learner.arrays(known.slots.shape[0]), self.metrics.arrays(), ms, arrival)
-        self.metrics.set_scalars(ms)
+        metrics = self.metrics
+        bodies = known.learn(self.learner.arrays(known.slots.shape[0]), metrics.arrays(), metrics.scalars(), arrival)
         self.counters.train += len(bodies)
         return bodies
 

@@ -135,8 +135,9 @@ class ProgressiveMetrics:
 
     def __init__(self, window: int = 10_000) -> None:
         self.window = window
-        self.sum = 0.0
-        self.count = 0
+        # `_record`'s scalars, kept as the array its compiled callers update in place (quick.py):
+        # sum, count, head, filled, stride, points (counts held exactly: below 2**53)
+        self._ms = np.zeros(6)
         self._z = np.zeros(window)
         self._y = np.zeros(window)
         self._ll = np.zeros(window)  # the log-loss of each, so a history point costs one sum
@@ -145,22 +146,70 @@ class ProgressiveMetrics:
         chunks = (window + CHUNK - 1) // CHUNK
         self._chunks = np.zeros(chunks)
         self._dirty = np.zeros(chunks, dtype=np.bool_)
-        self._filled = 0
         # figures of the window kept until the count changes (the window changes only with it):
         # a race asks for every candidate's log-loss after each block, a history point asks at the
         # same count, and the loop refreshes its figures four times a second
         self._kept_at = -1
         self._kept: dict[str, Any] = {}
-        self._head = 0
         # (labelled events so far, progressive log-loss, windowed log-loss) every `stride` labelled
         # events. Taken at exact counts, not at block ends, so a restarted daemon that replays its
         # journal in other blocks has the same history. When full, every other point is dropped and
         # the stride doubles: the whole life of the model stays in view at a coarser grain.
         self._history = np.zeros((HISTORY_POINTS, 3))
-        self._points = 0
         self.stride = HISTORY_STRIDE
         self._one_z = np.zeros(1)  # update_one's arrays
         self._one_y = np.zeros(1)
+
+    @property
+    def sum(self) -> float:
+        """The log-loss summed over every labelled event."""
+        return float(self._ms[0])
+
+    @sum.setter
+    def sum(self, v: float) -> None:
+        self._ms[0] = v
+
+    @property
+    def count(self) -> int:
+        """Labelled events recorded."""
+        return int(self._ms[1])
+
+    @count.setter
+    def count(self, v: int) -> None:
+        self._ms[1] = v
+
+    @property
+    def _head(self) -> int:  # where the ring's next value goes
+        return int(self._ms[2])
+
+    @_head.setter
+    def _head(self, v: int) -> None:
+        self._ms[2] = v
+
+    @property
+    def _filled(self) -> int:  # values in the ring
+        return int(self._ms[3])
+
+    @_filled.setter
+    def _filled(self, v: int) -> None:
+        self._ms[3] = v
+
+    @property
+    def stride(self) -> int:
+        """Labelled events between two history points."""
+        return int(self._ms[4])
+
+    @stride.setter
+    def stride(self, v: int) -> None:
+        self._ms[4] = v
+
+    @property
+    def _points(self) -> int:  # history points kept
+        return int(self._ms[5])
+
+    @_points.setter
+    def _points(self, v: int) -> None:
+        self._ms[5] = v
 
     @property
     def history(self) -> list[tuple[int, float, float]]:
@@ -171,7 +220,8 @@ class ProgressiveMetrics:
         n = z.shape[0]
         if not n:
             return
-        self.sum, self.count, self._head, self._filled, self.stride, self._points = _record(
+        ms = self._ms
+        ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = _record(
             z,
             y,
             self._z,
@@ -180,12 +230,12 @@ class ProgressiveMetrics:
             self._chunks,
             self._dirty,
             self._history,
-            self.sum,
-            self.count,
-            self._head,
-            self._filled,
-            self.stride,
-            self._points,
+            ms[0],
+            int(ms[1]),
+            int(ms[2]),
+            int(ms[3]),
+            int(ms[4]),
+            int(ms[5]),
         )
 
     def arrays(self) -> tuple[np.ndarray, ...]:
@@ -193,14 +243,9 @@ class ProgressiveMetrics:
         return (self._z, self._y, self._ll, self._chunks, self._dirty, self._history)
 
     def scalars(self) -> np.ndarray:
-        """`_record`'s scalars (sum, count, head, filled, stride, points), for `set_scalars`."""
-        return np.array([self.sum, self.count, self._head, self._filled, self.stride, self._points], dtype=np.float64)
-
-    def set_scalars(self, ms: np.ndarray) -> None:
-        total, count, head, filled, stride, points = ms.tolist()
-        self.sum = total
-        self.count, self._head, self._filled = int(count), int(head), int(filled)
-        self.stride, self._points = int(stride), int(points)
+        """`_record`'s scalars (sum, count, head, filled, stride, points): the array the metrics
+        keep them in, for compiled callers to update in place (quick.py)."""
+        return self._ms
 
     def update_one(self, z: float, y: float) -> None:
         """`update` with one labelled event (its arrays are kept, not built a call)."""
