@@ -20,6 +20,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from functools import partial
+from itertools import repeat
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
@@ -272,12 +273,17 @@ class Server:
         self.last_fsync = time.monotonic()
         self.sync_records = 0  # the records journaled when the background fsync in flight began
         # Write failures. `base` is the journal offset up to which everything is known to be safe
-        # (synced, or with fsync = "os" handed to the operating system); `unsaved` are the records
-        # after it, already learned. After a failure the segment is cut back to `base` and they are
-        # written again: a failed fsync is never taken as having succeeded.
+        # (synced, or with fsync = "os" handed to the operating system); `unsaved` are the bodies of
+        # the records after it, already learned, and `unsaved_at` their arrivals. After a failure the
+        # segment is cut back to `base` and they are written again: a failed fsync is never taken as
+        # having succeeded. (Two lists, not one of pairs: a pair a message, held until the next
+        # fsync, was a container the garbage collector tracks. At 10,000 lone messages a second
+        # they set off 32 young collections of 70 to 90 us and 2 of the middle generation of 100
+        # to 120 us in 3 s of the latency bench; 2 young ones now.)
         self.base = self.journal.tell()
         self.base_records = self.records
-        self.unsaved: list[tuple[float, bytes]] = []
+        self.unsaved: list[bytes] = []
+        self.unsaved_at: list[float] = []
         self.outage: str | None = None  # why writes fail, while they do
         self.held: list[tuple[float, bytes]] = []  # arrived during an outage: journal, then learn
         self.held_bytes = 0
@@ -874,7 +880,8 @@ class Server:
             self._fail(e)  # the caller holds this block
             return False
         self.records += len(raws)
-        self.unsaved += [(arrival, raw) for raw in raws]
+        self.unsaved += raws
+        self.unsaved_at += repeat(arrival, len(raws))
         if synced or self.settings.fsync == "os":  # handed to the OS is all "os" promises
             self._saved()
         elif not self._sync_in_background():
@@ -895,6 +902,7 @@ class Server:
         self.base = self.journal.tell()
         self.base_records = self.records
         self.unsaved.clear()
+        self.unsaved_at.clear()
 
     def _fail(self, e: OSError) -> None:
         """A write failed: stop learning and journaling, keep scoring, hold what arrives."""
@@ -932,7 +940,7 @@ class Server:
         try:
             JournalWriter.cut(path, self.base)
             journal = JournalWriter(path)
-            for arrival, raw in self.unsaved + self.held:
+            for arrival, raw in [*zip(self.unsaved_at, self.unsaved, strict=True), *self.held]:
                 journal.append(arrival, raw)
             journal.sync()
         except OSError as e:
@@ -987,6 +995,7 @@ class Server:
             return False
         if end is not None and self.sync_records > self.base_records:
             del self.unsaved[: self.sync_records - self.base_records]
+            del self.unsaved_at[: self.sync_records - self.base_records]
             self.base, self.base_records = end, self.sync_records
         return True
 
