@@ -25,7 +25,11 @@ def test_bench_measures_every_server_and_reports_ratios() -> None:
     assert len(ratios) == 3 and cols["race_to_oddsmill"] == ratios[1] > 0
     assert cols["race_pairs"][0]["single"] == cols["oddsmill"]["events_per_s"]
     lat = result["latency"]
-    assert lat["floor"]["received"] == lat["oddsmill"]["received"] == 2 * 1000  # every score came back
+    from oddsmill.bench import LATENCY_ROUNDS
+
+    # every score came back, in every round
+    assert lat["floor"]["received"] == lat["oddsmill"]["received"] == LATENCY_ROUNDS * 1000
+    assert len(lat["oddsmill"]["rounds_median_ms"]) == LATENCY_ROUNDS
     assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
     # the servers' CPU over the load, from /proc (clock ticks of 10 ms: about 7 of them for the floor)
     assert lat["floor"]["cpu_us_per_message"] > 0 and lat["oddsmill"]["cpu_us_per_message"] > 0

@@ -39,6 +39,10 @@ import zmq
 
 BLOCK = 500  # events a batch or columnar block
 RACE_PAIRS = 3  # pairs of runs (a single learner, a race of nine) behind the race's ratio
+# Rounds of latency runs (the floor, then oddsmill), pooled. The median of one round moves by a
+# third from round to round on this shared machine (0.25 to 0.33 ms for the floor in one run);
+# two rounds left the ratio moving from 1.15 to 1.44 between runs of the same code.
+LATENCY_ROUNDS = 4
 FEATURES = [f"f{j:02d}" for j in range(20)]
 
 FLOOR = r"""
@@ -343,7 +347,7 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
         result["throughput"][shape] = row
     runs: dict[str, list[np.ndarray]] = {"floor": [], "oddsmill": []}
     cpus: dict[str, list[float]] = {"floor": [], "oddsmill": []}
-    for _ in range(2):
+    for _ in range(LATENCY_ROUNDS):
         for kind in ("floor", "oddsmill"):
             lat, cpu = latency(kind, rate, seconds)
             runs[kind].append(lat)
@@ -355,6 +359,7 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
             "median_ms": float(np.median(lat) * 1e3),
             "p99_ms": float(np.percentile(lat, 99) * 1e3),
             "cpu_us_per_message": float(np.mean(cpus[kind]) * 1e6),
+            "rounds_median_ms": [float(np.median(part) * 1e3) for part in parts],
         }
     lat_r = result["latency"]
     lat_r["median_ratio"] = lat_r["oddsmill"]["median_ms"] / lat_r["floor"]["median_ms"]
