@@ -150,7 +150,7 @@ class FedDaemon:
         answers = self.client.receive(sum(1 for b in batches if any("x" in e for e in b)) + 1)
         assert all(topic == b"scores" for topic, _ in answers)
         self.learned = self.server.engine.learner.step
-        # the figures are a snapshot refreshed a few times a second, and events/s needs two samples
+        # events/s needs two samples a second apart, and the top coefficients are ranked every 2 s
         deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             doc = self.status()

@@ -96,7 +96,7 @@ def test_malformed_messages_are_counted_and_change_nothing(tmp_path: Path) -> No
     assert Counter(r["reason"] for r in rejects) == {reason: per_reason for reason in REASONS}
     assert all(isinstance(r["detail"], str) and len(r["detail"]) > 10 for r in rejects)
     assert sum(1 for topic, _ in answers if topic == b"scores") == len(valid)
-    # the metrics count each under its reason (once the figures, refreshed a few times a second, catch up)
+    # the metrics count each under its reason (a scrape's figures are taken after it asked)
     wanted = [f'oddsmill_events_rejected_total{{reason="{reason}"}} {per_reason}.0' for reason in REASONS]
     deadline = time.monotonic() + 10
     while True:

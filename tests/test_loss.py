@@ -55,7 +55,7 @@ def test_an_overrun_shows_as_lost_events(tmp_path: Path) -> None:
             break
         assert time.monotonic() < deadline, "the daemon never went quiet"
         last = seen
-        time.sleep(0.5)  # the daemon's figures refresh every 0.25 s: two refreshes without a change
+        time.sleep(0.5)  # (each request's figures are taken after it asked): 0.5 s without a change
     pub.send_multipart([b"events", msgpack.packb(dict(events[0], src="burst", seq=n))])
     deadline = time.monotonic() + 10
     while True:

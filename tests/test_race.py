@@ -237,7 +237,7 @@ def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_
     assert server.race is not None and server.race.switches
     http = server.bound["http"]
     deadline = time.monotonic() + 10
-    while time.monotonic() < deadline:  # the figures refresh a few times a second
+    while time.monotonic() < deadline:  # (a scrape's figures are taken after it asked)
         with urllib.request.urlopen(f"http://{http}/metrics", timeout=5) as r:
             exposition = r.read().decode()
         if f"oddsmill_candidate_switches_total {len(server.race.switches)}.0" in exposition:

@@ -148,7 +148,7 @@ class ProgressiveMetrics:
         self._dirty = np.zeros(chunks, dtype=np.bool_)
         # figures of the window kept until the count changes (the window changes only with it):
         # a race asks for every candidate's log-loss after each block, a history point asks at the
-        # same count, and the loop refreshes its figures four times a second
+        # same count, and the loop takes its figures when a scrape asks
         self._kept_at = -1
         self._kept: dict[str, Any] = {}
         # (labelled events so far, progressive log-loss, windowed log-loss) every `stride` labelled

@@ -59,7 +59,9 @@ log = logging.getLogger("oddsmill")
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 CHORES_SECONDS = 0.01  # the loop's checks of time run at most this often (a few us each wake-up)
-SNAPSHOT_SECONDS = 0.25  # how stale the figures that /metrics and /api/status read may be
+# The figures /metrics and /api/status read are a snapshot the loop takes when a scrape asks for
+# one (Board.fresh); without scrapes, one this often at least.
+SNAPSHOT_SECONDS = 10.0
 RANKING_SECONDS = 2.0  # how stale the top coefficients may be (ranking them reads the whole vocabulary)
 RATE_SECONDS = 1.0  # events/s is sampled this often for the dashboard
 REPLAY_BLOCK = 4096
@@ -302,15 +304,24 @@ class Server:
             top = (self.board.snapshot.intercept, self.board.snapshot.coefficients)
         else:
             self.last_ranking = now
-        self.board.snapshot = Snapshot.of(
+        snapshot = Snapshot.of(
             self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top, race=self.race
         )
         self.board.held = len(self.held)
-        self.board.batch_seconds.fold()
-        self.board.score_latency.fold()
+        self.board.taken(snapshot)
         self.last_refresh = now
+
+    def _chores_of_the_board(self) -> None:
+        """The board's part of each round of chores: a snapshot when a scrape asks for one (or
+        SNAPSHOT_SECONDS after the last), the timings binned when enough wait, events/s sampled."""
+        board = self.board
+        now = time.monotonic()
+        if board.wanted.is_set() or now - self.last_refresh >= SNAPSHOT_SECONDS:
+            self._refresh()
+        board.fold_timings()
         if now - self.last_rate >= RATE_SECONDS:
-            self.board.sample_rates()
+            c = self.engine.counters
+            board.sample_rates(time.time(), c.train, c.score, c.outcome)
             self.last_rate = now
 
     # -- state -----------------------------------------------------------------------------------
@@ -597,8 +608,7 @@ class Server:
                 self.board.heartbeat = time.time()
                 if self.outage is not None and time.monotonic() - self.last_retry >= RETRY_SECONDS:
                     self._recover()
-                if time.monotonic() - self.last_refresh >= SNAPSHOT_SECONDS:
-                    self._refresh()
+                self._chores_of_the_board()
                 self.collect_checkpoint()
                 if self.outage is None and (due or time.time() - self.checkpoint_begun >= s.checkpoint_seconds):
                     self.checkpoint_soon()
