@@ -272,7 +272,7 @@ class Server:
         self.bound: dict[str, str] = {}
         self.ready = threading.Event()
         self.clean_exit = True  # False when the daemon stopped with messages it could not save
-        self.last_fsync = time.monotonic()
+        self.next_fsync = time.monotonic() + self.settings.fsync_ms / 1000  # when the next is due
         self.sync_records = 0  # the records journaled when the background fsync in flight began
         # Write failures. `base` is the journal offset up to which everything is known to be safe
         # (synced, or with fsync = "os" handed to the operating system); `unsaved` are the bodies of
@@ -599,12 +599,12 @@ class Server:
                     observe(now - t0)
                 else:
                     now = time.perf_counter()
-                    if s.fsync == "interval":
-                        self._collect_sync()  # idle: a failed background fsync is noticed all the same
                 due = self.engine.learner.step - self.last_checkpoint_step >= every
                 if now < chores and not due:
                     continue
                 chores = now + CHORES_SECONDS
+                if s.fsync == "interval":
+                    self._collect_sync()  # a finished background fsync: its records are safe, or it failed
                 self.board.heartbeat = time.time()
                 if self.outage is not None and time.monotonic() - self.last_retry >= RETRY_SECONDS:
                     self._recover()
@@ -982,14 +982,18 @@ class Server:
         return False
 
     def _sync_in_background(self) -> bool:
-        """With fsync = "interval": collect a finished background fsync (the records it covered
-        are safe), and start the next one when due. False when the one collected had failed (an
-        outage has begun)."""
+        """With fsync = "interval", after a block is journaled: when an fsync is due, collect the
+        last one (the records it covered are safe) and start the next. False when the one
+        collected had failed (an outage has begun). Between two, the loop's chores collect a
+        finished one (every CHORES_SECONDS): a block then pays one clock read, where collecting
+        on every block cost 0.3 us of a lone message's 12.7 (measured side by side)."""
+        now = time.monotonic()
+        if now < self.next_fsync:
+            return True
         if not self._collect_sync():
             return False
-        now = time.monotonic()
-        if (now - self.last_fsync) * 1000 >= self.settings.fsync_ms and self.journal.sync_later():
-            self.last_fsync = now
+        if self.journal.sync_later():
+            self.next_fsync = now + self.settings.fsync_ms / 1000
             self.sync_records = self.records
         return True
 
