@@ -12,7 +12,8 @@ goes into checkpoints so that metrics resume exactly.
 from __future__ import annotations
 
 import math
-from typing import Any
+from collections.abc import Callable
+from typing import Any, Generic, TypeVar
 
 import numpy as np
 from numba import njit
@@ -129,9 +130,33 @@ def sigmoid(z: np.ndarray) -> np.ndarray:
     return out
 
 
+T = TypeVar("T", int, float)
+
+
+class _Scalar(Generic[T]):
+    """One of ProgressiveMetrics' scalars, kept in its `_ms` array and read as an int or a float."""
+
+    def __init__(self, index: int, kind: Callable[[float], T]) -> None:
+        self.index = index
+        self.kind: Callable[[float], T] = kind
+
+    def __get__(self, obj: ProgressiveMetrics, owner: type | None = None) -> T:
+        return self.kind(float(obj._ms[self.index]))
+
+    def __set__(self, obj: ProgressiveMetrics, value: T) -> None:
+        obj._ms[self.index] = value
+
+
 class ProgressiveMetrics:
     """Progressive log-loss since the state was created, and log-loss, Brier score and expected
     calibration error over the last `window` labelled events."""
+
+    sum = _Scalar(0, float)  # the log-loss summed over every labelled event
+    count = _Scalar(1, int)  # labelled events recorded
+    _head = _Scalar(2, int)  # where the ring's next value goes
+    _filled = _Scalar(3, int)  # values in the ring
+    stride = _Scalar(4, int)  # labelled events between two history points
+    _points = _Scalar(5, int)  # history points kept
 
     def __init__(self, window: int = 10_000) -> None:
         self.window = window
@@ -159,57 +184,6 @@ class ProgressiveMetrics:
         self.stride = HISTORY_STRIDE
         self._one_z = np.zeros(1)  # update_one's arrays
         self._one_y = np.zeros(1)
-
-    @property
-    def sum(self) -> float:
-        """The log-loss summed over every labelled event."""
-        return float(self._ms[0])
-
-    @sum.setter
-    def sum(self, v: float) -> None:
-        self._ms[0] = v
-
-    @property
-    def count(self) -> int:
-        """Labelled events recorded."""
-        return int(self._ms[1])
-
-    @count.setter
-    def count(self, v: int) -> None:
-        self._ms[1] = v
-
-    @property
-    def _head(self) -> int:  # where the ring's next value goes
-        return int(self._ms[2])
-
-    @_head.setter
-    def _head(self, v: int) -> None:
-        self._ms[2] = v
-
-    @property
-    def _filled(self) -> int:  # values in the ring
-        return int(self._ms[3])
-
-    @_filled.setter
-    def _filled(self, v: int) -> None:
-        self._ms[3] = v
-
-    @property
-    def stride(self) -> int:
-        """Labelled events between two history points."""
-        return int(self._ms[4])
-
-    @stride.setter
-    def stride(self, v: int) -> None:
-        self._ms[4] = v
-
-    @property
-    def _points(self) -> int:  # history points kept
-        return int(self._ms[5])
-
-    @_points.setter
-    def _points(self, v: int) -> None:
-        self._ms[5] = v
 
     @property
     def history(self) -> list[tuple[int, float, float]]:
