@@ -4,16 +4,23 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
+from pathlib import Path
 
 
-def test_bench_measures_every_server_and_reports_ratios() -> None:
+def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     cmd = [sys.executable, "-m", "oddsmill.cli", "bench", "--events", "2000", "--shapes", "one,cols"]
     done = subprocess.run(
-        [*cmd, "--rate", "2000", "--seconds", "0.5", "--json"], capture_output=True, text=True, timeout=300
+        [*cmd, "--rate", "2000", "--seconds", "0.5", "--json"],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env={**os.environ, "TMPDIR": str(tmp_path)},  # where the servers' state directories go
     )
     assert done.returncode == 0, done.stderr[-3000:]
+    assert not list(tmp_path.iterdir())  # each removed when its server stopped
     result = json.loads(done.stdout)
     for shape in ("one", "cols"):
         row = result["throughput"][shape]

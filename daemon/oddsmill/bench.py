@@ -24,6 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import socket
 import subprocess
 import sys
@@ -182,6 +183,7 @@ class Running:
     """One server process on fresh loopback ports."""
 
     def __init__(self, kind: str, ingest_kind: str) -> None:
+        self.state: str | None = None  # oddsmill's state directory, removed when it stops
         self.ingest = f"tcp://127.0.0.1:{free_port()}"
         self.scores = f"tcp://127.0.0.1:{free_port()}"
         if kind == "floor" or kind == "peer":
@@ -207,6 +209,9 @@ class Running:
             if "serving:" in line:
                 break
         else:
+            self.proc.kill()
+            self.proc.wait(20)
+            self._remove_state()
             raise RuntimeError(f"the {kind} server did not start: {''.join(lines)}")
         for pipe in (self.proc.stdout, self.proc.stderr):  # drained for the server's life: it never blocks
             if pipe is not None:
@@ -216,7 +221,14 @@ class Running:
         peak = peak_memory_kib(self.proc.pid)
         self.proc.terminate()
         self.proc.wait(20)
+        self._remove_state()
         return peak
+
+    def _remove_state(self) -> None:
+        """Its journal and checkpoints (up to 770 MB a server here), which were left in the
+        temporary directory after every run until this was added."""
+        if self.state is not None:
+            shutil.rmtree(self.state, ignore_errors=True)
 
 
 def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
