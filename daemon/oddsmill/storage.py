@@ -20,7 +20,6 @@ import logging
 import os
 import re
 import struct
-import zlib
 from collections.abc import Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
@@ -29,6 +28,11 @@ from typing import Any
 
 import msgpack
 import numpy as np
+
+# zlib-ng's CRC-32 is zlib's checksum (the polynomial of zlib, gzip and PNG), computed with the
+# processor's carry-less multiply: a columnar block's 80 KB took 1.5 against 18.8 us with the
+# standard library's zlib.crc32 here (measured); test_storage checks that the two agree
+from zlib_ng.zlib_ng import crc32
 
 from .errors import CheckpointError, JournalError
 from .fastpath import read_batch
@@ -174,10 +178,10 @@ def _record_parts(arrival: float, raw_bodies: list[bytes]) -> list[bytes]:
     head, payload head, body): the payload head is packed once, and the bodies are not copied (a
     columnar block's body is tens of kilobytes; copying it twice cost more than its CRC)."""
     head = b"\x92\xcb" + _ARRIVAL.pack(arrival)  # [arrival, ...: msgpack.packb(float(arrival))'s bytes
-    crc_head = zlib.crc32(head)
+    crc_head = crc32(head)
     parts: list[bytes] = []
     for raw in raw_bodies:
-        parts += (_RECORD.pack(len(head) + len(raw), zlib.crc32(raw, crc_head)), head, raw)
+        parts += (_RECORD.pack(len(head) + len(raw), crc32(raw, crc_head)), head, raw)
     return parts
 
 
@@ -375,7 +379,7 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
             log.warning("%s: torn record at byte %d; the tail is ignored", path, pos)
             return
         payload = data[pos + _RECORD.size : end]
-        if zlib.crc32(payload) != crc:
+        if crc32(payload) != crc:
             log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
             return
         if fast and payload[:2] == b"\x92\xcb":  # [float64 arrival, body]
