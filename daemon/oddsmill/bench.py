@@ -45,6 +45,13 @@ RACE_PAIRS = 3  # pairs of runs (a single learner, a race of nine) behind the ra
 # two rounds left the ratio moving from 1.15 to 1.44 between runs of the same code.
 LATENCY_ROUNDS = 4
 FEATURES = [f"f{j:02d}" for j in range(20)]
+# The events of a throughput run, as multiples of --events, so that each server's run lasts a
+# quarter of a second or more at the default: a columnar run of 100,000 events took the floor 20 to
+# 30 ms, and its rate then said more about the run's start than about the floor (3.0 to 4.9 M
+# events/s in three runs; 4.4 to 6.0 M with a million events). The peer, fifty times slower on
+# columnar blocks, gets fewer.
+EVENTS_SCALE = {"one": 1, "batch": 5, "cols": 50}
+PEER_SCALE = {"one": 1, "batch": 1, "cols": 5}
 
 FLOOR = r"""
 import sys, msgpack, numpy as np, zmq
@@ -328,10 +335,10 @@ def latency(kind: str, rate: float, seconds: float) -> tuple[np.ndarray, float]:
 def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -> dict[str, Any]:
     result: dict[str, Any] = {"throughput": {}, "latency": {}}
     for shape in shapes:
-        n = events if shape == "one" else events * 5
+        n = events * EVENTS_SCALE[shape]
         row: dict[str, Any] = {}
         for kind in ("floor", "peer", "oddsmill"):
-            row[kind] = throughput(kind, shape, n if kind != "peer" or shape == "one" else n // 5)
+            row[kind] = throughput(kind, shape, events * PEER_SCALE[shape] if kind == "peer" else n)
             print(f"  {shape:<6} {kind:<9} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
         if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
             # One pair of runs moves by 20% either way on this shared machine (a single learner

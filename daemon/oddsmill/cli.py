@@ -801,9 +801,11 @@ def build_parser() -> argparse.ArgumentParser:
     rp.set_defaults(func=cmd_report)
 
     b = sub.add_parser("bench", help="throughput and latency against the I/O floor and a river peer, side by side")
-    b.add_argument("--events", type=int, default=20_000, help="events for one-a-message (x5 for blocks)")
+    b.add_argument(
+        "--events", type=int, default=20_000, help="events for one-a-message (x5 for batches, x50 for columnar blocks)"
+    )
     b.add_argument("--rate", type=float, default=10_000.0, help="offered load for the latency, events/s")
-    b.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (two runs each)")
+    b.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (four runs each)")
     b.add_argument("--shapes", default="one,batch,cols", help="any of one, batch, cols, comma-separated")
     b.add_argument("--json", action="store_true")
     b.set_defaults(func=cmd_bench)
