@@ -44,13 +44,15 @@ def main() -> None:
     ap.add_argument("--events", type=int, default=1_000_000)
     ap.add_argument("--shape", choices=["batch", "cols"], default="batch")
     a = ap.parse_args()
-    state = Path(tempfile.mkdtemp(prefix="oddsmill-recovery-"))
-    write_journal(state, a.events, a.shape)
-    settings = ServerSettings(state_dir=state, http="off")
-    t0 = time.perf_counter()
-    server = Server(settings)
-    seconds = time.perf_counter() - t0
-    step = server.engine.learner.step
+    with tempfile.TemporaryDirectory(prefix="oddsmill-recovery-") as tmp:  # (250 MB of journal)
+        state = Path(tmp)
+        write_journal(state, a.events, a.shape)
+        settings = ServerSettings(state_dir=state, http="off")
+        t0 = time.perf_counter()
+        server = Server(settings)
+        seconds = time.perf_counter() - t0
+        step = server.engine.learner.step
+        server.journal.close()
     print(f"{a.shape}: replayed {step:,} events in {seconds:.1f} s ({seconds / max(step, 1) * 1e6:.2f} us an event)")
 
 
