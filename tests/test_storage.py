@@ -114,8 +114,9 @@ def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # ty
 
 def test_the_journal_checksum_is_zlibs_crc32(tmp_path: Path) -> None:
     """The journal's CRC-32 comes from zlib-ng; the reference is the standard library's
-    zlib.crc32, over lengths around the widths its vector code works in (16 to 64 bytes), chained
-    from a start value as a record's is, and on a columnar block's 80 KB."""
+    zlib.crc32, over lengths from none to a columnar block's 80 KB (short ones on either side of
+    powers of two, where a vectorised loop hands over to its tail), chained from a start value as a
+    record's is."""
     import struct
     import zlib
 
