@@ -21,7 +21,7 @@ import time
 
 import numpy as np
 from oddsmill import kernel as K
-from oddsmill.encoding import BlockBuilder
+from oddsmill.encoding import Block, BlockBuilder
 from oddsmill.learner import Learner
 from oddsmill.settings import LearnerSettings
 
@@ -43,7 +43,8 @@ def labels(xs: list[dict[str, float]], seed: int) -> list[int]:
     return [int(rng.random() < 1 / (1 + np.exp(-0.3 * sum(x.values())))) for x in xs]
 
 
-def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: int = 1000, repeats: int = 3) -> float:
+def encoded(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: int = 1000) -> list[Block]:
+    """The events as blocks of training events, encoded by lr; the first is run (compile / warm)."""
     blocks = []
     for lo in range(0, len(xs), block):
         b = BlockBuilder()
@@ -51,14 +52,23 @@ def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], block: i
             slots, values = lr.encode(x)
             b.add(slots, values, K.OP_TRAIN, float(y), 1.0)
         blocks.append(b.build())
-    lr.run(blocks[0])  # compile / warm
-    best = float("inf")
-    for _ in range(repeats):  # the best of a few passes: one pass is tens of milliseconds, and
-        t0 = time.perf_counter()  # the other processes of a shared machine come and go
-        for b in blocks[1:]:
-            lr.run(b)
-        best = min(best, time.perf_counter() - t0)
-    return (len(blocks) - 1) * block / best
+    lr.run(blocks[0])
+    return blocks
+
+
+def one_pass(lr: Learner, blocks: list[Block]) -> float:
+    """Seconds an event, a pass over the blocks but the first."""
+    t0 = time.perf_counter()
+    for b in blocks[1:]:
+        lr.run(b)
+    return (time.perf_counter() - t0) / sum(len(b) for b in blocks[1:])
+
+
+def kernel_rate(lr: Learner, xs: list[dict[str, float]], ys: list[int], repeats: int = 3) -> float:
+    blocks = encoded(lr, xs, ys)
+    # the best of a few passes: one pass is tens of milliseconds, and the other processes of a
+    # shared machine come and go
+    return 1.0 / min(one_pass(lr, blocks) for _ in range(repeats))
 
 
 def main() -> None:
@@ -99,7 +109,7 @@ def main() -> None:
     defaults = kernel_rate(Learner(LearnerSettings()), xs, ys)
 
     def sweep(settings: LearnerSettings, one_hot: bool = False) -> dict[int, float]:
-        out = {}
+        runs = {}
         for vocab in (1_000, 10_000, 100_000, 1_000_000):
             lr = Learner(settings)
             for j in range(vocab):  # the vocabulary at its full size before timing
@@ -108,10 +118,17 @@ def main() -> None:
             vy = labels(vx, 4)
             if one_hot:
                 vx = [dict.fromkeys(x, 1.0) for x in vx]
-            # best of nine passes: at 1e3 a slot's warm-up (its first 1,000 values) ends in the
-            # third, and with three the 1e3 figure was partly warm-up work (1,167 against 800 ns)
-            out[vocab] = 1e9 / kernel_rate(lr, vx, vy, repeats=9)  # ns per event
-        return out
+            runs[vocab] = (lr, encoded(lr, vx, vy))
+        # The best of nine passes each (at 1e3 a slot's warm-up, its first 1,000 values, ends in
+        # the third; with three the 1e3 figure was partly warm-up work, 1,167 against 800 ns),
+        # the sizes taking turns pass by pass: run one size after another, a spell of the shared
+        # machine's other load fell on one of them (one sweep put 1e4 one-hot names at 0.48x
+        # the 1e3 figure)
+        best = dict.fromkeys(runs, float("inf"))
+        for _ in range(9):
+            for vocab, (lr, blocks) in runs.items():
+                best[vocab] = min(best[vocab], one_pass(lr, blocks))
+        return {vocab: t * 1e9 for vocab, t in best.items()}  # ns per event
 
     flat = sweep(LearnerSettings())
     # at 1e3 slots every feature is frequent enough to be centred, which the defaults pay for; the
