@@ -24,7 +24,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import shutil
 import socket
 import subprocess
 import sys
@@ -190,7 +189,10 @@ class Running:
     """One server process on fresh loopback ports."""
 
     def __init__(self, kind: str, ingest_kind: str) -> None:
-        self.state: str | None = None  # oddsmill's state directory, removed when it stops
+        # oddsmill's state directory (journal and checkpoints, up to 770 MB a server here, which
+        # were left behind after every run until it was a TemporaryDirectory): removed when the
+        # server stops or fails to start, and at exit if a run raised before stopping it
+        self.state: tempfile.TemporaryDirectory[str] | None = None
         self.ingest = f"tcp://127.0.0.1:{free_port()}"
         self.scores = f"tcp://127.0.0.1:{free_port()}"
         if kind == "floor" or kind == "peer":
@@ -202,8 +204,8 @@ class Running:
             cmd = [sys.executable, "-c", code, self.ingest, self.scores]
             stream = "stdout"
         else:
-            self.state = tempfile.mkdtemp(prefix="oddsmill-bench-")
-            cmd = [sys.executable, "-m", "oddsmill.cli", "serve", "--state", self.state, "--ingest", self.ingest]
+            self.state = tempfile.TemporaryDirectory(prefix="oddsmill-bench-")
+            cmd = [sys.executable, "-m", "oddsmill.cli", "serve", "--state", self.state.name, "--ingest", self.ingest]
             cmd += ["--ingest-kind", ingest_kind, "--scores", self.scores, "--http", "off"]
             cmd += ["--scores-hwm", "100000000"]
             if kind == "race":  # nine candidates on the same stream, one serving
@@ -232,10 +234,8 @@ class Running:
         return peak
 
     def _remove_state(self) -> None:
-        """Its journal and checkpoints (up to 770 MB a server here), which were left in the
-        temporary directory after every run until this was added."""
         if self.state is not None:
-            shutil.rmtree(self.state, ignore_errors=True)
+            self.state.cleanup()
 
 
 def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
