@@ -8,6 +8,9 @@ import os
 import subprocess
 import sys
 from pathlib import Path
+from typing import Any
+
+import pytest
 
 
 def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
@@ -22,11 +25,19 @@ def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     assert done.returncode == 0, done.stderr[-3000:]
     assert not list(tmp_path.iterdir())  # each removed when its server stopped
     result = json.loads(done.stdout)
+    sent = {"one": 2000, "cols": 4 * 50}  # messages (--events 2000: columnar runs 50x that, 500 rows a message)
     for shape in ("one", "cols"):
         row = result["throughput"][shape]
-        for kind in ("floor", "peer", "oddsmill"):
+        for kind in ("floor", "journaled_floor", "peer", "oddsmill"):
             assert row[kind]["events_per_s"] > 0 and row[kind]["peak_memory_mib"] > 10
         assert row["oddsmill_to_floor"] == row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
+        assert row["oddsmill_to_journaled_floor"] == (
+            row["oddsmill"]["events_per_s"] / row["journaled_floor"]["events_per_s"]
+        )
+        # the journaled floor wrote every message it answered: a record of 18 bytes around each body
+        # (a one-event body is over 200 bytes, a columnar one over 80,000), and the bench's probes
+        body = 200 if shape == "one" else 80_000
+        assert row["journaled_floor"]["journal_bytes"] >= sent[shape] * (18 + body)
     cols = result["throughput"]["cols"]  # the race: the median of its pairs of runs, each reported
     ratios = sorted(p["race"] / p["single"] for p in cols["race_pairs"])
     assert len(ratios) == 3 and cols["race_to_oddsmill"] == ratios[1] > 0
@@ -35,7 +46,8 @@ def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     from oddsmill.bench import LATENCY_ROUNDS
 
     # every score came back, in every round
-    assert lat["floor"]["received"] == lat["oddsmill"]["received"] == LATENCY_ROUNDS * 1000
+    assert lat["floor"]["received"] == lat["journaled_floor"]["received"] == LATENCY_ROUNDS * 1000
+    assert lat["oddsmill"]["received"] == LATENCY_ROUNDS * 1000
     assert len(lat["oddsmill"]["rounds_median_ms"]) == LATENCY_ROUNDS
     assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
     # the servers' CPU over the load, from /proc (clock ticks of 10 ms: about 7 of them for the floor)
@@ -48,3 +60,37 @@ def test_bench_refuses_bad_arguments() -> None:
     cmd = [sys.executable, "-m", "oddsmill.cli", "bench", "--shapes", "one,rows"]
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=60)
     assert done.returncode == 2 and "bad arguments" in done.stderr
+
+
+def test_a_failed_run_leaves_no_process_or_directory_behind(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """A server that stops answering mid-run (here the journaled floor, asleep after 100 messages):
+    the run fails with what happened, and its server, its producer and the server's state directory
+    are gone. (A failed run once left its servers running, journaling, after the bench had exited.)"""
+    import subprocess as sp
+    import tempfile
+
+    from oddsmill import bench
+
+    asleep = bench.JOURNALED_FLOOR.replace(
+        "    topic, raw = sub.recv_multipart()\n",
+        "    topic, raw = sub.recv_multipart()\n    answered = globals().get('answered', 0) + 1\n"
+        "    if answered > 100:\n        time.sleep(3600)\n",
+    )
+    assert asleep != bench.JOURNALED_FLOOR
+    monkeypatch.setitem(bench.SCRIPTS, "journaled_floor", asleep)
+    monkeypatch.setattr(bench, "SILENCE_MS", 2000)
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
+    started: list[sp.Popen[str]] = []
+    real = sp.Popen
+
+    class Recorded(real):  # type: ignore[misc, valid-type]
+        def __init__(self, *args: Any, **kwargs: Any) -> None:
+            super().__init__(*args, **kwargs)
+            started.append(self)
+
+    monkeypatch.setattr(sp, "Popen", Recorded)
+    with pytest.raises(RuntimeError, match="journaled_floor, one: [0-9]{2,3} of 2000 answers, then silence"):
+        bench.throughput("journaled_floor", "one", 2000)
+    assert len(started) == 2  # the server and the producer
+    assert all(p.poll() is not None for p in started)
+    assert not list(tmp_path.iterdir())

@@ -3,6 +3,9 @@
 Three servers, each a process of its own, measured in turn under the same load:
 
 - the floor: receives, decodes and publishes a constant score; the cost of the I/O alone;
+- the journaled floor: the floor, writing each message to a journal first (records as oddsmill's,
+  CRC-32 and all, with an fsync in the background every second, as oddsmill's default): the I/O
+  and the durability every daemon that keeps its messages pays, without the learning;
 - the peer: the daemon a user would write by hand, with river's LogisticRegression, pyzmq, msgpack;
 - oddsmill itself, on the defaults.
 
@@ -11,7 +14,7 @@ of 500, columnar blocks of 500 rows): a producer process of its own pushes N eve
 server takes them (PUSH/PULL: back-pressure, nothing dropped), and this process counts the scores;
 events/s is the events over the time from the producer's start to the last score. Latency: one event
 a message at a fixed offered load, sent by a producer process of its own, from each send to its
-score at this process's subscriber (floor and oddsmill, alternated twice so drift falls on both),
+score at this process's subscriber (the floors and oddsmill in turn, in rounds so drift falls on all),
 with the server's CPU time a message over that load (from /proc: every thread). Peak memory is each
 server's VmHWM. The ratios are what to read: absolute figures drift on a shared machine.
 
@@ -38,6 +41,7 @@ import numpy as np
 import zmq
 
 BLOCK = 500  # events a batch or columnar block
+SILENCE_MS = 60_000  # a run fails when no score comes for this long (the first call may compile)
 RACE_PAIRS = 3  # pairs of runs (a single learner, a race of nine) behind the race's ratio
 # Rounds of latency runs (the floor, then oddsmill), pooled. The median of one round moves by a
 # third from round to round on this shared machine (0.25 to 0.33 ms for the floor in one run);
@@ -72,6 +76,30 @@ while True:
         out = {"id": body.get("id"), "p": 0.5, "logit": 0.0, "step": 0, "ts": 0.0}
     pub.send_multipart([b"scores", msgpack.packb(out)])
 """
+
+# The floor with a journal: each message's record (the same bytes as oddsmill's: length and CRC-32,
+# then [arrival, body]) reaches the operating system before the message is decoded and answered,
+# and a thread fsyncs the file every second. Its state directory is argv[3].
+JOURNALED_FLOOR = FLOOR.replace(
+    "import sys, msgpack, numpy as np, zmq",
+    """import os, struct, sys, threading, time, msgpack, numpy as np, zmq
+from zlib_ng.zlib_ng import crc32
+fd = os.open(os.path.join(sys.argv[3], "journal"), os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+record, arrival = struct.Struct("<II"), struct.Struct(">d")
+
+def sync():
+    while True:
+        time.sleep(1.0)
+        os.fsync(fd)
+
+threading.Thread(target=sync, daemon=True).start()""",
+).replace(
+    "    body = msgpack.unpackb(raw)\n",
+    """    head = b"\\x92\\xcb" + arrival.pack(time.time())
+    os.writev(fd, [record.pack(len(head) + len(raw), crc32(raw, crc32(head))), head, raw])
+    body = msgpack.unpackb(raw)
+""",
+)
 
 PEER = r"""
 import math, sys, msgpack, numpy as np, zmq
@@ -108,6 +136,10 @@ while True:
         out = one(body.get("id"), body["x"], body.get("y"))
     pub.send_multipart([b"scores", msgpack.packb(out)])
 """
+
+SCRIPTS = {"floor": FLOOR, "journaled_floor": JOURNALED_FLOOR, "peer": PEER}
+KINDS = ("floor", "journaled_floor", "peer", "oddsmill")  # in the order each shape runs them
+LATENCY_KINDS = ("floor", "journaled_floor", "oddsmill")
 
 PRODUCER = r"""
 import sys, msgpack, numpy as np, zmq
@@ -193,15 +225,20 @@ class Running:
         # were left behind after every run until it was a TemporaryDirectory): removed when the
         # server stops or fails to start, and at exit if a run raised before stopping it
         self.state: tempfile.TemporaryDirectory[str] | None = None
+        self.peak = 0  # KiB, read as the server stops
         self.ingest = f"tcp://127.0.0.1:{free_port()}"
         self.scores = f"tcp://127.0.0.1:{free_port()}"
-        if kind == "floor" or kind == "peer":
-            code = FLOOR if kind == "floor" else PEER
+        self.journal_bytes = 0  # what the journaled floor had written when it stopped
+        if kind in SCRIPTS:
+            code = SCRIPTS[kind]
             if ingest_kind == "sub":
                 code = code.replace("zmq.PULL", "zmq.SUB").replace(
                     "sub.bind(sys.argv[1]);", "sub.bind(sys.argv[1]); sub.setsockopt(zmq.SUBSCRIBE, b'events');"
                 )
             cmd = [sys.executable, "-c", code, self.ingest, self.scores]
+            if kind == "journaled_floor":
+                self.state = tempfile.TemporaryDirectory(prefix="oddsmill-bench-")
+                cmd.append(self.state.name)
             stream = "stdout"
         else:
             self.state = tempfile.TemporaryDirectory(prefix="oddsmill-bench-")
@@ -227,59 +264,85 @@ class Running:
                 threading.Thread(target=pipe.read, daemon=True).start()
 
     def stop(self) -> int:
-        peak = peak_memory_kib(self.proc.pid)
-        self.proc.terminate()
-        self.proc.wait(20)
+        """Stop the server (killed if it does not stop within 20 s) and remove its state directory;
+        its peak memory, KiB. Again after it stopped: nothing more."""
+        if self.proc.poll() is None:
+            self.peak = peak_memory_kib(self.proc.pid)
+            self.proc.terminate()
+            try:
+                self.proc.wait(20)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(20)
         self._remove_state()
-        return peak
+        return self.peak
 
     def _remove_state(self) -> None:
         if self.state is not None:
+            self.journal_bytes = sum(f.stat().st_size for f in Path(self.state.name).iterdir())
             self.state.cleanup()
+            self.state = None
+
+
+def _tidy(server: Running, producer: subprocess.Popen[str] | None, ctx: zmq.Context[Any]) -> None:
+    """After a run, and when one fails (a server silent, a producer stuck): no process of it left
+    running, no socket open, no state directory left. (A failed run once left its servers running
+    after the bench had exited.)"""
+    if producer is not None and producer.poll() is None:
+        producer.kill()
+        producer.wait(20)
+    ctx.destroy(linger=0)
+    server.stop()
 
 
 def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
     server = Running(kind, "pull")
     ctx: zmq.Context[Any] = zmq.Context()
-    sub = ctx.socket(zmq.SUB)
-    sub.setsockopt(zmq.RCVHWM, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"scores")
-    sub.connect(server.scores)
-    probe = ctx.socket(zmq.PUSH)
-    probe.connect(server.ingest)
-    x = dict(zip(FEATURES, [0.0] * 20, strict=True))
-    while True:  # the subscription is in place once a probe's score comes back
-        probe.send_multipart([b"events", msgpack.packb({"x": x})])
-        if sub.poll(100):
-            break
-    while sub.poll(300):
-        sub.recv_multipart()
-    probe.close(0)
-    producer = subprocess.Popen(
-        [sys.executable, "-c", PRODUCER, server.ingest, shape, str(n)],
-        stdin=subprocess.PIPE,
-        stdout=subprocess.PIPE,
-        text=True,
-    )
-    assert producer.stdout is not None and producer.stdin is not None
-    producer.stdout.readline()  # "ready": its messages are packed
-    per_message = 1 if shape == "one" else BLOCK
-    messages = (n + per_message - 1) // per_message
-    got = 0
-    first = time.perf_counter()
-    producer.stdin.write("go\n")
-    producer.stdin.flush()
-    while got < messages:
-        if not sub.poll(60_000):
-            raise RuntimeError(f"{kind}, {shape}: {got} of {messages} answers, then silence")
-        sub.recv_multipart()
-        got += 1
-    last = time.perf_counter()
-    producer.wait(60)
-    sub.close(0)
-    ctx.term()
-    peak = server.stop()
-    return {"events_per_s": n / (last - first), "peak_memory_mib": peak / 1024}
+    producer: subprocess.Popen[str] | None = None
+    try:
+        sub = ctx.socket(zmq.SUB)
+        sub.setsockopt(zmq.RCVHWM, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"scores")
+        sub.connect(server.scores)
+        probe = ctx.socket(zmq.PUSH)
+        probe.connect(server.ingest)
+        x = dict(zip(FEATURES, [0.0] * 20, strict=True))
+        while True:  # the subscription is in place once a probe's score comes back
+            probe.send_multipart([b"events", msgpack.packb({"x": x})])
+            if sub.poll(100):
+                break
+            if server.proc.poll() is not None:
+                raise RuntimeError(f"{kind}, {shape}: the server exited ({server.proc.returncode})")
+        while sub.poll(300):
+            sub.recv_multipart()
+        probe.close(0)
+        producer = subprocess.Popen(
+            [sys.executable, "-c", PRODUCER, server.ingest, shape, str(n)],
+            stdin=subprocess.PIPE,
+            stdout=subprocess.PIPE,
+            text=True,
+        )
+        assert producer.stdout is not None and producer.stdin is not None
+        producer.stdout.readline()  # "ready": its messages are packed
+        per_message = 1 if shape == "one" else BLOCK
+        messages = (n + per_message - 1) // per_message
+        got = 0
+        first = time.perf_counter()
+        producer.stdin.write("go\n")
+        producer.stdin.flush()
+        while got < messages:
+            if not sub.poll(SILENCE_MS):
+                raise RuntimeError(f"{kind}, {shape}: {got} of {messages} answers, then silence")
+            sub.recv_multipart()
+            got += 1
+        last = time.perf_counter()
+        producer.wait(60)
+    finally:
+        _tidy(server, producer, ctx)
+    out = {"events_per_s": n / (last - first), "peak_memory_mib": server.peak / 1024}
+    if kind == "journaled_floor":
+        out["journal_bytes"] = server.journal_bytes
+    return out
 
 
 def cpu_seconds(pid: int) -> float:
@@ -293,41 +356,42 @@ def latency(kind: str, rate: float, seconds: float) -> tuple[np.ndarray, float]:
     this process receives the scores. Also the server's CPU time over the load, a message."""
     server = Running(kind, "sub")
     ctx: zmq.Context[Any] = zmq.Context()
-    sub = ctx.socket(zmq.SUB)
-    sub.setsockopt(zmq.RCVHWM, 0)
-    sub.setsockopt(zmq.SUBSCRIBE, b"scores")
-    sub.connect(server.scores)
+    producer: subprocess.Popen[str] | None = None
     n = int(rate * seconds)
-    with tempfile.TemporaryDirectory(prefix="oddsmill-bench-") as tmp:
-        times = Path(tmp) / "sent.npy"
-        producer = subprocess.Popen(
-            [sys.executable, "-c", LATENCY_PRODUCER, server.ingest, str(rate), str(n), str(times)],
-            stdin=subprocess.PIPE,
-            stdout=subprocess.PIPE,
-            text=True,
-        )
-        assert producer.stdin is not None and producer.stdout is not None
-        if not sub.poll(60_000):  # a probe's score: the whole path is up
-            raise RuntimeError(f"{kind}: no score for the latency producer's probes")
-        cpu_before = cpu_seconds(server.proc.pid)
-        producer.stdin.write("go\n")  # (the probes' scores still in flight are skipped by their id)
-        producer.stdin.flush()
-        arrived = np.full(n, np.nan)
-        got = 0
-        while got < n and sub.poll(5000):
-            _, raw = sub.recv_multipart()
-            now = time.perf_counter()
-            ident = msgpack.unpackb(raw)["id"]
-            if isinstance(ident, int) and 0 <= ident < n:
-                arrived[ident] = now
-                got += 1
-        cpu = cpu_seconds(server.proc.pid) - cpu_before
-        producer.stdout.readline()  # "done": the send times are written
-        producer.wait(30)
-        sent = np.load(times)
-    sub.close(0)
-    ctx.term()
-    server.stop()
+    try:
+        sub = ctx.socket(zmq.SUB)
+        sub.setsockopt(zmq.RCVHWM, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"scores")
+        sub.connect(server.scores)
+        with tempfile.TemporaryDirectory(prefix="oddsmill-bench-") as tmp:
+            times = Path(tmp) / "sent.npy"
+            producer = subprocess.Popen(
+                [sys.executable, "-c", LATENCY_PRODUCER, server.ingest, str(rate), str(n), str(times)],
+                stdin=subprocess.PIPE,
+                stdout=subprocess.PIPE,
+                text=True,
+            )
+            assert producer.stdin is not None and producer.stdout is not None
+            if not sub.poll(SILENCE_MS):  # a probe's score: the whole path is up
+                raise RuntimeError(f"{kind}: no score for the latency producer's probes")
+            cpu_before = cpu_seconds(server.proc.pid)
+            producer.stdin.write("go\n")  # (the probes' scores still in flight are skipped by their id)
+            producer.stdin.flush()
+            arrived = np.full(n, np.nan)
+            got = 0
+            while got < n and sub.poll(5000):
+                _, raw = sub.recv_multipart()
+                now = time.perf_counter()
+                ident = msgpack.unpackb(raw)["id"]
+                if isinstance(ident, int) and 0 <= ident < n:
+                    arrived[ident] = now
+                    got += 1
+            cpu = cpu_seconds(server.proc.pid) - cpu_before
+            producer.stdout.readline()  # "done": the send times are written
+            producer.wait(30)
+            sent = np.load(times)
+    finally:
+        _tidy(server, producer, ctx)
     done = ~np.isnan(arrived)
     return np.asarray(arrived[done] - sent[done]), cpu / n
 
@@ -337,7 +401,7 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
     for shape in shapes:
         n = events * EVENTS_SCALE[shape]
         row: dict[str, Any] = {}
-        for kind in ("floor", "peer", "oddsmill"):
+        for kind in KINDS:
             row[kind] = throughput(kind, shape, events * PEER_SCALE[shape] if kind == "peer" else n)
             print(f"  {shape:<6} {kind:<9} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
         if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
@@ -362,12 +426,14 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
             row["race_pairs"] = [{"single": s, "race": r, "ratio": r / s} for s, r in pairs]
             row["race_to_oddsmill"] = float(np.median(ratios))
         row["oddsmill_to_floor"] = row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
+        row["journaled_floor_to_floor"] = row["journaled_floor"]["events_per_s"] / row["floor"]["events_per_s"]
+        row["oddsmill_to_journaled_floor"] = row["oddsmill"]["events_per_s"] / row["journaled_floor"]["events_per_s"]
         row["oddsmill_to_peer"] = row["oddsmill"]["events_per_s"] / row["peer"]["events_per_s"]
         result["throughput"][shape] = row
-    runs: dict[str, list[np.ndarray]] = {"floor": [], "oddsmill": []}
-    cpus: dict[str, list[float]] = {"floor": [], "oddsmill": []}
+    runs: dict[str, list[np.ndarray]] = {kind: [] for kind in LATENCY_KINDS}
+    cpus: dict[str, list[float]] = {kind: [] for kind in LATENCY_KINDS}
     for _ in range(LATENCY_ROUNDS):
-        for kind in ("floor", "oddsmill"):
+        for kind in LATENCY_KINDS:
             lat, cpu = latency(kind, rate, seconds)
             runs[kind].append(lat)
             cpus[kind].append(cpu)
@@ -384,6 +450,8 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
     lat_r["median_ratio"] = lat_r["oddsmill"]["median_ms"] / lat_r["floor"]["median_ms"]
     lat_r["p99_ratio"] = lat_r["oddsmill"]["p99_ms"] / lat_r["floor"]["p99_ms"]
     lat_r["cpu_ratio"] = lat_r["oddsmill"]["cpu_us_per_message"] / lat_r["floor"]["cpu_us_per_message"]
+    lat_r["journaled_floor_median_ratio"] = lat_r["journaled_floor"]["median_ms"] / lat_r["floor"]["median_ms"]
+    lat_r["journaled_floor_p99_ratio"] = lat_r["journaled_floor"]["p99_ms"] / lat_r["floor"]["p99_ms"]
     lat_r["offered_events_per_s"] = rate
     return result
 
@@ -391,17 +459,20 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
 def report(result: dict[str, Any], out: Any) -> None:
     print("\nthroughput (events/s; side by side in this run)", file=out)
     print(
-        f"  {'shape':<8}{'floor':>12}{'peer':>12}{'oddsmill':>12}{'/floor':>9}{'/peer':>9}  peak MiB (oddsmill)",
+        f"  {'shape':<8}{'floor':>12}{'journaled':>12}{'peer':>12}{'oddsmill':>12}"
+        f"{'/floor':>9}{'/journaled':>11}{'/peer':>9}  peak MiB (oddsmill)",
         file=out,
     )
     names = {"one": "one", "batch": "batch500", "cols": "cols500"}
     for shape, row in result["throughput"].items():
+        rates = "".join(f"{row[kind]['events_per_s']:>12,.0f}" for kind in KINDS)
         print(
-            f"  {names[shape]:<8}{row['floor']['events_per_s']:>12,.0f}{row['peer']['events_per_s']:>12,.0f}"
-            f"{row['oddsmill']['events_per_s']:>12,.0f}{row['oddsmill_to_floor']:>8.2f}x{row['oddsmill_to_peer']:>8.1f}x"
+            f"  {names[shape]:<8}{rates}{row['oddsmill_to_floor']:>8.2f}x"
+            f"{row['oddsmill_to_journaled_floor']:>10.2f}x{row['oddsmill_to_peer']:>8.1f}x"
             f"  {row['oddsmill']['peak_memory_mib']:.0f}",
             file=out,
         )
+    print("  (journaled: the floor writing each message to a journal first, as oddsmill does)", file=out)
     cols = result["throughput"].get("cols")
     if cols is not None:
         print(
@@ -412,16 +483,21 @@ def report(result: dict[str, Any], out: Any) -> None:
         )
     lat = result["latency"]
     print(f"\nscore latency at {lat['offered_events_per_s']:,.0f} events/s offered, one event a message:", file=out)
-    for kind in ("floor", "oddsmill"):
+    for kind in LATENCY_KINDS:
         r = lat[kind]
         print(
-            f"  {kind:<9} received {r['received']:>7,}  median {r['median_ms']:.3f} ms  p99 {r['p99_ms']:.3f} ms"
-            f"  server CPU {r['cpu_us_per_message']:.0f} us a message",
+            f"  {kind.replace('_', ' '):<16} received {r['received']:>7,}  median {r['median_ms']:.3f} ms"
+            f"  p99 {r['p99_ms']:.3f} ms  server CPU {r['cpu_us_per_message']:.0f} us a message",
             file=out,
         )
     print(
         f"  oddsmill / floor: median {lat['median_ratio']:.2f}x, p99 {lat['p99_ratio']:.2f}x,"
         f" CPU a message {lat['cpu_ratio']:.2f}x",
+        file=out,
+    )
+    print(
+        f"  journaled floor / floor: median {lat['journaled_floor_median_ratio']:.2f}x,"
+        f" p99 {lat['journaled_floor_p99_ratio']:.2f}x",
         file=out,
     )
 

@@ -800,7 +800,9 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--png", action="store_true", help="also FILE.png: the log-loss and reliability charts")
     rp.set_defaults(func=cmd_report)
 
-    b = sub.add_parser("bench", help="throughput and latency against the I/O floor and a river peer, side by side")
+    b = sub.add_parser(
+        "bench", help="throughput and latency against the I/O floor (bare and journaled) and a river peer, side by side"
+    )
     b.add_argument(
         "--events", type=int, default=20_000, help="events for one-a-message (x5 for batches, x50 for columnar blocks)"
     )
