@@ -126,6 +126,55 @@ def start(state: Path, ingest: str, scores: str, *extra: str) -> subprocess.Pope
     return proc
 
 
+def test_a_state_directory_in_use_is_refused_and_left_as_it_was(tmp_path: Path) -> None:
+    """A second daemon on a directory a daemon serves, and a replay that would write its checkpoint
+    there, are refused (exit 2, naming the holder's pid) before they read or cut anything: two
+    daemons on one journal would interleave two streams in it, and each could cut the other's
+    unfinished record as a torn tail. Once the first has stopped, the directory is free."""
+    state = tmp_path / "state"
+    first = start(state, f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}", "--http", "off")
+    before = {p.name: p.read_bytes() for p in state.iterdir()}
+    assert (state / "lock").read_text().strip() == str(first.pid)
+    log = tmp_path / "log.jsonl"
+    log.write_text('{"x": {"f": 1.0}, "y": 1}\n{"x": {"f": -1.0}, "y": 0}\n')
+    refused = f"the state directory {state} is in use by another oddsmill process (pid {first.pid})"
+    try:
+        for cmd in (
+            ["serve", "--state", str(state), "--ingest", f"tcp://127.0.0.1:{free_port()}", "--http", "off"],
+            ["replay", str(log), "--state", str(state)],
+            ["replay", str(log), "--state", str(state), "--candidates", "auto"],
+        ):
+            done = subprocess.run(
+                [sys.executable, "-m", "oddsmill.cli", *cmd], capture_output=True, text=True, timeout=120
+            )
+            assert done.returncode == 2 and refused in done.stderr, (cmd, done.returncode, done.stderr)
+            assert {p.name: p.read_bytes() for p in state.iterdir()} == before
+    finally:
+        first.terminate()
+        assert first.wait(30) == 0
+    done = subprocess.run(
+        [sys.executable, "-m", "oddsmill.cli", "replay", str(log), "--state", str(state)],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert done.returncode == 0, done.stderr
+
+
+def test_a_state_directory_that_cannot_be_made_is_a_clear_error(tmp_path: Path) -> None:
+    """`serve --state` under a path that is a file: exit 2 and one line that says why (it was a
+    traceback from the directory's creation before the state directory had a holder)."""
+    (tmp_path / "a-file").write_text("")
+    done = subprocess.run(
+        [sys.executable, "-m", "oddsmill.cli", "serve", "--state", str(tmp_path / "a-file" / "s"), "--http", "off"],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+    assert done.returncode == 2
+    assert done.stderr == f"oddsmill: cannot use the state directory {tmp_path / 'a-file' / 's'}: Not a directory\n"
+
+
 def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Path) -> None:
     ingest, scores = f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}"
     ctx: zmq.Context[Any] = zmq.Context()

@@ -142,7 +142,7 @@ def read_config(path: str) -> dict[str, Any]:
 # -- replay ----------------------------------------------------------------------------------------
 def cmd_replay(args: argparse.Namespace) -> int:
     from .offline import new_engine, replay
-    from .storage import write_checkpoint
+    from .storage import hold_state_dir, write_checkpoint
 
     if args.epochs < 1:
         raise UsageError(f"--epochs must be >= 1, got {args.epochs}")
@@ -150,9 +150,12 @@ def cmd_replay(args: argparse.Namespace) -> int:
     candidates = candidates_of(args, settings)
     if candidates:
         return replay_race(args, candidates, window)
+    state = Path(args.state)
+    if state.exists():  # a directory a daemon serves is refused before the replay, not after it
+        hold_state_dir(state)
     engine, tail = new_engine(settings, args.epochs, given, window=window)
     report = replay(engine, args.logs, args.epochs, tail)
-    state = Path(args.state)
+    hold_state_dir(state)
     path = write_checkpoint(state, engine.learner.step, checkpoint_state(engine))
     m = engine.metrics
     rej = sum(engine.counters.rejected.values())
@@ -172,14 +175,17 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
     """`replay --candidates`: the race on a log, offline; the table, and a checkpoint serve resumes."""
     from .offline import read_items, run_logs
     from .race import Race
-    from .storage import write_checkpoint
+    from .storage import hold_state_dir, write_checkpoint
 
     if args.epochs != 1:
         raise UsageError("--candidates races over one pass of the logs: leave out --epochs")
+    if Path(args.state).exists():
+        hold_state_dir(Path(args.state))
     race = Race(candidates, window)
     run_logs(race, read_items(args.logs))
     state = checkpoint_state(race.engine)
     state["race"] = race.state_dict(compact=True)
+    hold_state_dir(Path(args.state))
     path = write_checkpoint(Path(args.state), race.engine.learner.step, state)
     if args.json:
         print(json.dumps({"candidates": race.table(), "switches": race.switches}, indent=2))

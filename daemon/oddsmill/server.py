@@ -47,9 +47,11 @@ from .storage import (
     KEEP,
     JournalWriter,
     Read,
+    hold_state_dir,
     list_journal,
     load_newest,
     read_journal,
+    release_state_dir,
     write_checkpoint,
 )
 from .vocabulary import Vocabulary
@@ -327,7 +329,7 @@ class Server:
     # -- state -----------------------------------------------------------------------------------
     def _load(self, learner: LearnerSettings) -> tuple[Engine, int, dict[str, Any] | None]:
         s = self.settings
-        s.state_dir.mkdir(parents=True, exist_ok=True)
+        hold_state_dir(s.state_dir)  # before anything is read or cut: no other process serves it
         found = load_newest(s.state_dir)
         if found is None:
             if s.candidates:
@@ -628,8 +630,14 @@ class Server:
                 httpd.server_close()
             if auth is not None:
                 auth.stop()
+        self.close()
+
+    def close(self) -> None:
+        """Close the journal (unless an outage has abandoned it) and let go of the state directory:
+        another process may serve it now. `serve` ends with it."""
         if self.outage is None:
             self.journal.close()
+        release_state_dir(self.settings.state_dir)
 
     def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any]) -> None:
         """One block: journal, then score and learn, then publish, in arrival order. While the state

@@ -15,6 +15,7 @@ A torn or corrupt tail ends the readable part of a segment at the last good reco
 
 from __future__ import annotations
 
+import fcntl
 import hashlib
 import logging
 import os
@@ -34,7 +35,7 @@ import numpy as np
 # standard library's zlib.crc32 here (measured); test_storage checks that the two agree
 from zlib_ng.zlib_ng import crc32
 
-from .errors import CheckpointError, JournalError
+from .errors import CheckpointError, ConfigError, JournalError
 from .fastpath import read_batch
 from .protocol import Columns
 
@@ -106,6 +107,50 @@ def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
     if not isinstance(state, dict):
         raise CheckpointError(f"{name}: payload is not a map")
     return state
+
+
+# -- the state directory's holder ------------------------------------------------------------------
+LOCK_NAME = "lock"
+_HELD: dict[Path, int] = {}  # state directories this process holds: each one's lock descriptor
+
+
+def hold_state_dir(state_dir: Path) -> None:
+    """Hold `state_dir` for this process until it exits (the exclusive flock of its file "lock",
+    which holds the holder's pid): another process that asks is refused with a ConfigError naming
+    the holder. Two daemons on one directory would append two streams to one journal, each could
+    cut the other's unfinished record as a torn tail, and a replay writing its checkpoint there
+    would be resumed from with the daemon's journal after it. The operating system lets go when the
+    process ends, however it ends. Asking again in the same process holds nothing more."""
+    key = state_dir.resolve()
+    if key in _HELD:
+        return
+    try:
+        state_dir.mkdir(parents=True, exist_ok=True)
+        fd = os.open(state_dir / LOCK_NAME, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
+    except OSError as e:
+        raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+    except BlockingIOError:
+        holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "unknown"
+        os.close(fd)
+        raise ConfigError(
+            f"the state directory {state_dir} is in use by another oddsmill process (pid {holder}):"
+            " stop it first, or give another --state"
+        ) from None
+    except OSError as e:
+        os.close(fd)
+        raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+    _HELD[key] = fd
+
+
+def release_state_dir(state_dir: Path) -> None:
+    """Let go of `state_dir` (held by `hold_state_dir`): another process may take it now."""
+    fd = _HELD.pop(state_dir.resolve(), None)
+    if fd is not None:
+        os.close(fd)
 
 
 def _fsync_dir(path: Path) -> None:
