@@ -403,7 +403,8 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
         row: dict[str, Any] = {}
         for kind in KINDS:
             row[kind] = throughput(kind, shape, events * PEER_SCALE[shape] if kind == "peer" else n)
-            print(f"  {shape:<6} {kind:<9} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
+            label = kind.replace("_", " ")
+            print(f"  {shape:<6} {label:<15} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
         if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
             # One pair of runs moves by 20% either way on this shared machine (a single learner
             # alone went from 590k to 870k events/s in six runs): the ratio is the median of
@@ -414,7 +415,7 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
                 race = throughput("race", shape, n)
                 pairs.append((single["events_per_s"], race["events_per_s"]))
                 print(
-                    f"  {shape:<6} {'race of 9':<9} {race['events_per_s']:>12,.0f} events/s"
+                    f"  {shape:<6} {'race of 9':<15} {race['events_per_s']:>12,.0f} events/s"
                     f" ({race['events_per_s'] / single['events_per_s']:.2f}x the single learner's"
                     f" {single['events_per_s']:,.0f} beside it)",
                     file=out,
