@@ -254,3 +254,54 @@ def test_held_requests_keep_their_scores_and_leave_the_garbage_collectors_sight(
     first = scores[0].logit  # type: ignore[union-attr]
     assert eng.metrics.count == 1  # P50's outcome, scored with the score published for it:
     assert eng.metrics.sum == pytest.approx(np.logaddexp(0.0, first) - first)
+
+
+def test_a_state_directory_is_held_once_a_process_and_let_go(tmp_path: Path) -> None:
+    """hold_state_dir: the lock file names this process; asking again in it holds nothing more;
+    another process is refused while it holds, and takes the directory once it has let go."""
+    import os
+    import subprocess
+    import sys
+
+    from oddsmill import storage
+
+    state = tmp_path / "s"
+    other = [
+        sys.executable,
+        "-c",
+        "import sys; from pathlib import Path; from oddsmill.storage import hold_state_dir; "
+        "hold_state_dir(Path(sys.argv[1])); print('held')",
+        str(state),
+    ]
+    storage.hold_state_dir(state)
+    try:
+        storage.hold_state_dir(state)  # again: nothing more
+        assert (state / storage.LOCK_NAME).read_text() == f"{os.getpid()}\n"
+        refused = subprocess.run(other, capture_output=True, text=True, timeout=60)
+        assert refused.returncode == 1 and f"in use by another oddsmill process (pid {os.getpid()})" in refused.stderr
+    finally:
+        storage.release_state_dir(state)
+    taken = subprocess.run(other, capture_output=True, text=True, timeout=60)
+    assert taken.returncode == 0 and taken.stdout == "held\n", taken.stderr
+
+
+def test_a_file_system_without_locks_is_warned_of_not_refused(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    import errno
+    import os
+
+    from oddsmill import storage
+
+    def no_locks(fd: int, op: int) -> None:
+        raise OSError(errno.ENOLCK, "No locks available")
+
+    monkeypatch.setattr(storage.fcntl, "flock", no_locks)
+    state = tmp_path / "s"
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        storage.hold_state_dir(state)
+    try:
+        assert any("does not take locks (No locks available)" in r.getMessage() for r in caplog.records)
+        assert (state / storage.LOCK_NAME).read_text() == f"{os.getpid()}\n"
+    finally:
+        storage.release_state_dir(state)

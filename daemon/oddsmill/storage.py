@@ -15,6 +15,7 @@ A torn or corrupt tail ends the readable part of a segment at the last good reco
 
 from __future__ import annotations
 
+import errno
 import fcntl
 import hashlib
 import logging
@@ -111,6 +112,7 @@ def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
 
 # -- the state directory's holder ------------------------------------------------------------------
 LOCK_NAME = "lock"
+_NO_LOCKS = {errno.ENOLCK, errno.EOPNOTSUPP, errno.ENOSYS}  # a file system without flock: warned, not refused
 _HELD: dict[Path, int] = {}  # state directories this process holds: each one's lock descriptor
 
 
@@ -131,8 +133,6 @@ def hold_state_dir(state_dir: Path) -> None:
         raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        os.ftruncate(fd, 0)
-        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
     except BlockingIOError:
         holder = os.pread(fd, 32, 0).decode("ascii", "replace").strip() or "unknown"
         os.close(fd)
@@ -140,6 +140,18 @@ def hold_state_dir(state_dir: Path) -> None:
             f"the state directory {state_dir} is in use by another oddsmill process (pid {holder}):"
             " stop it first, or give another --state"
         ) from None
+    except OSError as e:
+        if e.errno not in _NO_LOCKS:
+            os.close(fd)
+            raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+        log.warning(
+            "the file system of %s does not take locks (%s): a second process on it will not be refused",
+            state_dir,
+            e.strerror or e,
+        )
+    try:
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
     except OSError as e:
         os.close(fd)
         raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
