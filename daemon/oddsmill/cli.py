@@ -148,11 +148,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
         raise UsageError(f"--epochs must be >= 1, got {args.epochs}")
     settings, given, window = learner_settings(args)
     candidates = candidates_of(args, settings)
-    if candidates:
-        return replay_race(args, candidates, window)
     state = Path(args.state)
     if state.exists():  # a directory a daemon serves is refused before the replay, not after it
         hold_state_dir(state)
+    if candidates:
+        return replay_race(args, candidates, window)
     engine, tail = new_engine(settings, args.epochs, given, window=window)
     report = replay(engine, args.logs, args.epochs, tail)
     hold_state_dir(state)
@@ -179,8 +179,6 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
 
     if args.epochs != 1:
         raise UsageError("--candidates races over one pass of the logs: leave out --epochs")
-    if Path(args.state).exists():
-        hold_state_dir(Path(args.state))
     race = Race(candidates, window)
     run_logs(race, read_items(args.logs))
     state = checkpoint_state(race.engine)
