@@ -49,6 +49,9 @@ def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     assert lat["floor"]["received"] == lat["journaled_floor"]["received"] == LATENCY_ROUNDS * 1000
     assert lat["oddsmill"]["received"] == LATENCY_ROUNDS * 1000
     assert len(lat["oddsmill"]["rounds_median_ms"]) == LATENCY_ROUNDS
+    assert lat["median_ratio_rounds"] == [
+        o / f for o, f in zip(lat["oddsmill"]["rounds_median_ms"], lat["floor"]["rounds_median_ms"], strict=True)
+    ]
     assert 0 < lat["floor"]["median_ms"] <= lat["floor"]["p99_ms"]
     # the servers' CPU over the load, from /proc (clock ticks of 10 ms: about 7 of them for the floor)
     assert lat["floor"]["cpu_us_per_message"] > 0 and lat["oddsmill"]["cpu_us_per_message"] > 0
