@@ -130,7 +130,7 @@ def hold_state_dir(state_dir: Path) -> None:
         state_dir.mkdir(parents=True, exist_ok=True)
         fd = os.open(state_dir / LOCK_NAME, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)
     except OSError as e:
-        raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+        raise _unusable(state_dir, e) from None
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:
@@ -143,7 +143,7 @@ def hold_state_dir(state_dir: Path) -> None:
     except OSError as e:
         if e.errno not in _NO_LOCKS:
             os.close(fd)
-            raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+            raise _unusable(state_dir, e) from None
         log.warning(
             "the file system of %s does not take locks (%s): a second process on it will not be refused",
             state_dir,
@@ -154,8 +154,12 @@ def hold_state_dir(state_dir: Path) -> None:
         os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
     except OSError as e:
         os.close(fd)
-        raise ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}") from None
+        raise _unusable(state_dir, e) from None
     _HELD[key] = fd
+
+
+def _unusable(state_dir: Path, e: OSError) -> ConfigError:
+    return ConfigError(f"cannot use the state directory {state_dir}: {e.strerror or e}")
 
 
 def release_state_dir(state_dir: Path) -> None:
