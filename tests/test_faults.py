@@ -184,6 +184,33 @@ def test_a_failed_background_fsync_is_noticed_and_nothing_accepted_is_lost(
     assert server.engine.learner.step == len(sent)
 
 
+def test_records_are_synced_when_traffic_stops(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """With fsync = "interval", a block journaled while the last background fsync is still running
+    starts none of its own. When no block follows (traffic stops), the loop's chores start the due
+    fsync: the records become safe without waiting for the next message or the next checkpoint (a
+    minute by default). Found when the failing-fsync test above waited 20 s in vain for its outage
+    under CI's load: its last blocks had come while a slow fsync ran, and nothing synced them."""
+    real_fsync = os.fsync
+
+    def slow_fsync(fd: int) -> None:  # a slow disk: the first block's fsync outlasts the second block
+        time.sleep(0.3)
+        real_fsync(fd)
+
+    settings = loopback(tmp_path, http="127.0.0.1:0", fsync="interval", fsync_ms=1.0)
+    running, _, client = serving(settings, LearnerSettings(scale_warmup=100))
+    server = running.server
+    monkeypatch.setattr(storage.os, "fsync", slow_fsync)
+    a, b = [x for x in bodies(50, seed=3) if "x" in x and "y" in x][:2]
+    client.send(a)
+    client.receive(1)  # its block started a background fsync, which takes 0.3 s
+    client.send(b)
+    client.receive(1)  # its block found that fsync in flight, and started none
+    assert server.base_records < server.records
+    wait_for("the records synced", lambda: server.base_records == server.records, timeout=5.0)
+    client.close()
+    running.close()
+
+
 @pytest.fixture
 def small_disk(tmp_path: Path) -> Iterator[Path]:
     """A 600 KiB tmpfs: a disk that fills. Mounting needs root (CI runs as root here)."""

@@ -607,6 +607,11 @@ class Server:
                 chores = now + CHORES_SECONDS
                 if s.fsync == "interval":
                     self._collect_sync()  # a finished background fsync: its records are safe, or it failed
+                    if self.outage is None and self.records > self.base_records:
+                        # records no fsync has covered: a block starts one when due, but a block that
+                        # came while one was in flight started none, and when traffic stops no block
+                        # follows; without this they waited for the next message or checkpoint
+                        self._sync_in_background()
                 self.board.heartbeat = time.time()
                 if self.outage is not None and time.monotonic() - self.last_retry >= RETRY_SECONDS:
                     self._recover()
