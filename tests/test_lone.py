@@ -44,6 +44,7 @@ def run_server(state: Path, blocks: list[list[list[bytes]]], small_paths: bool, 
     server = Server(ServerSettings(state_dir=state, pending_limit=5, pending_ttl=30.0), LearnerSettings(scale_warmup=4))
     if not small_paths:
         monkeypatch.setattr(server, "_quick", lambda *a: False)
+        monkeypatch.setattr(server, "_columnar", lambda *a: False)
         monkeypatch.setattr(server, "_lone", lambda *a: [None])
     pub = Recorder()
     for k, block in enumerate(blocks):
@@ -81,7 +82,11 @@ KINDS = [
     "three_frames",
     "batch",
     "cols",  # a columnar block with a scoring request (held): the full path
-    "cols_plain",  # every row labelled: Server._columns once its names are known
+    "cols_plain",  # every row labelled: Server._columnar once its names are known (with ids: _columns)
+    "cols_long",  # 40 rows (the score body's longer msgpack headers)
+    "cols_other_order",  # the names in another order: another run of the block
+    "cols_numbered",  # src and seq (one repeated: a duplicate)
+    "cols_nan",  # a NaN among the rows: refused by the full path
 ]
 messages = st.sampled_from(KINDS)
 
@@ -128,6 +133,15 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
             body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 0, 1])}
             if i % 2:
                 body["id"] = [f"C{i}-{r}" for r in range(4)]
+        elif kind in ("cols_long", "cols_other_order", "cols_numbered", "cols_nan"):
+            m = 40 if kind == "cols_long" else 3
+            rows = rng.normal(size=(m, 3)) * 3
+            if kind == "cols_nan":
+                rows[1, 2] = np.nan
+            names = NAMES[::-1] if kind == "cols_other_order" else NAMES
+            body = {"cols": names, "rows": rows.astype("<f8").tobytes(), "y": bytes(rng.integers(0, 2, m).tolist())}
+            if kind == "cols_numbered":
+                body.update(src="depot-feed", seq=i // 2)
         else:
             rows = rng.normal(size=(3, 3))
             body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 255]), "id": [1, 2, 3]}
@@ -172,7 +186,8 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     for at in rng.integers(0, 600, size=60).tolist():
         kinds[at] = str(rng.choice(KINDS))
     msgs = build(kinds, 3)
-    lone_columns = build(["cols_plain"] * 12, 4)
+    lone_columns = build(["cols_plain"] * 12, 4)  # (those with ids, at odd positions: Server._columns)
+    columns = build(["cols_plain", "cols_long", "cols_numbered", "cols_other_order"] * 9, 5)
     blocks, at = [], 0
     while at < len(msgs):
         n = int(rng.integers(1, 9))
@@ -180,8 +195,11 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         at += n
         if lone_columns and len(blocks) % 8 == 0:
             blocks.append([lone_columns.pop()])  # a columnar block alone
-    taken = {"_quick": 0, "_lone": 0, "_columns": 0, "learn": 0}  # (learn: quick.py's compiled learning)
-    originals = {name: getattr(Server, name) for name in ("_quick", "_lone", "_columns")}
+        if columns and len(blocks) % 8 == 4:
+            blocks.append(columns[-3:])  # columnar blocks together
+            del columns[-3:]
+    taken = {"_quick": 0, "_lone": 0, "_columns": 0, "_columnar": 0, "learn": 0}  # (learn: quick.py's)
+    originals = {name: getattr(Server, name) for name in ("_quick", "_lone", "_columns", "_columnar")}
     learn = Known.learn
 
     def learn_counted(self: Any, *a: Any) -> Any:
@@ -191,7 +209,7 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     def counting(name: str) -> Any:
         def counted(self: Any, *a: Any) -> Any:
             done = originals[name](self, *a)
-            taken[name] += done is True or done == []  # (True: _quick's and _columns' "done", []: _lone's)
+            taken[name] += done is True or done == []  # (True: _quick's, _columnar's and _columns' "done", []: _lone's)
             return done
 
         return counted
@@ -206,7 +224,8 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         Known.learn = learn  # type: ignore[method-assign]
         for name, f in originals.items():
             setattr(Server, name, f)
-    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5 and taken["_columns"] >= 8, taken
+    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5 and taken["_columns"] >= 4, taken
+    assert taken["_columnar"] >= 8, taken
     with pytest.MonkeyPatch.context() as mp:
         full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
     assert len(fast_frames) > 1000 and fast_frames == full_frames
@@ -353,9 +372,10 @@ def test_unpacked_bodies_are_not_read_twice(tmp_path: Path) -> None:
     server.journal.close()
 
 
-@pytest.mark.parametrize("fail_at", [3, 4], ids=["quick-block", "lone-block"])
+@pytest.mark.parametrize("fail_at", [3, 4, 12], ids=["quick-block", "lone-block", "columnar-block"])
 def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_path: Path, fail_at: int) -> None:
-    """The journal's write fails at a block the quick path (3) or the lone path (4) would take:
+    """The journal's write fails at a block the quick path (3), the lone path (4) or the columnar
+    path (12) would take:
     the block is scored with the model as it stands and held, the next one too; once writes
     succeed again the held blocks are journaled and learned. Published frames, journal and state
     equal those of the full path under the same failure."""
@@ -365,6 +385,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
 
     kinds = [["train"] * 3, ["train_id"] * 2, ["request"], ["train", "train"], ["request", "train_id"]]
     kinds += [["train"] * 2, ["outcome"], ["train_id"] * 3, ["request"], ["train"] * 4]
+    kinds += [["cols_long"], ["cols_long"], ["cols_long", "cols_numbered"], ["cols_numbered"] * 2, ["cols_long"]]
     msgs = build([k for block in kinds for k in block], 8)
     blocks, at = [], 0
     for block in kinds:
@@ -380,8 +401,9 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
             if not small_paths:
                 mp.setattr(server, "_quick", lambda *a: False)
                 mp.setattr(server, "_lone", lambda *a: [None])
-            taken = {"quick": 0, "lone": 0}
-            for name in ("_quick", "_lone"):
+                mp.setattr(server, "_columnar", lambda *a: False)
+            taken = {"quick": 0, "lone": 0, "columnar": 0}
+            for name in ("_quick", "_lone", "_columnar"):
                 inner = getattr(server, name)
 
                 def counted(*a: Any, _inner: Any = inner, _name: str = name) -> Any:
@@ -408,7 +430,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
                     assert server.outage is None and not server.held
                 server.handle(block, pub)  # type: ignore[arg-type]
         if small_paths:  # the failing block went through the path under test
-            assert taken["quick" if fail_at == 3 else "lone"] >= 2, taken
+            assert taken[{3: "quick", 4: "lone", 12: "columnar"}[fail_at]] >= 2, taken
         server.journal.close()
         journal = b"".join(p.read_bytes() for p in sorted(state.glob("journal-*")))
         return server, pub.frames, journal
@@ -418,4 +440,6 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
     assert fast_frames == full_frames and len(fast_frames) > 20
     assert fast_journal == full_journal
     same_state(fast.engine, full.engine)
-    assert fast.engine.learner.step == 18  # 17 training events (the held ones too) and an outcome joined
+    # 17 training events (the held ones too) and an outcome joined, then 4 columnar blocks of 40
+    # rows and 2 of 3 (seq 12, 12 again: a duplicate, refused, and 13)
+    assert fast.engine.learner.step == 18 + 4 * 40 + 2 * 3

@@ -237,7 +237,7 @@ class Engine:
         return Score(ev.id, z, step, arrival)
 
     def train_rows(
-        self, arrival: float, slots: Sequence[int], rows: np.ndarray, y: np.ndarray
+        self, arrival: float, slots: Sequence[int] | np.ndarray, rows: np.ndarray, y: np.ndarray
     ) -> tuple[np.ndarray, int]:
         """`process` of a plain columnar block of training events (labels y, 0 or 1) whose names
         all have their slots already: what `prepare` (`_add_columns`) and `settle` do with it, so
@@ -494,16 +494,33 @@ class Engine:
         return Rejection(ident, reason, detail)
 
     def _sequence_ok(self, item: Event | Columns) -> bool:
-        """A gap counts as lost; a repeat is a duplicate. seq 0 from a known producer starts a new
-        numbering (the producer restarted) and is neither."""
-        if item.src is None or item.seq is None:
+        return self.numbered(item.src, item.seq)
+
+    def numbered(self, src: str | None, seq: int | None) -> bool:
+        """A message's number: False for a duplicate. A gap counts as lost; a repeat is a
+        duplicate. seq 0 from a known producer starts a new numbering (the producer restarted) and
+        is neither."""
+        if src is None or seq is None:
             return True
-        last = self.last_seq.get(item.src)
-        if last is not None and item.seq != 0:
-            if item.seq <= last:
+        last = self.last_seq.get(src)
+        if last is not None and seq != 0:
+            if seq <= last:
                 return False
-            self.counters.lost += item.seq - last - 1
-        self.last_seq[item.src] = item.seq
+            self.counters.lost += seq - last - 1
+        self.last_seq[src] = seq
+        return True
+
+    def in_sequence(self, numbers: list[tuple[str | None, int | None]]) -> bool:
+        """Whether messages so numbered, in order, hold no duplicate (`numbered` would take every
+        one); changes nothing."""
+        last: dict[str, int] = {}
+        for src, seq in numbers:
+            if src is None or seq is None:
+                continue
+            before = last.get(src, self.last_seq.get(src))
+            if before is not None and seq != 0 and seq <= before:
+                return False
+            last[src] = seq
         return True
 
     def _hold(self, ident: Any, entry: PendingEntry) -> int:

@@ -264,7 +264,7 @@ class Learner:
         )
         return z
 
-    def run_rows(self, slots: Sequence[int], rows: np.ndarray, y: np.ndarray) -> np.ndarray:
+    def run_rows(self, slots: Sequence[int] | np.ndarray, rows: np.ndarray, y: np.ndarray) -> np.ndarray:
         """`run` over training events that share their slots (row e: the values rows[e] at `slots`,
         label y[e], weight 1), as a columnar block's rows run (kernel.learn_rows)."""
         m = rows.shape[0]

@@ -30,6 +30,7 @@ import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry
 
+from . import columnar
 from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
@@ -58,6 +59,8 @@ from .vocabulary import Vocabulary
 
 log = logging.getLogger("oddsmill")
 
+# a columnar message's first key, as the client library and most producers pack it (cols, then rows)
+COLUMNAR_FIRST = (b"\xa4cols", b"\xa4rows")
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 CHORES_SECONDS = 0.01  # the loop's checks of time run at most this often (a few us each wake-up)
@@ -202,6 +205,9 @@ def warm_up(settings: LearnerSettings) -> None:
     if known.read([named, named]) == READ:
         known.learn(scratch.arrays(1), metrics.arrays(), metrics.scalars(), 0.0)
     metrics.summary()  # and the window's figures
+    cols = msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes(), "y": b"\x01"})
+    columnar.ColumnReader().read([cols], None, {("warm",): (0,)}.get)  # and of columnar blocks (Server._columnar)
+    columnar.score_body(np.zeros(1), 0, 0.0)
 
 
 def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
@@ -297,6 +303,7 @@ class Server:
         self.last_ranking = self.last_rate = -1e9
         self.reader = RunReader()  # blocks of numeric training events, read in compiled code
         self.known = Known()  # and the names of the last such block, learned in compiled code
+        self.columns = columnar.ColumnReader()  # blocks of columnar messages, read in compiled code
         self._refresh()
 
     def _refresh(self) -> None:
@@ -650,7 +657,7 @@ class Server:
         arrival = time.time()
         bodies: list[object] = []
         if self.race is None and self.outage is None:
-            if self._quick(messages, pub, arrival):
+            if self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival):
                 return
             if len(messages) < SINGLES_TOGETHER:
                 bodies = self._lone(messages, pub, arrival)
@@ -702,6 +709,36 @@ class Server:
         bodies = [
             pack(_score(i, z, step + r, arrival)) for r, (i, z) in enumerate(zip(ids, logits.tolist(), strict=True))
         ]
+        self._answer(pub, bodies, arrival)
+        return True
+
+    def _columnar(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> bool:
+        """A block of plain columnar messages (columnar.py): each read in one compiled call,
+        journaled, its runs of the same names learned by `Engine.train_rows` and each answered with
+        the body the full path packs. The commonest block of a columnar producer under load. False,
+        with nothing done, for any other block."""
+        raws: list[bytes] = []
+        for frames in messages:
+            if len(frames) != 2 or frames[1][1:6] not in COLUMNAR_FIRST:
+                return False
+            raws.append(frames[1])
+        engine = self.engine
+        vocab = engine.learner.vocab
+        read = self.columns.read(raws, vocab, vocab.shapes.get)
+        if read is None or not engine.in_sequence(read[1]):
+            return False
+        runs, numbers = read
+        if not self._journaled(messages, pub, arrival, raws, []):
+            return True
+        for src, seq in numbers:
+            engine.numbered(src, seq)
+        bodies: list[bytes] = []
+        for run in runs:
+            logits, step = engine.train_rows(arrival, run.slots, run.rows, run.y)
+            at = 0
+            for m in run.counts:
+                bodies.append(columnar.score_body(logits[at : at + m], step + at, arrival))
+                at += m
         self._answer(pub, bodies, arrival)
         return True
 
@@ -1129,7 +1166,7 @@ def _score_body(scores: list[Score | ColumnScores] | ColumnScores, shape: str) -
         m = z.shape[0]
         return {
             "id": list(scores.ids) if scores.ids is not None else [None] * m,
-            "p": np.exp(-np.logaddexp(0.0, -z)).astype("<f8").tobytes(),
+            "p": columnar.probabilities(z),
             "logit": z.tobytes(),
             "step": scores.step,
             "ts": scores.ts,
@@ -1137,10 +1174,9 @@ def _score_body(scores: list[Score | ColumnScores] | ColumnScores, shape: str) -
     if shape == "cols":  # a columnar block learned row by row (it held rows by id)
         rows = [s for s in scores if isinstance(s, Score)]
         z = np.array([s.logit for s in rows], dtype="<f8")
-        p = np.exp(-np.logaddexp(0.0, -z)).astype("<f8")
         return {
             "id": [s.id for s in rows],
-            "p": p.tobytes(),
+            "p": columnar.probabilities(z),
             "logit": z.tobytes(),
             "step": rows[0].step,
             "ts": rows[0].ts,

@@ -1,0 +1,333 @@
+"""The daemon's columnar blocks under load, read in compiled code and learned as one run of rows.
+
+A producer streaming numeric features sends columnar messages (PROTOCOL 2): `{"cols": [names],
+"rows": float64 bytes, "y": label bytes}`, with `src` and `seq` when it numbers them. Under load a
+block holds tens of them (up to the loop's 4 MiB), and the full path decoded each with msgpack (a
+copy of its rows into a bytes object, then another into an array), checked it in Python, planned
+it, and built its score body as a dict for msgpack to pack. Here each message is read by one
+compiled call (`_read`) straight from its bytes into arrays kept from block to block: its rows
+copied once, its values and labels checked as the full path checks them. Consecutive messages with
+the same names are learned by one `Engine.train_rows` call, as the rows of one columnar block
+(the kernel learns rows one after another, so it is the same arithmetic as message by message),
+and each score body is put together from its bytes, byte for byte what msgpack packs for the full
+path's dict.
+
+It takes a block only when every message is such a block: a map of cols, rows and y (and src and
+seq, or either), every row labelled 0 or 1, every value 0 or within the protocol's range, names the
+vocabulary knows, numbers in sequence. Anything else (an id, a ts, a row without a label, a NaN, a
+new name, a duplicate, extra bytes, a length beyond the decoder's limits) returns None with nothing
+changed, and the full path decides: this path never refuses anything. tests/test_lone.py holds it
+to the full path, byte for byte and bit for bit.
+
+>>> import msgpack, numpy as np
+>>> rows = np.array([[1.5, 2.0], [3.0, 0.0]])
+>>> raw = msgpack.packb({"cols": ["route_km", "stops"], "rows": rows.tobytes(), "y": bytes([1, 0])})
+>>> b = np.frombuffer(raw, dtype=np.uint8)
+>>> values, ys = np.empty(8), np.empty(4)
+>>> status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, np.empty(0, dtype=np.uint8), 2, values, 0, ys)
+>>> status == NAMES, msgpack.unpackb(raw[cols_at:cols_end])
+(True, ['route_km', 'stops'])
+>>> _read(b, b[cols_at:cols_end].copy(), 2, values, 0, ys)[:2], values[:4].tolist(), ys[:2].tolist()
+((0, 2), [1.5, 2.0, 3.0, 0.0], [1.0, 0.0])
+"""
+
+from __future__ import annotations
+
+import struct
+from collections.abc import Callable
+from typing import Any
+
+import msgpack
+import numpy as np
+from numba import njit
+
+from .errors import ProtocolError
+from .fastpath import _map_len, _str
+from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, unpack
+from .quick import _p
+
+READ, OTHER, NAMES = 0, 1, 2  # read; anything else (the full path decides); names other than the key's
+# the keys a message may have, as bits
+_COLS, _ROWS, _Y, _SRC, _SEQ = 1, 2, 4, 8, 16
+_WORDS = np.frombuffer(b"colsrowsysrcseq", dtype=np.uint8)  # their names end to end
+_AT = np.array([0, 4, 8, 9, 12, 15])  # where each begins (and the last ends) in _WORDS
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _key(b, start, length):  # type: ignore[no-untyped-def]
+    """The bit of the key whose bytes are at start, 0 for any other."""
+    for w in range(5):
+        lo, hi = _AT[w], _AT[w + 1]
+        if hi - lo == length:
+            same = True
+            for i in range(length):
+                if b[start + i] != _WORDS[lo + i]:
+                    same = False
+                    break
+            if same:
+                return 1 << w
+    return 0
+
+
+@njit(cache=True, error_model="numpy", inline="always")
+def _bin(b, pos, n):  # type: ignore[no-untyped-def]
+    """(start, length) of the bytes of a bin at pos, reading no byte at or past n; length -1 if not
+    a bin, or if it runs past n."""
+    if pos >= n:
+        return pos, -1
+    c = np.int64(b[pos])
+    size = 1 if c == 0xC4 else 2 if c == 0xC5 else 4 if c == 0xC6 else 0
+    if size == 0 or pos + 1 + size > n:
+        return pos, -1
+    length = np.int64(0)
+    for i in range(size):
+        length = (length << 8) | np.int64(b[pos + 1 + i])
+    start = pos + 1 + size
+    if start + length > n:
+        return pos, -1
+    return start, length
+
+
+@njit(cache=True, error_model="numpy")
+def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
+    """Read the columnar message b: its rows into values from row `at` on (k values a row, copied
+    from the little-endian bytes), its labels into ys. Returns (status, rows, where the cols array
+    starts and ends, where the src str's bytes start and end (-1 without one), seq (-1 without
+    one)). NAMES when the cols array's bytes are not `key` (rows not read); OTHER for anything the
+    full path must decide."""
+    n = b.shape[0]
+    other = (OTHER, 0, 0, 0, -1, -1, -1)
+    entries, pos = _map_len(b, 0, n)
+    if entries < 3 or entries > 5:
+        return other
+    seen = 0
+    cols_at = cols_end = rows_at = rows_len = y_at = y_len = src_at = src_end = -1
+    seq = np.int64(-1)
+    for _ in range(entries):
+        ks, kl, pos = _str(b, pos, n)
+        if kl < 1:
+            return other
+        which = _key(b, ks, kl)
+        if which == 0 or seen & which:
+            return other
+        seen |= which
+        if which == _COLS:
+            cols_at = pos
+            if pos >= n:
+                return other
+            c = np.int64(b[pos])
+            if 0x91 <= c <= 0x9F:
+                count, pos = c - 0x90, pos + 1
+            elif c == 0xDC and pos + 3 <= n:
+                count, pos = (np.int64(b[pos + 1]) << 8) | np.int64(b[pos + 2]), pos + 3
+            else:
+                return other
+            if count > MAX_ITEMS:
+                return other
+            for _j in range(count):
+                s, length, pos = _str(b, pos, n)
+                if length < 0 or length > MAX_STR:
+                    return other
+            cols_end = pos
+        elif which == _ROWS:
+            rows_at, rows_len = _bin(b, pos, n)
+            if rows_len < 0 or rows_len > MAX_BIN:
+                return other
+            pos = rows_at + rows_len
+        elif which == _Y:
+            y_at, y_len = _bin(b, pos, n)
+            if y_len < 0 or y_len > MAX_BIN:
+                return other
+            pos = y_at + y_len
+        elif which == _SRC:
+            s, length, pos = _str(b, pos, n)
+            if length < 0 or length > MAX_STR:
+                return other
+            src_at, src_end = s, s + length
+        else:  # seq: an integer >= 0 that fits in int64
+            if pos >= n:
+                return other
+            c = np.int64(b[pos])
+            if c <= 0x7F:
+                seq, pos = c, pos + 1
+            elif 0xCC <= c <= 0xCF:
+                size = 1 << (c - 0xCC)
+                if pos + 1 + size > n or (size == 8 and b[pos + 1] >= 0x80):
+                    return other
+                seq = np.int64(0)
+                for i in range(size):
+                    seq = (seq << 8) | np.int64(b[pos + 1 + i])
+                pos += 1 + size
+            else:
+                return other
+    if pos != n or not (seen & _COLS and seen & _ROWS and seen & _Y):
+        return other
+    if cols_end - cols_at != key.shape[0]:
+        return NAMES, 0, cols_at, cols_end, src_at, src_end, seq
+    for i in range(key.shape[0]):
+        if b[cols_at + i] != key[i]:
+            return NAMES, 0, cols_at, cols_end, src_at, src_end, seq
+    if rows_len == 0 or rows_len % (8 * k) or y_len != rows_len // (8 * k):
+        return other
+    m = y_len
+    if (at + m) * k > values.shape[0] or at + m > ys.shape[0]:
+        return other
+    values[at * k : (at + m) * k] = b[rows_at : rows_at + rows_len].view(np.float64)
+    for i in range(at * k, (at + m) * k):
+        a = abs(values[i])
+        if not ((a == 0.0) | ((a >= VALUE_MIN) & (a <= VALUE_MAX))):  # NaN fails every comparison
+            return other
+    for r in range(m):
+        c = b[y_at + r]
+        if c > 1:
+            return other
+        ys[at + r] = np.float64(c)
+    return READ, m, cols_at, cols_end, src_at, src_end, seq
+
+
+class Run:
+    """Consecutive messages of a block with the same names: their slots, their rows (a view of the
+    reader's arrays) and labels, and how many rows each message has."""
+
+    __slots__ = ("slots", "rows", "y", "counts")
+
+    def __init__(self, slots: np.ndarray, rows: np.ndarray, y: np.ndarray, counts: list[int]) -> None:
+        self.slots = slots
+        self.rows = rows
+        self.y = y
+        self.counts = counts
+
+
+class ColumnReader:
+    """Reads blocks of plain columnar messages into arrays it keeps from block to block, and
+    remembers the names of the last one (their cols bytes and slots, in one vocabulary). The runs
+    it returns are views of its arrays: learn them before the next `read`."""
+
+    def __init__(self) -> None:
+        self.vocab: object = None
+        self.key = np.empty(0, dtype=np.uint8)
+        self.slots = np.empty(0, dtype=np.int64)
+        self._values = np.empty(0)
+        self._ys = np.empty(0)
+
+    def read(
+        self, raws: list[bytes], vocab: Any, shapes: Callable[[tuple[str, ...]], tuple[int, ...] | None]
+    ) -> tuple[list[Run], list[tuple[str | None, int | None]]] | None:
+        """The block's runs and each message's (src, seq), or None when the full path must take
+        it. `shapes` gives the slots of a tuple of names all known to `vocab` (None otherwise)."""
+        total = 0
+        for raw in raws:
+            if len(raw) > MAX_MESSAGE:
+                return None
+            total += len(raw)
+        if self._values.shape[0] < total // 8:
+            self._values = np.empty(2 * (total // 8))
+            self._ys = np.empty(2 * (total // 8))
+        if self.vocab is not vocab:
+            self.vocab, self.key = vocab, np.empty(0, dtype=np.uint8)
+        values, ys = self._values, self._ys
+        runs: list[Run] = []
+        numbers: list[tuple[str | None, int | None]] = []
+        at = start = 0  # rows read, and where the current run's begin
+        counts: list[int] = []
+        for raw in raws:
+            b = np.frombuffer(raw, dtype=np.uint8)
+            k = self.slots.shape[0]
+            status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, at, ys)
+            if status == NAMES:
+                slots = _slots_of(raw[cols_at:cols_end], shapes)
+                if slots is None:
+                    return None
+                if counts:  # the run so far, with the names before
+                    runs.append(self._run(start, at, counts))
+                    start, counts = at, []
+                self.key = b[cols_at:cols_end].copy()
+                self.slots = np.array(slots, dtype=np.int64)
+                k = self.slots.shape[0]
+                status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, at, ys)
+            if status != READ:
+                return None
+            src = None
+            if src_at >= 0:
+                try:
+                    src = raw[src_at:src_end].decode("utf-8")
+                except UnicodeDecodeError:  # msgpack refuses it: the full path decides
+                    return None
+            numbers.append((src, None if seq < 0 else int(seq)))
+            counts.append(m)
+            at += m
+        runs.append(self._run(start, at, counts))
+        return runs, numbers
+
+    def _run(self, start: int, end: int, counts: list[int]) -> Run:
+        k = self.slots.shape[0]
+        return Run(self.slots, self._values[start * k : end * k].reshape(end - start, k), self._ys[start:end], counts)
+
+
+def _slots_of(cols: bytes, shapes: Callable[[tuple[str, ...]], tuple[int, ...] | None]) -> tuple[int, ...] | None:
+    """The slots of a cols array's names (its msgpack bytes), when they are distinct and all known."""
+    try:
+        names = unpack(cols)
+    except ProtocolError:
+        return None
+    if type(names) is not list or not all(type(c) is str for c in names) or len(set(names)) != len(names):
+        return None
+    return shapes(tuple(names))
+
+
+_NIL_HEAD = b"\x85\xa2id"
+
+
+@njit(cache=True, error_model="numpy")
+def _probabilities(z):  # type: ignore[no-untyped-def]
+    out = np.empty(z.shape[0])
+    for i in range(z.shape[0]):
+        out[i] = _p(z[i])
+    return out
+
+
+def probabilities(z: np.ndarray) -> bytes:
+    """A columnar score body's p (little-endian float64 bytes): each row's p bit for bit what its
+    logit gives a score of one event (`quick._p`, the same C library exp as `server._p`)."""
+    out: np.ndarray = _probabilities(z)
+    return out.astype("<f8", copy=False).tobytes()
+
+
+def score_body(z: np.ndarray, step: int, ts: float) -> bytes:
+    """The score body of a columnar block without ids (PROTOCOL 3): the bytes msgpack.packb gives
+    for the full path's dict {"id": [None] * m, "p": ..., "logit": ..., "step": step, "ts": ts}."""
+    m = z.shape[0]
+    p = probabilities(z)
+    logit = z.astype("<f8", copy=False).tobytes()
+    if m <= 15:
+        nils = bytes([0x90 | m])
+    elif m <= 0xFFFF:
+        nils = b"\xdc" + struct.pack(">H", m)
+    else:
+        nils = b"\xdd" + struct.pack(">I", m)
+    size = _bin_head(8 * m)
+    return b"".join(
+        (
+            _NIL_HEAD,
+            nils,
+            b"\xc0" * m,
+            b"\xa1p",
+            size,
+            p,
+            b"\xa5logit",
+            size,
+            logit,
+            b"\xa4step",
+            msgpack.packb(step),
+            b"\xa2ts\xcb",
+            struct.pack(">d", ts),
+        )
+    )
+
+
+def _bin_head(length: int) -> bytes:
+    if length <= 0xFF:
+        return bytes([0xC4, length])
+    if length <= 0xFFFF:
+        return b"\xc5" + struct.pack(">H", length)
+    return b"\xc6" + struct.pack(">I", length)
