@@ -206,7 +206,8 @@ def warm_up(settings: LearnerSettings) -> None:
         known.learn(scratch.arrays(1), metrics.arrays(), metrics.scalars(), 0.0)
     metrics.summary()  # and the window's figures
     cols = msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes(), "y": b"\x01"})
-    columnar.ColumnReader().read([cols], None, {("warm",): (0,)}.get)  # and of columnar blocks (Server._columnar)
+    shapes: dict[tuple[str, ...], tuple[int, ...]] = {("warm",): (0,)}
+    columnar.ColumnReader().read([cols], None, shapes.get)  # and of columnar blocks (Server._columnar)
     columnar.score_body(np.zeros(1), 0, 0.0)
 
 
