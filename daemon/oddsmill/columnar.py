@@ -172,16 +172,16 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
     m = y_len
     if (at + m) * k > values.shape[0] or at + m > ys.shape[0]:
         return other
+    for r in range(m):  # (the labels first: a block of scoring requests is declined before its rows are copied)
+        c = b[y_at + r]
+        if c > 1:
+            return other
+        ys[at + r] = np.float64(c)
     values[at * k : (at + m) * k] = b[rows_at : rows_at + rows_len].view(np.float64)
     for i in range(at * k, (at + m) * k):
         a = abs(values[i])
         if not ((a == 0.0) | ((a >= VALUE_MIN) & (a <= VALUE_MAX))):  # NaN fails every comparison
             return other
-    for r in range(m):
-        c = b[y_at + r]
-        if c > 1:
-            return other
-        ys[at + r] = np.float64(c)
     return READ, m, cols_at, cols_end, src_at, src_end, seq
 
 
