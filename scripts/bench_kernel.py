@@ -10,7 +10,11 @@ shared machines, ratios much less).
    second miss to memory a feature), and one-hot ones (value 1: ids and categories, what a
    vocabulary of a million is made of in practice, with no detail rows).
 
-    python scripts/bench_kernel.py [--events N] [--json]
+   `--one-hot-beyond N` adds N one-hot names to that sweep (4000000: their slot rows, 96 MB, no
+   longer fit the machine's 32 MiB L3, where a million, 24 MB, do; a numeric name's state, 80 bytes,
+   is out of it at a million already).
+
+    python scripts/bench_kernel.py [--events N] [--one-hot-beyond N] [--json]
 """
 
 from __future__ import annotations
@@ -75,6 +79,7 @@ def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--events", type=int, default=20_000)
     ap.add_argument("--json", action="store_true")
+    ap.add_argument("--one-hot-beyond", type=int, default=0, help="a larger one-hot vocabulary to sweep too")
     args = ap.parse_args()
     from river import linear_model, optim
 
@@ -108,9 +113,9 @@ def main() -> None:
     one_rate = n_river / (time.perf_counter() - t0)
     defaults = kernel_rate(Learner(LearnerSettings()), xs, ys)
 
-    def sweep(settings: LearnerSettings, one_hot: bool = False) -> dict[int, float]:
+    def sweep(settings: LearnerSettings, one_hot: bool = False, sizes: tuple[int, ...] = ()) -> dict[int, float]:
         runs = {}
-        for vocab in (1_000, 10_000, 100_000, 1_000_000):
+        for vocab in (1_000, 10_000, 100_000, 1_000_000, *sizes):
             lr = Learner(settings)
             for j in range(vocab):  # the vocabulary at its full size before timing
                 lr.encode({f"f{j}": 1.0})
@@ -134,7 +139,8 @@ def main() -> None:
     # at 1e3 slots every feature is frequent enough to be centred, which the defaults pay for; the
     # second sweep shows the vocabulary's own effect
     flat_plain = sweep(LearnerSettings(max_centred=0))
-    flat_one_hot = sweep(LearnerSettings(), one_hot=True)
+    beyond = (args.one_hot_beyond,) if args.one_hot_beyond > 1_000_000 else ()
+    flat_one_hot = sweep(LearnerSettings(max_features=max(1_000_000, *beyond)), one_hot=True, sizes=beyond)
     result = {
         "kernel_events_per_s": ours,
         "kernel_defaults_events_per_s": defaults,
@@ -152,6 +158,8 @@ def main() -> None:
         "ns_per_event_by_vocabulary_one_hot": flat_one_hot,
         "flatness_one_hot_1e6_over_1e3": flat_one_hot[1_000_000] / flat_one_hot[1_000],
     }
+    for vocab in beyond:
+        result[f"flatness_one_hot_{vocab}_over_1e3"] = flat_one_hot[vocab] / flat_one_hot[1_000]
     if args.json:
         print(json.dumps(result, indent=2))
         return
@@ -173,6 +181,9 @@ def main() -> None:
             f"   (no centring: {plain:6.0f} ns, {plain / flat_plain[1_000]:.2f}x;"
             f" one-hot: {hot:6.0f} ns, {hot / flat_one_hot[1_000]:.2f}x)"
         )
+    for vocab in beyond:
+        hot = flat_one_hot[vocab]
+        print(f"  {vocab:>9,} slots, one-hot only: {hot:6.0f} ns, {hot / flat_one_hot[1_000]:.2f}x the 1e3 figure")
 
 
 if __name__ == "__main__":
