@@ -45,6 +45,7 @@ from .errors import ProtocolError
 from .fastpath import _map_len, _str
 from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, unpack
 from .quick import _p
+from .vocabulary import same_bytes
 
 READ, OTHER, NAMES = 0, 1, 2  # read; anything else (the full path decides); names other than the key's
 # the keys a message may have, as bits
@@ -58,14 +59,8 @@ def _key(b, start, length):  # type: ignore[no-untyped-def]
     """The bit of the key whose bytes are at start, 0 for any other."""
     for w in range(5):
         lo, hi = _AT[w], _AT[w + 1]
-        if hi - lo == length:
-            same = True
-            for i in range(length):
-                if b[start + i] != _WORDS[lo + i]:
-                    same = False
-                    break
-            if same:
-                return 1 << w
+        if hi - lo == length and same_bytes(b, start, _WORDS, lo, length):
+            return 1 << w
     return 0
 
 
@@ -162,11 +157,8 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
                 return other
     if pos != n or not (seen & _COLS and seen & _ROWS and seen & _Y):
         return other
-    if cols_end - cols_at != key.shape[0]:
+    if cols_end - cols_at != key.shape[0] or not same_bytes(b, cols_at, key, 0, key.shape[0]):
         return NAMES, 0, cols_at, cols_end, src_at, src_end, seq
-    for i in range(key.shape[0]):
-        if b[cols_at + i] != key[i]:
-            return NAMES, 0, cols_at, cols_end, src_at, src_end, seq
     if rows_len == 0 or rows_len % (8 * k) or y_len != rows_len // (8 * k):
         return other
     m = y_len

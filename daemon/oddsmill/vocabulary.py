@@ -52,6 +52,15 @@ def _hash(buf, lo, hi):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, inline="always")
+def same_bytes(x, xi, y, yi, n):  # type: ignore[no-untyped-def]
+    """Whether x[xi : xi + n] and y[yi : yi + n] hold the same bytes (both long enough)."""
+    for k in range(n):
+        if x[xi + k] != y[yi + k]:
+            return False
+    return True
+
+
+@njit(cache=True, inline="always")
 def _probe(table, starts, blob, q, lo, hi):  # type: ignore[no-untyped-def]
     """The slot of the name q[lo:hi], or -1 - (the free place of the table where it would go)."""
     size_t = np.uint64(table.shape[0])
@@ -62,14 +71,8 @@ def _probe(table, starts, blob, q, lo, hi):  # type: ignore[no-untyped-def]
         if s < 0:
             return -1 - np.int64(i)
         a = starts[s]
-        if starts[s + 1] - a == size:
-            same = True
-            for k in range(size):
-                if blob[a + k] != q[lo + k]:
-                    same = False
-                    break
-            if same:
-                return s
+        if starts[s + 1] - a == size and same_bytes(blob, a, q, lo, size):
+            return s
         i = i + np.uint64(1)
         if i == size_t:
             i = np.uint64(0)
