@@ -78,6 +78,75 @@ def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Pat
     assert full_rows(state["engine"]["learner"])["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
 
 
+def test_columnar_blocks_under_load_are_read_in_compiled_code_and_equal_an_offline_replay(tmp_path: Path) -> None:
+    """Numbered columnar blocks that wait several to a wake-up, with names the daemon knows, in two
+    orders: `Server._columnar` takes the blocks; every message is answered once, in order, and
+    each row's logit and p equal those of an offline replay of the journal through the full path
+    (`Engine.process` on the decoded bodies), bit for bit, as does the final checkpoint."""
+    from oddsmill.engine import ColumnScores
+    from oddsmill.server import _p
+
+    running = RunningServer(loopback(tmp_path), LearnerSettings(scale_warmup=200))
+    server = running.server
+    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+    rng = np.random.default_rng(11)
+    names = ["route_km", "weight_kg", "stops", "hour"]
+
+    def block(i: int, order: list[str]) -> dict[str, Any]:
+        m = int(rng.integers(1, 300))
+        rows = rng.normal(size=(m, 4)) * [30.0, 5.0, 10.0, 6.0]
+        y = (rng.random(m) < 0.3).astype(int)
+        return {"cols": order, "rows": rows.tobytes(), "y": bytes(y.tolist()), "src": "depot-feed", "seq": i}
+
+    # the full path learns the names in both orders first (twice each: the vocabulary then knows them)
+    sent = [block(i, names if i % 2 else names[::-1]) for i in range(4)]
+    for body in sent:
+        client.send(body)
+    client.receive(4)
+    taken: list[int] = []  # the messages of each block Server._columnar took
+    columnar, handle = server._columnar, server.handle
+    held = threading.Event()
+
+    def counted(messages: Any, pub: Any, arrival: float) -> bool:
+        done = columnar(messages, pub, arrival)
+        if done:
+            taken.append(len(messages))
+        return done
+
+    def hold(messages: Any, pub: Any) -> None:  # the first wake-up waits until all 80 are sent
+        held.wait(30)
+        handle(messages, pub)
+
+    server._columnar = counted  # type: ignore[method-assign]
+    server.handle = hold  # type: ignore[method-assign]
+    more = [block(i, names[::-1] if i % 9 == 0 else names) for i in range(4, 84)]
+    for body in more:
+        client.send(body)
+    held.set()
+    answers = client.receive(80)
+    client.close()
+    running.close()
+    sent += more
+    scores = [a for t, a in answers if t == b"scores"]
+    assert [len(s["logit"]) // 8 for s in scores] == [len(b["y"]) for b in more]  # once each, in order
+    assert sum(taken) >= 70 and max(taken) > 1, taken
+    live = np.concatenate([np.frombuffer(s["logit"], dtype="<f8") for s in scores])
+    p = np.concatenate([np.frombuffer(s["p"], dtype="<f8") for s in scores])
+    engine = Engine(Learner(LearnerSettings(scale_warmup=200)))
+    offline = []
+    for seg in list_journal(tmp_path):
+        for _, arrival, body in read_journal(seg):
+            results = engine.process([(arrival, it) for it in decode_body(body)])
+            offline += [r.logits for _, r in results if isinstance(r, ColumnScores)]
+    replayed = np.concatenate(offline)[-live.shape[0] :]
+    assert replayed.tobytes() == live.tobytes()
+    assert p.tolist() == [_p(z) for z in live.tolist()]
+    first = engine.learner.step - live.shape[0]  # each body's step: events learned before its first row
+    assert [s["step"] for s in scores] == [first + sum(len(b["y"]) for b in more[:i]) for i in range(len(more))]
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    assert full_rows(state["engine"]["learner"])["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
+
+
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
