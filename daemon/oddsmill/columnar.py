@@ -164,16 +164,28 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
     m = y_len
     if (at + m) * k > values.shape[0] or at + m > ys.shape[0]:
         return other
-    for r in range(m):  # (the labels first: a block of scoring requests is declined before its rows are copied)
-        c = b[y_at + r]
-        if c > 1:
-            return other
-        ys[at + r] = np.float64(c)
-    values[at * k : (at + m) * k] = b[rows_at : rows_at + rows_len].view(np.float64)
-    for i in range(at * k, (at + m) * k):
-        a = abs(values[i])
-        if not ((a == 0.0) | ((a >= VALUE_MIN) & (a <= VALUE_MAX))):  # NaN fails every comparison
-            return other
+    # The labels first (a block of scoring requests is declined before its rows are copied). Each
+    # check is a count and each copy a loop over indices from range() alone, which numba knows are
+    # >= 0: compiled to vector instructions, 3.6 us for 500 x 20 values, where a check returning
+    # at the first bad value, an assigned slice and offset indices took 13 (timeit).
+    labels = b[y_at : y_at + m]
+    bad = 0
+    for r in range(m):
+        bad += labels[r] > 1
+    if bad:
+        return other
+    out = ys[at : at + m]
+    for r in range(m):
+        out[r] = np.float64(labels[r])
+    src = b[rows_at : rows_at + rows_len].view(np.float64)
+    dst = values[at * k : (at + m) * k]
+    for i in range(m * k):
+        dst[i] = src[i]
+    for i in range(m * k):
+        a = abs(dst[i])
+        bad += not ((a == 0.0) | ((a >= VALUE_MIN) & (a <= VALUE_MAX)))  # NaN fails every comparison
+    if bad:
+        return other
     return READ, m, cols_at, cols_end, src_at, src_end, seq
 
 
