@@ -75,6 +75,12 @@ def test_it_reads_plain_blocks_and_their_runs() -> None:
     runs, _ = reader.read(block, SLOTS, SLOTS.get)  # type: ignore[misc]
     assert [r.counts for r in runs] == [[3, 5], [4], [3]]  # three runs: the names changed twice
     assert [tuple(r.slots.tolist()) for r in runs] == [(4, 7, 9), (9, 7, 4), (4, 7, 9)]
+    # runs of different widths, one after another in the reader's arrays
+    narrow = msgpack.packb(body(7, ["route_km"], seed=5))
+    block = [plain, plain, narrow, narrow, plain, narrow]
+    assert check(block, reader)
+    runs, _ = reader.read(block, SLOTS, SLOTS.get)  # type: ignore[misc]
+    assert [r.counts for r in runs] == [[3, 3], [7, 7], [3], [7]]
     wide = msgpack.packb(body(2000, seed=4))  # (the reader's arrays grow)
     assert check([wide, wide], reader)
     # keys in another order, a map16 header, str8 names: msgpack decodes them all alike

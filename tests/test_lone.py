@@ -87,6 +87,7 @@ KINDS = [
     "cols_other_order",  # the names in another order: another run of the block
     "cols_numbered",  # src and seq (one repeated: a duplicate)
     "cols_nan",  # a NaN among the rows: refused by the full path
+    "cols_narrow",  # two of the names: runs of another width in one block
 ]
 messages = st.sampled_from(KINDS)
 
@@ -133,12 +134,12 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
             body = {"cols": NAMES, "rows": rows.astype("<f8").tobytes(), "y": bytes([1, 0, 0, 1])}
             if i % 2:
                 body["id"] = [f"C{i}-{r}" for r in range(4)]
-        elif kind in ("cols_long", "cols_other_order", "cols_numbered", "cols_nan"):
+        elif kind in ("cols_long", "cols_other_order", "cols_numbered", "cols_nan", "cols_narrow"):
             m = 40 if kind == "cols_long" else 3
-            rows = rng.normal(size=(m, 3)) * 3
+            names = NAMES[::-1] if kind == "cols_other_order" else NAMES[:2] if kind == "cols_narrow" else NAMES
+            rows = rng.normal(size=(m, len(names))) * 3
             if kind == "cols_nan":
                 rows[1, 2] = np.nan
-            names = NAMES[::-1] if kind == "cols_other_order" else NAMES
             body = {"cols": names, "rows": rows.astype("<f8").tobytes(), "y": bytes(rng.integers(0, 2, m).tolist())}
             if kind == "cols_numbered":
                 body.update(src="depot-feed", seq=i // 2)
@@ -187,7 +188,7 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         kinds[at] = str(rng.choice(KINDS))
     msgs = build(kinds, 3)
     lone_columns = build(["cols_plain"] * 12, 4)  # (those with ids, at odd positions: Server._columns)
-    columns = build(["cols_plain", "cols_long", "cols_numbered", "cols_other_order"] * 9, 5)
+    columns = build(["cols_plain", "cols_long", "cols_narrow", "cols_numbered", "cols_other_order"] * 9, 5)
     blocks, at = [], 0
     while at < len(msgs):
         n = int(rng.integers(1, 9))

@@ -24,10 +24,10 @@ to the full path, byte for byte and bit for bit.
 >>> raw = msgpack.packb({"cols": ["route_km", "stops"], "rows": rows.tobytes(), "y": bytes([1, 0])})
 >>> b = np.frombuffer(raw, dtype=np.uint8)
 >>> values, ys = np.empty(8), np.empty(4)
->>> status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, np.empty(0, dtype=np.uint8), 2, values, 0, ys)
+>>> status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, np.empty(0, dtype=np.uint8), 2, values, 0, ys, 0)
 >>> status == NAMES, msgpack.unpackb(raw[cols_at:cols_end])
 (True, ['route_km', 'stops'])
->>> _read(b, b[cols_at:cols_end].copy(), 2, values, 0, ys)[:2], values[:4].tolist(), ys[:2].tolist()
+>>> _read(b, b[cols_at:cols_end].copy(), 2, values, 0, ys, 0)[:2], values[:4].tolist(), ys[:2].tolist()
 ((0, 2), [1.5, 2.0, 3.0, 0.0], [1.0, 0.0])
 """
 
@@ -84,9 +84,9 @@ def _bin(b, pos, n):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
-    """Read the columnar message b: its rows into values from row `at` on (k values a row, copied
-    from the little-endian bytes), its labels into ys. Returns (status, rows, where the cols array
+def _read(b, key, k, values, used, ys, at):  # type: ignore[no-untyped-def]
+    """Read the columnar message b: its rows into values from values[used] on (k values a row,
+    copied from the little-endian bytes), its labels into ys from ys[at] on. Returns (status, rows, where the cols array
     starts and ends, where the src str's bytes start and end (-1 without one), seq (-1 without
     one)). NAMES when the cols array's bytes are not `key` (rows not read); OTHER for anything the
     full path must decide."""
@@ -162,7 +162,7 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
     if rows_len == 0 or rows_len % (8 * k) or y_len != rows_len // (8 * k):
         return other
     m = y_len
-    if (at + m) * k > values.shape[0] or at + m > ys.shape[0]:
+    if used + m * k > values.shape[0] or at + m > ys.shape[0]:
         return other
     # The labels first (a block of scoring requests is declined before its rows are copied). Each
     # check is a count and each copy a loop over indices from range() alone, which numba knows are
@@ -178,7 +178,7 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
     for r in range(m):
         out[r] = np.float64(labels[r])
     src = b[rows_at : rows_at + rows_len].view(np.float64)
-    dst = values[at * k : (at + m) * k]
+    dst = values[used : used + m * k]
     for i in range(m * k):
         dst[i] = src[i]
     for i in range(m * k):
@@ -191,7 +191,8 @@ def _read(b, key, k, values, at, ys):  # type: ignore[no-untyped-def]
 
 class Run:
     """Consecutive messages of a block with the same names: their slots, their rows (a view of the
-    reader's arrays) and labels, and how many rows each message has."""
+    reader's arrays) and labels, and how many rows each message has. (Runs of different widths
+    follow each other in the reader's values array.)"""
 
     __slots__ = ("slots", "rows", "y", "counts")
 
@@ -232,23 +233,24 @@ class ColumnReader:
         values, ys = self._values, self._ys
         runs: list[Run] = []
         numbers: list[tuple[str | None, int | None]] = []
-        at = start = 0  # rows read, and where the current run's begin
+        at = start = 0  # rows read, and the first of the current run
+        used = first = 0  # values read, and the first of the current run
         counts: list[int] = []
         for raw in raws:
             b = np.frombuffer(raw, dtype=np.uint8)
             k = self.slots.shape[0]
-            status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, at, ys)
+            status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, used, ys, at)
             if status == NAMES:
                 slots = _slots_of(raw[cols_at:cols_end], shapes)
                 if slots is None:
                     return None
                 if counts:  # the run so far, with the names before
-                    runs.append(self._run(start, at, counts))
-                    start, counts = at, []
+                    runs.append(self._run(first, start, at, counts))
+                    first, start, counts = used, at, []
                 self.key = b[cols_at:cols_end].copy()
                 self.slots = np.array(slots, dtype=np.int64)
                 k = self.slots.shape[0]
-                status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, at, ys)
+                status, m, cols_at, cols_end, src_at, src_end, seq = _read(b, self.key, k, values, used, ys, at)
             if status != READ:
                 return None
             src = None
@@ -260,12 +262,15 @@ class ColumnReader:
             numbers.append((src, None if seq < 0 else int(seq)))
             counts.append(m)
             at += m
-        runs.append(self._run(start, at, counts))
+            used += m * k
+        runs.append(self._run(first, start, at, counts))
         return runs, numbers
 
-    def _run(self, start: int, end: int, counts: list[int]) -> Run:
+    def _run(self, first: int, start: int, end: int, counts: list[int]) -> Run:
+        """The run of rows start to end, whose values begin at first, with the current names."""
         k = self.slots.shape[0]
-        return Run(self.slots, self._values[start * k : end * k].reshape(end - start, k), self._ys[start:end], counts)
+        rows = self._values[first : first + (end - start) * k].reshape(end - start, k)
+        return Run(self.slots, rows, self._ys[start:end], counts)
 
 
 def _slots_of(cols: bytes, shapes: Callable[[tuple[str, ...]], tuple[int, ...] | None]) -> tuple[int, ...] | None:
