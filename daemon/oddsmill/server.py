@@ -791,7 +791,8 @@ class Server:
     def _columns(self, body: dict[str, Any], frames: list[bytes], pub: zmq.Socket[Any], arrival: float) -> bool:
         """A lone columnar block of training events, every row labelled, unnumbered, every name
         known: journaled, learned as `prepare` and `settle` would learn it (`Engine.train_rows`)
-        and answered with the same body. False, with nothing done, for any other."""
+        and answered with the same body. False, with nothing done, for any other. (`_columnar`
+        takes such blocks first when they have no ids; this takes those with ids.)"""
         item = decode_body(body)[0]
         if type(item) is not Columns or item.src is not None or item.seq is not None or not item.rows.shape[0]:
             return False
