@@ -42,7 +42,11 @@ import zmq
 
 BLOCK = 500  # events a batch or columnar block
 SILENCE_MS = 60_000  # a run fails when no score comes for this long (the first call may compile)
-RACE_PAIRS = 3  # pairs of runs (a single learner, a race of nine) behind the race's ratio
+# Rounds of throughput runs behind each ratio, which is the median of the rounds' own: the floor's
+# columnar rate moved from 4.1 M to 7.2 M events/s between six runs of the bench (2026-12-03), and
+# one pair of runs said more about the minute than about the code. The first round runs every
+# kind; the others the floor, the peer and oddsmill (and for columnar blocks a race of nine).
+ROUNDS = 3
 # Rounds of latency runs (the floor, then oddsmill), pooled. The median of one round moves by a
 # third from round to round on this shared machine (0.25 to 0.33 ms for the floor in one run);
 # two rounds left the ratio moving from 1.15 to 1.44 between runs of the same code.
@@ -138,7 +142,8 @@ while True:
 """
 
 SCRIPTS = {"floor": FLOOR, "journaled_floor": JOURNALED_FLOOR, "peer": PEER}
-KINDS = ("floor", "journaled_floor", "peer", "oddsmill")  # in the order each shape runs them
+KINDS = ("floor", "journaled_floor", "peer", "oddsmill")  # in the order each shape's first round runs them
+AGAIN = ("floor", "peer", "oddsmill")  # and the other rounds
 LATENCY_KINDS = ("floor", "journaled_floor", "oddsmill")
 
 PRODUCER = r"""
@@ -401,35 +406,37 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
     for shape in shapes:
         n = events * EVENTS_SCALE[shape]
         row: dict[str, Any] = {}
-        for kind in KINDS:
-            row[kind] = throughput(kind, shape, events * PEER_SCALE[shape] if kind == "peer" else n)
-            label = kind.replace("_", " ")
-            print(f"  {shape:<6} {label:<15} {row[kind]['events_per_s']:>12,.0f} events/s", file=out, flush=True)
-        if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
-            # One pair of runs moves by 20% either way on this shared machine (a single learner
-            # alone went from 590k to 870k events/s in six runs): the ratio is the median of
-            # RACE_PAIRS pairs (a single learner, then the race, back to back), each pair printed.
-            pairs = []
-            for k in range(RACE_PAIRS):
-                single = row["oddsmill"] if k == 0 else throughput("oddsmill", shape, n)
+        rounds: list[dict[str, float]] = []
+        for k in range(ROUNDS):
+            rates: dict[str, float] = {}
+            for kind in KINDS if k == 0 else AGAIN:
+                done = throughput(kind, shape, events * PEER_SCALE[shape] if kind == "peer" else n)
+                row.setdefault(kind, done)  # (the first round's runs, with their peak memory)
+                rates[kind] = done["events_per_s"]
+                label = kind.replace("_", " ") + (f", round {k + 1}" if k else "")
+                print(f"  {shape:<6} {label:<18} {rates[kind]:>12,.0f} events/s", file=out, flush=True)
+            if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
                 race = throughput("race", shape, n)
-                pairs.append((single["events_per_s"], race["events_per_s"]))
+                row.setdefault("race", race)
+                rates["race"] = race["events_per_s"]
                 print(
-                    f"  {shape:<6} {'race of 9':<15} {race['events_per_s']:>12,.0f} events/s"
-                    f" ({race['events_per_s'] / single['events_per_s']:.2f}x the single learner's"
-                    f" {single['events_per_s']:,.0f} beside it)",
+                    f"  {shape:<6} {'race of 9':<18} {rates['race']:>12,.0f} events/s"
+                    f" ({rates['race'] / rates['oddsmill']:.2f}x the single learner's beside it)",
                     file=out,
                     flush=True,
                 )
-                if k == 0:
-                    row["race"] = race
-            ratios = [r / s for s, r in pairs]
-            row["race_pairs"] = [{"single": s, "race": r, "ratio": r / s} for s, r in pairs]
-            row["race_to_oddsmill"] = float(np.median(ratios))
-        row["oddsmill_to_floor"] = row["oddsmill"]["events_per_s"] / row["floor"]["events_per_s"]
-        row["journaled_floor_to_floor"] = row["journaled_floor"]["events_per_s"] / row["floor"]["events_per_s"]
-        row["oddsmill_to_journaled_floor"] = row["oddsmill"]["events_per_s"] / row["journaled_floor"]["events_per_s"]
-        row["oddsmill_to_peer"] = row["oddsmill"]["events_per_s"] / row["peer"]["events_per_s"]
+            rounds.append(rates)
+        row["rounds"] = rounds
+
+        def median(top: str, bottom: str, of: list[dict[str, float]] = rounds) -> float:
+            return float(np.median([r[top] / r[bottom] for r in of]))
+
+        row["oddsmill_to_floor"] = median("oddsmill", "floor")
+        row["oddsmill_to_peer"] = median("oddsmill", "peer")
+        row["journaled_floor_to_floor"] = median("journaled_floor", "floor", rounds[:1])
+        row["oddsmill_to_journaled_floor"] = median("oddsmill", "journaled_floor", rounds[:1])
+        if shape == "cols":
+            row["race_to_oddsmill"] = median("race", "oddsmill")
         result["throughput"][shape] = row
     runs: dict[str, list[np.ndarray]] = {kind: [] for kind in LATENCY_KINDS}
     cpus: dict[str, list[float]] = {kind: [] for kind in LATENCY_KINDS}
@@ -479,12 +486,20 @@ def report(result: dict[str, Any], out: Any) -> None:
             file=out,
         )
     print("  (journaled: the floor writing each message to a journal first, as oddsmill does)", file=out)
+    print(
+        "  (events/s: the first round; /floor and /peer: the median of each round's ratio, the runs of a"
+        " round side by side)",
+        file=out,
+    )
+    for shape, row in result["throughput"].items():
+        each = "; ".join(f"{r['oddsmill'] / r['floor']:.2f}x, {r['oddsmill'] / r['peer']:.1f}x" for r in row["rounds"])
+        print(f"  {names[shape]:<8} round by round, /floor and /peer: {each}", file=out)
     cols = result["throughput"].get("cols")
     if cols is not None:
         print(
             f"  race of nine candidates (--candidates auto), columnar: {cols['race_to_oddsmill']:.2f}x a single"
-            f" learner (median of {len(cols['race_pairs'])} pairs of runs:"
-            f" {', '.join(format(p['ratio'], '.2f') for p in cols['race_pairs'])})",
+            f" learner (median of {len(cols['rounds'])} rounds:"
+            f" {', '.join(format(r['race'] / r['oddsmill'], '.2f') for r in cols['rounds'])})",
             file=out,
         )
     lat = result["latency"]
