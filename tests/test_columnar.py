@@ -83,6 +83,10 @@ def test_it_reads_plain_blocks_and_their_runs() -> None:
     assert [r.counts for r in runs] == [[3, 3], [7, 7], [3], [7]]
     wide = msgpack.packb(body(2000, seed=4))  # (the reader's arrays grow)
     assert check([wide, wide], reader)
+    huge = msgpack.packb(body(400_000, seed=6))  # 9.6 MB of rows: more than KEPT_VALUES
+    assert check([huge], reader) and reader._values.shape[0] >= 1_200_000
+    assert check([plain], reader) and reader._values.shape[0] < 1_000  # let go of, once not needed
+    assert check([wide], reader)
     # keys in another order, a map16 header, str8 names: msgpack decodes them all alike
     reordered = msgpack.packb({k: body()[k] for k in ("y", "rows", "cols")})
     assert check([reordered])

@@ -48,6 +48,9 @@ from .quick import _p
 from .vocabulary import same_bytes
 
 READ, OTHER, NAMES = 0, 1, 2  # read; anything else (the full path decides); names other than the key's
+# Values the reader's arrays keep room for at most (8 MB each) once a block needs an eighth of that
+# or less: a block of one 16 MiB message would otherwise leave 64 MB held for good.
+KEPT_VALUES = 1 << 20
 # the keys a message may have, as bits
 _COLS, _ROWS, _Y, _SRC, _SEQ = 1, 2, 4, 8, 16
 _WORDS = np.frombuffer(b"colsrowsysrcseq", dtype=np.uint8)  # their names end to end
@@ -225,9 +228,11 @@ class ColumnReader:
             if len(raw) > MAX_MESSAGE:
                 return None
             total += len(raw)
-        if self._values.shape[0] < total // 8:
-            self._values = np.empty(2 * (total // 8))
-            self._ys = np.empty(2 * (total // 8))
+        need = total // 8  # (a value takes 8 bytes of a body, a row one label at least)
+        have = self._values.shape[0]
+        if have < need or have > max(8 * need, KEPT_VALUES):  # grown as needed, let go after a spike
+            self._values = np.empty(2 * need)
+            self._ys = np.empty(2 * need)
         if self.vocab is not vocab:
             self.vocab, self.key = vocab, np.empty(0, dtype=np.uint8)
         values, ys = self._values, self._ys
