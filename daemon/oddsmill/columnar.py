@@ -16,8 +16,9 @@ It takes a block only when every message is such a block: a map of cols, rows an
 seq, or either), every row labelled 0 or 1, every value 0 or within the protocol's range, names the
 vocabulary knows, numbers in sequence. Anything else (an id, a ts, a row without a label, a NaN, a
 new name, a duplicate, extra bytes, a length beyond the decoder's limits) returns None with nothing
-changed, and the full path decides: this path never refuses anything. tests/test_lone.py holds it
-to the full path, byte for byte and bit for bit.
+changed, and the full path decides: this path never refuses anything. tests/test_columnar.py holds
+the reading to msgpack's decoder and the protocol, tests/test_lone.py the daemon's answers, journal
+and state to the full path's, byte for byte and bit for bit.
 
 >>> import msgpack, numpy as np
 >>> rows = np.array([[1.5, 2.0], [3.0, 0.0]])
@@ -89,10 +90,10 @@ def _bin(b, pos, n):  # type: ignore[no-untyped-def]
 @njit(cache=True, error_model="numpy")
 def _read(b, key, k, values, used, ys, at):  # type: ignore[no-untyped-def]
     """Read the columnar message b: its rows into values from values[used] on (k values a row,
-    copied from the little-endian bytes), its labels into ys from ys[at] on. Returns (status, rows, where the cols array
-    starts and ends, where the src str's bytes start and end (-1 without one), seq (-1 without
-    one)). NAMES when the cols array's bytes are not `key` (rows not read); OTHER for anything the
-    full path must decide."""
+    copied from the little-endian bytes), its labels into ys from ys[at] on. Returns (status, rows,
+    where the cols array starts and ends, where the src str's bytes start and end (-1 without one),
+    seq (-1 without one)). NAMES when the cols array's bytes are not `key` (rows not read); OTHER
+    for anything the full path must decide."""
     n = b.shape[0]
     other = (OTHER, 0, 0, 0, -1, -1, -1)
     entries, pos = _map_len(b, 0, n)
