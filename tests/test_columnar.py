@@ -47,7 +47,7 @@ def decoded(raw: bytes) -> Columns | None:
 def check(raws: list[bytes], reader: ColumnReader | None = None) -> bool:
     """The reader on a block against the decoder on each message; whether it read the block."""
     reader = reader or ColumnReader()
-    got = reader.read(raws, SLOTS, SLOTS.get)
+    got = reader.read(raws, SLOTS)
     want = [decoded(raw) for raw in raws]
     if got is None:
         return False
@@ -72,14 +72,14 @@ def test_it_reads_plain_blocks_and_their_runs() -> None:
     block = [plain, msgpack.packb(body(5, seed=2)), msgpack.packb(body(4, NAMES[::-1], seed=3)), plain]
     reader = ColumnReader()
     assert check(block, reader)
-    runs, _ = reader.read(block, SLOTS, SLOTS.get)  # type: ignore[misc]
+    runs, _ = reader.read(block, SLOTS)  # type: ignore[misc]
     assert [r.counts for r in runs] == [[3, 5], [4], [3]]  # three runs: the names changed twice
     assert [tuple(r.slots.tolist()) for r in runs] == [(4, 7, 9), (9, 7, 4), (4, 7, 9)]
     # runs of different widths, one after another in the reader's arrays
     narrow = msgpack.packb(body(7, ["route_km"], seed=5))
     block = [plain, plain, narrow, narrow, plain, narrow]
     assert check(block, reader)
-    runs, _ = reader.read(block, SLOTS, SLOTS.get)  # type: ignore[misc]
+    runs, _ = reader.read(block, SLOTS)  # type: ignore[misc]
     assert [r.counts for r in runs] == [[3, 3], [7, 7], [3], [7]]
     wide = msgpack.packb(body(2000, seed=4))  # (the reader's arrays grow)
     assert check([wide, wide], reader)

@@ -401,6 +401,11 @@ def latency(kind: str, rate: float, seconds: float) -> tuple[np.ndarray, float]:
     return np.asarray(arrived[done] - sent[done]), cpu / n
 
 
+def _median_ratio(rounds: list[dict[str, float]], top: str, bottom: str) -> float:
+    """The median over rounds of top's events/s over bottom's in the same round."""
+    return float(np.median([r[top] / r[bottom] for r in rounds]))
+
+
 def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -> dict[str, Any]:
     result: dict[str, Any] = {"throughput": {}, "latency": {}}
     for shape in shapes:
@@ -427,16 +432,12 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
                 )
             rounds.append(rates)
         row["rounds"] = rounds
-
-        def median(top: str, bottom: str, of: list[dict[str, float]] = rounds) -> float:
-            return float(np.median([r[top] / r[bottom] for r in of]))
-
-        row["oddsmill_to_floor"] = median("oddsmill", "floor")
-        row["oddsmill_to_peer"] = median("oddsmill", "peer")
-        row["journaled_floor_to_floor"] = median("journaled_floor", "floor", rounds[:1])
-        row["oddsmill_to_journaled_floor"] = median("oddsmill", "journaled_floor", rounds[:1])
+        row["oddsmill_to_floor"] = _median_ratio(rounds, "oddsmill", "floor")
+        row["oddsmill_to_peer"] = _median_ratio(rounds, "oddsmill", "peer")
+        row["journaled_floor_to_floor"] = _median_ratio(rounds[:1], "journaled_floor", "floor")
+        row["oddsmill_to_journaled_floor"] = _median_ratio(rounds[:1], "oddsmill", "journaled_floor")
         if shape == "cols":
-            row["race_to_oddsmill"] = median("race", "oddsmill")
+            row["race_to_oddsmill"] = _median_ratio(rounds, "race", "oddsmill")
         result["throughput"][shape] = row
     runs: dict[str, list[np.ndarray]] = {kind: [] for kind in LATENCY_KINDS}
     cpus: dict[str, list[float]] = {kind: [] for kind in LATENCY_KINDS}

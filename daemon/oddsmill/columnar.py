@@ -35,8 +35,7 @@ and state to the full path's, byte for byte and bit for bit.
 from __future__ import annotations
 
 import struct
-from collections.abc import Callable
-from typing import Any
+from collections.abc import Mapping
 
 import msgpack
 import numpy as np
@@ -213,17 +212,17 @@ class ColumnReader:
     it returns are views of its arrays: learn them before the next `read`."""
 
     def __init__(self) -> None:
-        self.vocab: object = None
+        self.shapes: object = None  # the vocabulary's shapes the remembered slots are of
         self.key = np.empty(0, dtype=np.uint8)
         self.slots = np.empty(0, dtype=np.int64)
         self._values = np.empty(0)
         self._ys = np.empty(0)
 
     def read(
-        self, raws: list[bytes], vocab: Any, shapes: Callable[[tuple[str, ...]], tuple[int, ...] | None]
+        self, raws: list[bytes], shapes: Mapping[tuple[str, ...], tuple[int, ...]]
     ) -> tuple[list[Run], list[tuple[str | None, int | None]]] | None:
         """The block's runs and each message's (src, seq), or None when the full path must take
-        it. `shapes` gives the slots of a tuple of names all known to `vocab` (None otherwise)."""
+        it. `shapes`: a vocabulary's slots of tuples of names it knows (`Vocabulary.shapes`)."""
         total = 0
         for raw in raws:
             if len(raw) > MAX_MESSAGE:
@@ -234,8 +233,8 @@ class ColumnReader:
         if have < need or have > max(8 * need, KEPT_VALUES):  # grown as needed, let go after a spike
             self._values = np.empty(2 * need)
             self._ys = np.empty(2 * need)
-        if self.vocab is not vocab:
-            self.vocab, self.key = vocab, np.empty(0, dtype=np.uint8)
+        if self.shapes is not shapes:  # (another vocabulary: its slots are not those remembered)
+            self.shapes, self.key = shapes, np.empty(0, dtype=np.uint8)
         values, ys = self._values, self._ys
         runs: list[Run] = []
         numbers: list[tuple[str | None, int | None]] = []
@@ -279,7 +278,7 @@ class ColumnReader:
         return Run(self.slots, rows, self._ys[start:end], counts)
 
 
-def _slots_of(cols: bytes, shapes: Callable[[tuple[str, ...]], tuple[int, ...] | None]) -> tuple[int, ...] | None:
+def _slots_of(cols: bytes, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) -> tuple[int, ...] | None:
     """The slots of a cols array's names (its msgpack bytes), when they are distinct and all known."""
     try:
         names = unpack(cols)
@@ -287,7 +286,7 @@ def _slots_of(cols: bytes, shapes: Callable[[tuple[str, ...]], tuple[int, ...] |
         return None
     if type(names) is not list or not all(type(c) is str for c in names) or len(set(names)) != len(names):
         return None
-    return shapes(tuple(names))
+    return shapes.get(tuple(names))
 
 
 _NIL_HEAD = b"\x85\xa2id"

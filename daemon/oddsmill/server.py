@@ -206,8 +206,7 @@ def warm_up(settings: LearnerSettings) -> None:
         known.learn(scratch.arrays(1), metrics.arrays(), metrics.scalars(), 0.0)
     metrics.summary()  # and the window's figures
     cols = msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes(), "y": b"\x01"})
-    shapes: dict[tuple[str, ...], tuple[int, ...]] = {("warm",): (0,)}
-    columnar.ColumnReader().read([cols], None, shapes.get)  # and of columnar blocks (Server._columnar)
+    columnar.ColumnReader().read([cols], {("warm",): (0,)})  # and of columnar blocks (Server._columnar)
     columnar.score_body(np.zeros(1), 0, 0.0)
 
 
@@ -724,8 +723,7 @@ class Server:
                 return False
             raws.append(frames[1])
         engine = self.engine
-        vocab = engine.learner.vocab
-        read = self.columns.read(raws, vocab, vocab.shapes.get)
+        read = self.columns.read(raws, engine.learner.vocab.shapes)
         if read is None or not engine.in_sequence(read[1]):
             return False
         runs, numbers = read
