@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import logging
+import os
 import pickle
 from functools import partial
 from pathlib import Path
@@ -25,6 +26,7 @@ from oddsmill.storage import (
 )
 
 from tests.conftest import sparse_stream
+from tests.tools import require
 
 
 def _items(events, start):  # type: ignore[no-untyped-def]
@@ -139,6 +141,68 @@ def test_the_journal_checksum_is_zlibs_crc32(tmp_path: Path) -> None:
     assert seg.read_bytes().endswith(record)
     [(_, arrival, body)] = list(read_journal(seg))
     assert arrival == 7.25 and body["rows"] == rows
+
+
+def _resident_bytes(path: Path) -> int:
+    """How much of a file the page cache holds, by util-linux's fincore (mincore(2))."""
+    import subprocess
+
+    out = subprocess.run(
+        [require("fincore"), "--bytes", "--noheadings", "--output", "RES", str(path)],
+        capture_output=True,
+        text=True,
+        check=True,
+    )
+    return int(out.stdout.split()[0])
+
+
+def test_synced_journal_bytes_leave_the_page_cache(tmp_path: Path) -> None:
+    """Once a segment's bytes are on disk the page cache lets them go (storage.CLEAN_BYTES), after
+    `sync` and after a background fsync alike; the records read back the same. Reference: fincore
+    from util-linux, which asks the kernel (mincore) which of the file's pages are cached. At most
+    the last, partly written page stays."""
+    import msgpack
+
+    seg = tmp_path / "journal-000000000000.omj"
+    rng = np.random.default_rng(11)
+    bodies = [msgpack.packb({"cols": ["route_km"], "rows": rng.bytes(80_000)}) for _ in range(50)]
+    with JournalWriter(seg) as j:
+        j.write_all(1.0, bodies[:25])
+        assert _resident_bytes(seg) > 1_000_000  # written, not yet on disk: cached
+        j.sync()
+        assert _resident_bytes(seg) <= 4096
+        j.write_all(2.0, bodies[25:])
+        assert j.sync_later()
+        assert j.synced_to(wait=True) == seg.stat().st_size
+        assert _resident_bytes(seg) <= 4096
+    assert [b for _, _, b in read_journal(seg)] == [msgpack.unpackb(b) for b in bodies]
+
+
+def test_cleaning_steps_advise_dropping_the_segment_so_far(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Between fsyncs, every CLEAN_BYTES appended the writer advises the system to drop the segment
+    so far (the pages on disk go; the others start to be written, and go at a later step). The
+    advice is recorded here in place of posix_fadvise: from the segment's start to within the
+    file, ends CLEAN_BYTES or more apart, the last within two steps of the end."""
+    from oddsmill import storage
+
+    advised: list[tuple[int, int, int]] = []
+
+    def record(fd: int, offset: int, length: int, advice: int) -> None:
+        advised.append((offset, offset + length, os.fstat(fd).st_size))
+        assert advice == os.POSIX_FADV_DONTNEED
+
+    monkeypatch.setattr(storage, "_advise", record)
+    seg = tmp_path / "journal-000000000000.omj"
+    body = bytes(100_000)
+    with JournalWriter(seg) as j:
+        for _ in range(5 * storage.CLEAN_BYTES // len(body)):
+            j.write_all(1.0, [body])
+    assert len(advised) >= 3
+    ends = [0] + [end for _, end, _ in advised]
+    for k, (start, end, size) in enumerate(advised):
+        assert start == 0 and end <= size
+        assert end - ends[k] >= storage.CLEAN_BYTES
+    assert seg.stat().st_size - advised[-1][1] < 2 * storage.CLEAN_BYTES
 
 
 @pytest.mark.parametrize("first", ["append_all then flush", "write_all"])

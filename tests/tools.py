@@ -1,4 +1,4 @@
-"""Outside programs the integration tests drive: Chromium, Prometheus, promtool, tmux; and a
+"""Outside programs the integration tests drive: Chromium, Prometheus, promtool, tmux, fincore; and a
 reader of the names in a learner's state.
 
 `.ci/run` installs them from Debian's packages. Missing from a developer's machine, their tests
