@@ -33,6 +33,7 @@ import sys
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -307,8 +308,13 @@ def _tidy(server: Running, producer: subprocess.Popen[str] | None, ctx: zmq.Cont
     server.stop()
 
 
-def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
+def throughput(
+    kind: str, shape: str, n: int, before_stop: Callable[[Running], dict[str, float]] | None = None
+) -> dict[str, float]:
+    """Events/s of one server over n events of a shape, and its peak memory; `before_stop` (a
+    script's) looks at the server after its last answer, and what it returns joins the figures."""
     server = Running(kind, "pull")
+    seen: dict[str, float] = {}
     ctx: zmq.Context[Any] = zmq.Context()
     producer: subprocess.Popen[str] | None = None
     try:
@@ -349,9 +355,11 @@ def throughput(kind: str, shape: str, n: int) -> dict[str, float]:
             got += 1
         last = time.perf_counter()
         producer.wait(60)
+        if before_stop is not None:
+            seen = before_stop(server)
     finally:
         _tidy(server, producer, ctx)
-    out = {"events_per_s": n / (last - first), "peak_memory_mib": server.peak / 1024}
+    out = {"events_per_s": n / (last - first), "peak_memory_mib": server.peak / 1024, **seen}
     if kind == "journaled_floor":
         out["journal_bytes"] = server.journal_bytes
     return out
