@@ -181,8 +181,9 @@ def test_synced_journal_bytes_leave_the_page_cache(tmp_path: Path) -> None:
 def test_cleaning_steps_advise_dropping_the_segment_so_far(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     """Between fsyncs, every CLEAN_BYTES appended the writer advises the system to drop the segment
     so far (the pages on disk go; the others start to be written, and go at a later step). The
-    advice is recorded here in place of posix_fadvise: from the segment's start to within the
-    file, ends CLEAN_BYTES or more apart, the last within two steps of the end."""
+    advice is recorded here in place of posix_fadvise, each step waited for before the next write
+    (a step still running when one falls due puts it off to the next write): from the segment's
+    start to its end at the step, a step at the first write CLEAN_BYTES past the last."""
     from oddsmill import storage
 
     advised: list[tuple[int, int, int]] = []
@@ -194,15 +195,18 @@ def test_cleaning_steps_advise_dropping_the_segment_so_far(tmp_path: Path, monke
     monkeypatch.setattr(storage, "_advise", record)
     seg = tmp_path / "journal-000000000000.omj"
     body = bytes(100_000)
+    record = len(journal_record(1.0, body))
     with JournalWriter(seg) as j:
-        for _ in range(5 * storage.CLEAN_BYTES // len(body)):
+        while j.tell() < 5 * (storage.CLEAN_BYTES + record):  # five steps, and less than a sixth
             j.write_all(1.0, [body])
-    assert len(advised) >= 3
+            if j._cleaning is not None:
+                j._cleaning.result()
+    assert len(advised) == 5
     ends = [0] + [end for _, end, _ in advised]
     for k, (start, end, size) in enumerate(advised):
-        assert start == 0 and end <= size
-        assert end - ends[k] >= storage.CLEAN_BYTES
-    assert seg.stat().st_size - advised[-1][1] < 2 * storage.CLEAN_BYTES
+        assert start == 0 and end == size
+        assert storage.CLEAN_BYTES <= end - ends[k] < storage.CLEAN_BYTES + record
+    assert seg.stat().st_size - advised[-1][1] < storage.CLEAN_BYTES
 
 
 @pytest.mark.parametrize("first", ["append_all then flush", "write_all"])
