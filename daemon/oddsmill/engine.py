@@ -200,7 +200,7 @@ class Engine:
         its score, its rejection, or None for an outcome joined (it publishes nothing). A lone
         message is most wake-ups of the daemon at a modest load, where the block around one event
         cost twice what the event did."""
-        if not self._sequence_ok(ev):
+        if not self.numbered(ev.src, ev.seq):
             return self._reject(ev.id, "duplicate", f"seq {ev.seq} from {ev.src!r} was seen already")
         if self.pending:
             self._expire(arrival)
@@ -272,7 +272,7 @@ class Engine:
             if isinstance(item, ProtocolError):
                 results.append((n, self._reject(item.event_id, item.reason, item.detail)))
                 continue
-            if not self._sequence_ok(item):
+            if not self.numbered(item.src, item.seq):
                 results.append(
                     (
                         n,
@@ -492,9 +492,6 @@ class Engine:
     def _reject(self, ident: Any, reason: str, detail: str) -> Rejection:
         self.counters.rejected[reason] = self.counters.rejected.get(reason, 0) + 1
         return Rejection(ident, reason, detail)
-
-    def _sequence_ok(self, item: Event | Columns) -> bool:
-        return self.numbered(item.src, item.seq)
 
     def numbered(self, src: str | None, seq: int | None) -> bool:
         """A message's number: False for a duplicate. A gap counts as lost; a repeat is a
