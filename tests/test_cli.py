@@ -130,6 +130,14 @@ def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path
         (["inspect", "no-such-state"], "no such file or directory"),
         (["fit"], "the following arguments are required"),
         (["frobnicate"], "invalid choice"),
+        # send: the file is read before anything connects, so these come at once, not after --wait
+        (["send", "nowhere.jsonl", "--to", "tcp://127.0.0.1:1"], "nowhere.jsonl: no such file"),
+        (["send", str(DEMO), "--to", "nowhere"], "--to: cannot connect to 'nowhere'"),
+        (["send", str(DEMO), "--batch", "0"], "--batch must be >= 1, got 0"),
+        (["send", str(DEMO), "--wait", "0"], "--wait must be > 0"),
+        (["listen", "--from", "nowhere"], "--from: cannot connect to 'nowhere'"),
+        (["listen", "--count", "0"], "--count must be >= 1, got 0"),
+        (["listen", "--timeout", "-1"], "--timeout must be > 0"),
     ],
 )
 def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys) -> None:  # type: ignore[no-untyped-def]
@@ -137,6 +145,22 @@ def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys)
     assert code == 2
     assert needle in err
     assert len(err.strip().splitlines()) == 1
+
+
+def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ignore[no-untyped-def]
+    """No daemon subscribed at the address within --wait: one line naming the address, exit 1 (it
+    was a TimeoutError's traceback after 10 s)."""
+    import socket
+
+    with socket.socket() as s:  # a port nothing listens on
+        s.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
+    code, _, err = run(["send", str(DEMO), "--to", address, "--wait", "0.3"], capsys)
+    assert code == 1
+    assert err.strip() == (
+        f"oddsmill: no daemon took the stream at {address} within 0.3 s (is `oddsmill serve` running with"
+        f" --ingest {address}? --wait gives it longer)"
+    )
 
 
 def test_config_file_and_flags(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]

@@ -121,3 +121,14 @@ def test_listen_command_prints_scores_as_json(daemon, capsys) -> None:  # type: 
     lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
     assert len(lines) == 3
     assert all(d["topic"] == "scores" and d["id"] == "probe" and 0.0 < d["p"] < 1.0 for d in lines)
+
+
+def test_a_bad_address_is_a_value_error_naming_it() -> None:
+    """pyzmq's own error says only "Invalid argument"; the client names the address, and leaves no
+    socket open (the context terminates at once)."""
+    ctx: zmq.Context[Any] = zmq.Context()
+    with pytest.raises(ValueError, match="cannot connect to 'route-7'"):
+        Producer("route-7", context=ctx)
+    with pytest.raises(ValueError, match="cannot connect to 'depot:7572'"):
+        ScoreSubscriber("depot:7572", context=ctx)
+    ctx.term()

@@ -11,6 +11,7 @@ import numpy as np
 import zmq
 
 from .keys import CurveKeys
+from .sockets import connect
 
 
 class Producer:
@@ -27,6 +28,9 @@ class Producer:
     `batch > 1`, events are sent `batch` at a time as `{"batch": [...]}`; `flush` sends what is
     waiting, and `close` flushes. With `curve`, the connection is authenticated and encrypted (a
     daemon that requires CURVE ignores a producer without an allowed key).
+
+    Raises ValueError for a bad address, kind or batch, and TimeoutError when a pub producer's
+    daemon has not subscribed within `wait_for_daemon` seconds (the socket is closed either way).
     """
 
     def __init__(
@@ -50,7 +54,7 @@ class Producer:
         self._sock.setsockopt(zmq.LINGER, 2000)  # close waits this long for queued messages
         if curve is not None:
             curve.apply(self._sock)
-        self._sock.connect(address)
+        connect(self._sock, address)
         self._topic = topic.encode()
         self._src = src
         self._seq = 0

@@ -10,6 +10,7 @@ import msgpack
 import zmq
 
 from .keys import CurveKeys
+from .sockets import connect
 
 
 class ScoreSubscriber:
@@ -17,7 +18,8 @@ class ScoreSubscriber:
 
     Columnar score blocks carry `p` and `logit` as float64 little-endian bytes; `decode_columns`
     turns them into lists. With `curve`, the connection is authenticated and encrypted (a daemon
-    that requires CURVE sends nothing to a subscriber without an allowed key).
+    that requires CURVE sends nothing to a subscriber without an allowed key). A bad address raises
+    ValueError.
     """
 
     def __init__(
@@ -34,7 +36,7 @@ class ScoreSubscriber:
             curve.apply(self._sock)
         for topic in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, topic.encode())
-        self._sock.connect(address)
+        connect(self._sock, address)
 
     def receive(self, timeout: float | None = None) -> tuple[str, dict[str, Any]]:
         """The next message; TimeoutError when none arrives within `timeout` seconds."""

@@ -13,6 +13,7 @@ import sys
 import tomllib
 from collections.abc import Iterator
 from dataclasses import fields
+from itertools import chain
 from pathlib import Path
 from typing import Any
 
@@ -523,11 +524,30 @@ def cmd_send(args: argparse.Namespace) -> int:
 
     if args.rate < 0:
         raise UsageError(f"--rate must be >= 0, got {args.rate}")
+    if args.batch < 1:
+        raise UsageError(f"--batch must be >= 1, got {args.batch}")
+    if args.wait <= 0:
+        raise UsageError(f"--wait must be > 0, got {args.wait}")
     source = _stdin_bodies() if args.file == "-" else read_bodies([args.file])
+    # the first body before connecting: a file that is missing or not a log is said at once, not
+    # after --wait seconds without a daemon
+    first = next(source, None)
+    curve = _client_curve(args)
     t0 = time.monotonic()
     sent = 0
-    with Producer(args.to, kind=args.kind, src=args.src, batch=args.batch, curve=_client_curve(args)) as out:
-        for _, body, where in source:
+    try:
+        producer = Producer(
+            args.to, kind=args.kind, src=args.src, batch=args.batch, wait_for_daemon=args.wait, curve=curve
+        )
+    except ValueError as e:
+        raise UsageError(f"--to: {e}") from None
+    except TimeoutError:
+        raise OddsmillError(
+            f"no daemon took the stream at {args.to} within {args.wait:g} s (is `oddsmill serve` running with"
+            f" --ingest {args.to}? --wait gives it longer)"
+        ) from None
+    with producer as out:
+        for _, body, where in chain([] if first is None else [first], source):
             if not isinstance(body, dict):
                 raise InputFileError(where, None, "a message must be a map")
             out.send(body)
@@ -581,8 +601,16 @@ def cmd_listen(args: argparse.Namespace) -> int:
     from oddsmill_client import ScoreSubscriber
     from oddsmill_client.subscriber import decode_columns
 
+    if args.count is not None and args.count < 1:
+        raise UsageError(f"--count must be >= 1, got {args.count}")
+    if args.timeout is not None and args.timeout <= 0:
+        raise UsageError(f"--timeout must be > 0, got {args.timeout}")
     received = 0
-    with ScoreSubscriber(args.source, curve=_client_curve(args)) as scores:
+    try:
+        subscriber = ScoreSubscriber(args.source, curve=_client_curve(args))
+    except ValueError as e:
+        raise UsageError(f"--from: {e}") from None
+    with subscriber as scores:
         while args.count is None or received < args.count:
             try:
                 topic, body = scores.receive(timeout=args.timeout)
@@ -766,6 +794,9 @@ def build_parser() -> argparse.ArgumentParser:
     se.add_argument("--rate", type=float, default=0.0, help="events a second (0: as fast as possible)")
     se.add_argument("--src", default=None, help="number the messages under this producer name")
     se.add_argument("--batch", type=int, default=1, help="events a message")
+    se.add_argument(
+        "--wait", type=float, default=10.0, metavar="SECONDS", help="how long to wait for the daemon (--kind pub)"
+    )
     _client_curve_options(se)
     se.set_defaults(func=cmd_send)
 
