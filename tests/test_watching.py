@@ -280,6 +280,7 @@ def test_watch_once_against_no_daemon_says_so_and_fails() -> None:
     )
     assert done.returncode == 1
     assert "not answering" in done.stderr
+    assert "trying again" not in done.stderr  # (--once does not)
 
 
 # -- the report ----------------------------------------------------------------------------------------

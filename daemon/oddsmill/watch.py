@@ -147,10 +147,10 @@ def watch(http: str, interval: float, once: bool, out: TextIO = sys.stdout) -> i
             screen = render(fetch(http), http, width)
         except (urllib.error.URLError, OSError, ValueError) as e:
             reason = getattr(e, "reason", e)
-            screen = f"oddsmill at {http}: not answering ({reason}); trying again every {interval:g} s\n"
             if once:
-                print(screen, end="", file=sys.stderr)
+                print(f"oddsmill at {http}: not answering ({reason})", file=sys.stderr)
                 return 1
+            screen = f"oddsmill at {http}: not answering ({reason}); trying again every {interval:g} s\n"
         if once:
             out.write(screen)
             return 0
