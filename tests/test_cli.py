@@ -130,6 +130,10 @@ def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path
         (["inspect", "no-such-state"], "no such file or directory"),
         (["fit"], "the following arguments are required"),
         (["frobnicate"], "invalid choice"),
+        (
+            ["demo", "--events", "10"],
+            "oddsmill: oddsmill demo: unrecognized arguments: --events 10 (oddsmill demo --help",
+        ),
         # send: the file is read before anything connects, so these come at once, not after --wait
         (["send", "nowhere.jsonl", "--to", "tcp://127.0.0.1:1"], "nowhere.jsonl: no such file"),
         (["send", str(DEMO), "--to", "nowhere"], "--to: cannot connect to 'nowhere'"),

@@ -857,7 +857,12 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     logging.basicConfig(level=logging.INFO, format="oddsmill: %(message)s", stream=sys.stderr)
     try:
-        args = build_parser().parse_args(argv)
+        args, extra = build_parser().parse_known_args(argv)
+        if extra:  # (argparse's own message names neither the command nor its help)
+            raise UsageError(
+                f"oddsmill {args.command}: unrecognized arguments: {' '.join(extra)}"
+                f" (oddsmill {args.command} --help lists them)"
+            )
         return int(args.func(args))
     except (UsageError, ConfigError, InputFileError, CheckpointError, AliasedError) as e:
         print(f"oddsmill: {e}", file=sys.stderr)
