@@ -325,6 +325,9 @@ def test_http_metrics_status_and_health(tmp_path: Path) -> None:
     assert samples[("oddsmill_log_loss", ())] == pytest.approx(log_loss(ys, ps, labels=[0, 1]), rel=1e-9)
     assert doc["log_loss"] == samples[("oddsmill_log_loss", ())]
     assert urllib.request.urlopen(f"{base}/healthz", timeout=5).status == 200
+    for path in ("/healthz", "/metrics", "/api/status", "/"):  # HEAD: GET's status and headers, no body
+        with urllib.request.urlopen(urllib.request.Request(f"{base}{path}", method="HEAD"), timeout=5) as r:
+            assert r.status == 200 and r.read() == b"" and int(r.headers["Content-Length"]) > 0, path
     client.close()
     running.close()
 

@@ -392,6 +392,14 @@ def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer,
     """Start the HTTP endpoints in a daemon thread; returns the server (its port is bound)."""
 
     class Handler(BaseHTTPRequestHandler):
+        head = False
+
+        def do_HEAD(self) -> None:  # noqa: N802
+            """GET's status and headers without the body: load balancers and uptime checks ask
+            /healthz this way."""
+            self.head = True
+            self.do_GET()
+
         def do_GET(self) -> None:  # noqa: N802 (the name http.server calls)
             path = self.path.split("?", 1)[0]
             if path == "/metrics":
@@ -413,7 +421,8 @@ def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer,
             self.send_header("Content-Type", ctype)
             self.send_header("Content-Length", str(len(body)))
             self.end_headers()
-            self.wfile.write(body)
+            if not self.head:
+                self.wfile.write(body)
 
         def log_message(self, format: str, *args: Any) -> None:  # noqa: A002 (the base class's name)
             pass
