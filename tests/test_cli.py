@@ -151,6 +151,17 @@ def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys)
     assert len(err.strip().splitlines()) == 1
 
 
+def test_an_empty_log_replays_to_a_model_with_no_log_loss_to_show(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """No labelled events: replay and inspect say so in words (they printed "log-loss nan")."""
+    (tmp_path / "empty.jsonl").write_text("")
+    code, out, err = run(["replay", str(tmp_path / "empty.jsonl"), "--state", str(tmp_path / "s")], capsys)
+    assert code == 0, err
+    assert "no labelled events: no progressive log-loss" in out and "nan" not in out
+    code, out, err = run(["inspect", str(tmp_path / "s")], capsys)
+    assert code == 0, err
+    assert "no labelled events yet: no progressive log-loss" in out and "nan" not in out
+
+
 def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ignore[no-untyped-def]
     """No daemon subscribed at the address within --wait: one line naming the address, exit 1 (it
     was a TimeoutError's traceback after 10 s)."""

@@ -165,7 +165,10 @@ def cmd_replay(args: argparse.Namespace) -> int:
         f"{report.epochs} epoch(s), {report.seconds:.1f} s "
         f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s)"
     )
-    print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
+    if m.count:
+        print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
+    else:
+        print("no labelled events: no progressive log-loss")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
     print(f"checkpoint {path}")
@@ -352,11 +355,14 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"learning rate {m['learning_rate']:.3g}   averaging {'on' if s['average'] else 'off'}"
     )
     print("settings: " + ", ".join(f"{k}={v}" for k, v in s.items()))
-    print(
-        f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
-        f"window: log-loss {m['log_loss_window']:.5f}, Brier {m['brier_window']:.5f}, "
-        f"calibration error {m['calibration_error_window']:.4f}"
-    )
+    if m["log_loss_count"]:
+        print(
+            f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
+            f"window: log-loss {m['log_loss_window']:.5f}, Brier {m['brier_window']:.5f}, "
+            f"calibration error {m['calibration_error_window']:.4f}"
+        )
+    else:
+        print("no labelled events yet: no progressive log-loss")
     bins = [b for b in m["calibration_bins"] if b["count"]]
     if bins:
         print(
