@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import re
 import threading
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import msgpack
 import numpy as np
 import pytest
 import zmq
@@ -131,4 +133,32 @@ def test_a_bad_address_is_a_value_error_naming_it() -> None:
         Producer("route-7", context=ctx)
     with pytest.raises(ValueError, match="cannot connect to 'depot:7572'"):
         ScoreSubscriber("depot:7572", context=ctx)
+    ctx.term()
+
+
+@pytest.mark.parametrize(
+    ("y", "ids", "says"),
+    [
+        ([1, 0], None, "y must have one label a row (3), got 2"),
+        ([1, 0, 7], None, "a label must be 0, 1 or None, got 7"),
+        ([1, None, -1], None, "a label must be 0, 1 or None, got -1"),
+        (None, ["p-1"], "ids must have one id a row (3), got 1"),
+    ],
+)
+def test_a_columnar_block_of_the_wrong_shape_is_refused_before_sending(y: Any, ids: Any, says: str) -> None:
+    """The daemon would refuse these (rejects topic, asynchronously); the client says so at once and
+    sends nothing."""
+    ctx: zmq.Context[Any] = zmq.Context()
+    pull = ctx.socket(zmq.PULL)
+    port = pull.bind_to_random_port("tcp://127.0.0.1")
+    with Producer(f"tcp://127.0.0.1:{port}", kind="push", context=ctx) as out:
+        with pytest.raises(ValueError, match=re.escape(says)):
+            out.send_columns(["route_km", "stops"], np.zeros((3, 2)), y=y, ids=ids)
+        assert out.sent == 0
+        out.send_columns(["route_km", "stops"], np.zeros((3, 2)), y=[1, None, 0], ids=["a", "b", "c"])
+        assert out.sent == 1
+    assert pull.poll(5000)
+    assert msgpack.unpackb(pull.recv_multipart()[1])["y"] == bytes([1, 255, 0])
+    assert not pull.poll(200)  # the refused ones never left
+    pull.close(0)
     ctx.term()

@@ -108,14 +108,25 @@ class Producer:
         y: Sequence[int | None] | None = None,
         ids: Sequence[str | int] | None = None,
     ) -> None:
-        """Send a columnar block of numeric features: `rows` is n x len(cols)."""
+        """Send a columnar block of numeric features: `rows` is n x len(cols); `y` (0, 1, or None for
+        a row to score only) and `ids`, when given, one a row. ValueError, with nothing sent, for a
+        block the daemon would refuse for its shape."""
         matrix = np.ascontiguousarray(rows, dtype="<f8")
         if matrix.ndim != 2 or matrix.shape[1] != len(cols):
             raise ValueError(f"rows must be n x {len(cols)}, got shape {matrix.shape}")
+        n = matrix.shape[0]
         body: dict[str, Any] = {"cols": list(cols), "rows": matrix.tobytes()}
         if y is not None:
-            body["y"] = bytes(255 if v is None else int(v) for v in y)
+            labels = list(y)
+            if len(labels) != n:
+                raise ValueError(f"y must have one label a row ({n}), got {len(labels)}")
+            bad = [v for v in labels if v is not None and v not in (0, 1)]
+            if bad:
+                raise ValueError(f"a label must be 0, 1 or None, got {bad[0]!r}")
+            body["y"] = bytes(255 if v is None else int(v) for v in labels)
         if ids is not None:
+            if len(ids) != n:
+                raise ValueError(f"ids must have one id a row ({n}), got {len(ids)}")
             body["id"] = list(ids)
         self.flush()
         self._send(self._envelope(body))
