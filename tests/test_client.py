@@ -162,3 +162,20 @@ def test_a_columnar_block_of_the_wrong_shape_is_refused_before_sending(y: Any, i
     assert not pull.poll(200)  # the refused ones never left
     pull.close(0)
     ctx.term()
+
+
+def test_an_event_that_is_not_a_mapping_and_a_timeout_below_zero() -> None:
+    """send([...]) said "cannot convert dictionary update sequence element #0"; receive(timeout=-1)
+    waited for ever (ZeroMQ's poll takes a negative timeout as no limit)."""
+    ctx: zmq.Context[Any] = zmq.Context()
+    with Producer("tcp://127.0.0.1:9", kind="push", context=ctx) as out:
+        with pytest.raises(TypeError, match="an event is a mapping .PROTOCOL 2., got list"):
+            out.send([("x", {"stops": 1.0})])  # type: ignore[arg-type]
+        assert out.sent == 0
+        out._sock.setsockopt(zmq.LINGER, 0)  # (nothing listens: close need not wait)
+    sub = ScoreSubscriber("tcp://127.0.0.1:9", context=ctx)
+    for timeout in (-1.0, 0.0):
+        with pytest.raises(TimeoutError):
+            sub.receive(timeout=timeout)
+    sub.close()
+    ctx.term()

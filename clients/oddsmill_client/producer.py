@@ -88,6 +88,8 @@ class Producer:
 
     def send(self, event: Mapping[str, Any]) -> None:
         """Send one event (a training event, a scoring request or an outcome)."""
+        if not isinstance(event, dict) and not isinstance(event, Mapping):
+            raise TypeError(f"an event is a mapping (PROTOCOL 2), got {type(event).__name__}")
         if self._batch == 1:
             self._send(self._envelope(dict(event)))
             return

@@ -39,8 +39,9 @@ class ScoreSubscriber:
         connect(self._sock, address)
 
     def receive(self, timeout: float | None = None) -> tuple[str, dict[str, Any]]:
-        """The next message; TimeoutError when none arrives within `timeout` seconds."""
-        if timeout is not None and not self._sock.poll(int(timeout * 1000)):
+        """The next message; TimeoutError when none arrives within `timeout` seconds (at once when
+        `timeout` is 0 or less and none is waiting; None waits for ever)."""
+        if timeout is not None and not self._sock.poll(max(0, int(timeout * 1000))):  # (ZeroMQ: < 0 is for ever)
             raise TimeoutError(f"no score within {timeout:g} s")
         topic, raw = self._sock.recv_multipart()
         return topic.decode(), msgpack.unpackb(raw, raw=False)
