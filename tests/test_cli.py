@@ -162,6 +162,32 @@ def test_an_empty_log_replays_to_a_model_with_no_log_loss_to_show(tmp_path: Path
     assert "no labelled events yet: no progressive log-loss" in out and "nan" not in out
 
 
+@pytest.mark.parametrize(
+    ("lines", "says"),
+    [
+        ([], "no events"),
+        (['{"x": {"a": 1}, "y": 1}'], ":1: not a line of the demo's log"),  # a training event, no id or ts
+        (['{"id": "p1", "x": {"a": 1}, "ts": 1.7e9}', '{"id": "p2", "y": 1, "ts": 1.7e9}'], ":2: not a line"),
+        (['{"id": "p1", "x": {"a": 1}, "ts": "Monday"}'], ":1: not a line"),
+    ],
+)
+def test_the_demo_refuses_a_log_not_of_its_shape_before_starting(  # type: ignore[no-untyped-def]
+    lines: list[str], says: str, tmp_path: Path, capsys
+) -> None:
+    """An other log crashed the demo mid-run (KeyError: 'ts'), after its daemon had started."""
+    import glob
+    import tempfile
+
+    before = set(glob.glob(f"{tempfile.gettempdir()}/oddsmill-demo-*"))
+    log = tmp_path / "other.jsonl"
+    log.write_text("".join(line + "\n" for line in lines))
+    code, out, err = run(["demo", "--data", str(log)], capsys)
+    assert code == 2
+    assert says in err and len(err.strip().splitlines()) == 1
+    assert "dashboard" not in out  # refused before the daemon started
+    assert set(glob.glob(f"{tempfile.gettempdir()}/oddsmill-demo-*")) == before  # and nothing left behind
+
+
 def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ignore[no-untyped-def]
     """No daemon subscribed at the address within --wait: one line naming the address, exit 1 (it
     was a TimeoutError's traceback after 10 s)."""

@@ -12,6 +12,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import shutil
 import sys
 import tempfile
 import threading
@@ -25,6 +26,7 @@ from oddsmill_client import Producer, ScoreSubscriber
 
 from .demo_data import SNOW_DAYS, START, generate, to_jsonl_gz
 from .engine import Engine
+from .errors import InputFileError
 from .logs import read_bodies
 from .offline import fit_logs
 from .server import Server, ServerSettings
@@ -45,9 +47,25 @@ def demo_log(workdir: Path) -> Path:
 
 
 def _days(log: Path) -> list[list[dict[str, Any]]]:
+    """The log's events by the day of their ts. The demo takes logs of its own shape (as
+    `python -m oddsmill.demo_data` writes them): a line is a dispatch {"id", "x", "ts"} or the outcome
+    {"id", "y", "ts"} of a dispatch before it. Anything else is an InputFileError naming its line,
+    before the daemon starts."""
     days: dict[int, list[dict[str, Any]]] = {}
-    for _, body, _ in read_bodies([str(log)]):
-        days.setdefault(int((body["ts"] - START) // 86400), []).append(body)
+    dispatched: set[str | int] = set()
+    for _, body, where in read_bodies([str(log)]):
+        ts: Any = body.get("ts") if isinstance(body, dict) else None
+        ident: Any = body.get("id") if isinstance(body, dict) else None
+        timed = type(ts) in (int, float) and math.isfinite(ts) and type(ident) in (str, int)
+        if timed and "x" in body:
+            dispatched.add(ident)
+        elif not (timed and "y" in body and ident in dispatched):
+            raise InputFileError(
+                where, None, "not a line of the demo's log: a dispatch {id, x, ts}, or the outcome {id, y, ts} of one"
+            )
+        days.setdefault(int((ts - START) // 86400), []).append(body)
+    if not days:
+        raise InputFileError(str(log), None, "no events")
     return [days[d] for d in sorted(days)]
 
 
@@ -55,6 +73,11 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
     out = out or sys.stdout
     work = Path(tempfile.mkdtemp(prefix="oddsmill-demo-"))
     log = Path(args.data) if args.data else demo_log(work)
+    try:
+        days = _days(log)
+    except InputFileError:
+        shutil.rmtree(work, ignore_errors=True)
+        raise
     state = work / "state"
     settings = LearnerSettings()
     server = Server(
@@ -84,7 +107,7 @@ def run_demo(args: argparse.Namespace, out: Any = None) -> int:
         Producer(server.bound["ingest"], src="demo", batch=BATCH, context=ctx) as producer,
     ):
         scores.await_daemon(producer)
-        for day, bodies in enumerate(_days(log)):
+        for day, bodies in enumerate(days):
             want = len(published) + sum(1 for b in bodies if "x" in b)
             for body in bodies:
                 producer.send(body)
