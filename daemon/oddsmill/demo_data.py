@@ -107,7 +107,20 @@ def to_jsonl_gz(bodies: list[dict[str, object]]) -> bytes:
     return buf.getvalue()
 
 
+def main(argv: list[str] | None = None) -> int:
+    import argparse
+
+    ap = argparse.ArgumentParser(prog="python -m oddsmill.demo_data", description="write the demo log")
+    ap.add_argument("out", nargs="?", default="replay_data/parcels.jsonl.gz", help="where (.jsonl.gz)")
+    args = ap.parse_args(argv)
+    try:
+        with open(args.out, "wb") as f:
+            f.write(to_jsonl_gz(generate()))
+    except OSError as e:
+        print(f"{ap.prog}: cannot write {args.out} ({e.strerror})", file=sys.stderr)
+        return 2
+    return 0
+
+
 if __name__ == "__main__":
-    target = sys.argv[1] if len(sys.argv) > 1 else "replay_data/parcels.jsonl.gz"
-    with open(target, "wb") as f:
-        f.write(to_jsonl_gz(generate()))
+    sys.exit(main())
