@@ -64,10 +64,20 @@ def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     print(json.dumps(result["throughput"], indent=1))
 
 
-def test_bench_refuses_bad_arguments() -> None:
-    cmd = [sys.executable, "-m", "oddsmill.cli", "bench", "--shapes", "one,rows"]
+@pytest.mark.parametrize(
+    ("args", "says"),
+    [
+        (["--shapes", "one,rows"], "--shapes takes one, batch and cols, comma-separated; got 'one,rows'"),
+        (["--shapes", ","], "--shapes takes one, batch and cols"),
+        (["--events", "-5"], "--events must be at least 1000, got -5"),
+        (["--rate", "0"], "--rate must be > 0, got 0.0"),
+        (["--seconds", "nan"], "--seconds must be > 0, got nan"),
+    ],
+)
+def test_bench_refuses_bad_arguments(args: list[str], says: str) -> None:
+    cmd = [sys.executable, "-m", "oddsmill.cli", "bench", *args]
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=60)
-    assert done.returncode == 2 and "bad arguments" in done.stderr
+    assert done.returncode == 2 and done.stderr.strip() == f"oddsmill bench: {says}"
 
 
 def test_a_failed_run_leaves_no_process_or_directory_behind(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -551,12 +551,15 @@ def main(argv: list[str] | None = None) -> int:
 def bench(args: argparse.Namespace) -> int:
     shapes = [s for s in args.shapes.split(",") if s]
     bad = [s for s in shapes if s not in ("one", "batch", "cols")]
-    if bad or args.events < 2 * BLOCK or not args.rate > 0 or not args.seconds > 0:
-        print(
-            f"oddsmill bench: bad arguments (shapes {bad}, events >= {2 * BLOCK}, rate and seconds > 0)",
-            file=sys.stderr,
-        )
-        return 2
+    for wrong, problem in (
+        (bad or not shapes, f"--shapes takes one, batch and cols, comma-separated; got {args.shapes!r}"),
+        (args.events < 2 * BLOCK, f"--events must be at least {2 * BLOCK}, got {args.events}"),
+        (not args.rate > 0, f"--rate must be > 0, got {args.rate}"),
+        (not args.seconds > 0, f"--seconds must be > 0, got {args.seconds}"),
+    ):
+        if wrong:
+            print(f"oddsmill bench: {problem}", file=sys.stderr)
+            return 2
     try:
         import river  # noqa: F401
     except ImportError:
