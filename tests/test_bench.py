@@ -68,7 +68,7 @@ def test_bench_measures_every_server_and_reports_ratios(tmp_path: Path) -> None:
     ("args", "says"),
     [
         (["--shapes", "one,rows"], "--shapes takes one, batch and cols, comma-separated; got 'one,rows'"),
-        (["--shapes", ","], "--shapes takes one, batch and cols"),
+        (["--shapes", ","], "--shapes takes one, batch and cols, comma-separated; got ','"),
         (["--events", "-5"], "--events must be at least 1000, got -5"),
         (["--rate", "0"], "--rate must be > 0, got 0.0"),
         (["--seconds", "nan"], "--seconds must be > 0, got nan"),
