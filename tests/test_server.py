@@ -230,6 +230,56 @@ def test_a_state_directory_in_use_is_refused_and_left_as_it_was(tmp_path: Path) 
     assert done.returncode == 0, done.stderr
 
 
+@pytest.mark.parametrize("damage", ["middle", "tail"])
+def test_a_segment_damaged_in_its_middle_is_kept_whole_before_it_is_cut(  # type: ignore[no-untyped-def]
+    tmp_path: Path, damage: str, caplog
+) -> None:
+    """A restart cuts the last segment at its first bad record (PROTOCOL 6). A tail torn by a crash
+    is cut and forgotten; a record damaged in the middle, with good records after it, is cut too,
+    but the segment's bytes are kept whole beside it, and the log says so as an error."""
+    import logging
+
+    import msgpack
+    from oddsmill.server import Server, ServerSettings
+
+    class Quiet:
+        def send(self, *a: Any, **k: Any) -> None:
+            pass
+
+    settings = ServerSettings(state_dir=tmp_path, http="off", fsync="block")
+    server = Server(settings)
+    for b in bodies(40, seed=3):
+        server.handle([[b"events", msgpack.packb(b)]], Quiet())  # type: ignore[arg-type]
+    server.close()  # (no checkpoint: the restart replays the whole segment)
+    (seg,) = list_journal(tmp_path)
+    ends = [end for end, _, _ in read_journal(seg)]
+    original = seg.read_bytes()
+    if damage == "middle":
+        bad_at = ends[19]  # the 21st record: a byte of its payload flipped
+        damaged = bytearray(original)
+        damaged[bad_at + 20] ^= 0xFF
+        seg.write_bytes(bytes(damaged))
+    else:
+        bad_at = len(original)
+        seg.write_bytes(original + original[ends[0] : ends[1]][:-5])  # a record cut short
+    before = seg.read_bytes()
+    caplog.clear()
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        restarted = Server(settings)
+    restarted.close()
+    assert seg.read_bytes() == before[:bad_at]
+    kept = sorted(tmp_path.glob(f"{seg.name}.damaged-*"))
+    if damage == "middle":
+        assert len(kept) == 1 and kept[0].read_bytes() == before
+        error = [r for r in caplog.records if r.levelno == logging.ERROR]
+        assert (
+            len(error) == 1 and f"a damaged record at byte {bad_at}, and good records after it" in error[0].getMessage()
+        )
+    else:
+        assert kept == []
+        assert any("cutting a torn tail" in r.getMessage() for r in caplog.records)
+
+
 def test_a_state_directory_that_cannot_be_made_is_a_clear_error(tmp_path: Path) -> None:
     """`serve --state` under a path that is a file: exit 2 and one line that says why (it was a
     traceback from the directory's creation before the state directory had a holder)."""

@@ -15,6 +15,7 @@ from __future__ import annotations
 import ipaddress
 import logging
 import math
+import shutil
 import threading
 import time
 from collections.abc import Callable
@@ -48,6 +49,7 @@ from .storage import (
     KEEP,
     JournalWriter,
     Read,
+    good_record_after,
     hold_state_dir,
     list_journal,
     load_newest,
@@ -433,7 +435,24 @@ class Server:
                 number = max(self.records, int(last.stem.split("-")[-1]) + 1)
                 return JournalWriter(self.settings.state_dir / f"journal-{number:012d}.omj")
             if size > good:
-                log.warning("%s: cutting a torn tail at byte %d", last.name, good)
+                later = good_record_after(last, good)
+                if later is None:
+                    log.warning("%s: cutting a torn tail at byte %d", last.name, good)
+                else:
+                    # Not a tail torn by a crash: a record damaged in the middle, good ones after it.
+                    # The segment is cut there all the same (the records after a damaged one cannot
+                    # be learned in order), but its bytes are kept whole beside it first.
+                    kept = last.with_name(f"{last.name}.damaged-{time.strftime('%Y%m%dT%H%M%S')}")
+                    shutil.copyfile(last, kept)
+                    log.error(
+                        "%s: a damaged record at byte %d, and good records after it from byte %d: cutting "
+                        "the segment at byte %d, and keeping it whole as %s",
+                        last.name,
+                        good,
+                        later,
+                        good,
+                        kept.name,
+                    )
                 with open(last, "r+b") as f:
                     f.truncate(good)
             return JournalWriter(last)

@@ -503,6 +503,22 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
         pos = end
 
 
+def good_record_after(path: Path, start: int) -> int | None:
+    """Where the first record after the one at byte `start` begins whose length and CRC-32 hold
+    (and whose payload begins as every record's does, [float64 arrival, ...]), or None. A segment
+    with one after its first bad record was damaged in its middle, not torn at its end."""
+    with open(path, "rb") as f:
+        data = f.read()
+    at = data.find(b"\x92\xcb", start + _RECORD.size + 1)  # a payload's first bytes
+    while at != -1:
+        pos = at - _RECORD.size
+        length, crc = _RECORD.unpack_from(data, pos)
+        if 10 <= length <= MAX_RECORD and at + length <= len(data) and crc32(data[at : at + length]) == crc:
+            return pos
+        at = data.find(b"\x92\xcb", at + 1)
+    return None
+
+
 def list_journal(state_dir: Path) -> list[Path]:
     found = [p for p in state_dir.iterdir() if JOURNAL_RE.match(p.name)] if state_dir.is_dir() else []
     return sorted(found, key=lambda p: int(JOURNAL_RE.match(p.name).group(1)))  # type: ignore[union-attr]
