@@ -179,3 +179,26 @@ def test_an_event_that_is_not_a_mapping_and_a_timeout_below_zero() -> None:
             sub.receive(timeout=timeout)
     sub.close()
     ctx.term()
+
+
+def test_a_push_producer_with_a_send_timeout_says_when_no_daemon_takes_its_messages() -> None:
+    """Without a daemon a PUSH queues up to its high-water mark, then waits for ever; with
+    `send_timeout` that wait ends in TimeoutError, the batch still waiting, and leaving the block
+    does not wait again."""
+    import socket
+    import time
+
+    with socket.socket() as s:  # a port nothing listens on
+        s.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
+    ctx: zmq.Context[Any] = zmq.Context()
+    out = Producer(address, kind="push", batch=10, send_timeout=0.2, context=ctx)
+    t0 = time.monotonic()
+    with pytest.raises(TimeoutError, match="the daemon took no message within 0.2 s"):
+        with out:
+            for i in range(100_000):
+                out.send({"id": i, "x": {"stops": 1.0}})
+    assert time.monotonic() - t0 < 10
+    assert 0 < out.sent < 10_000  # (the queue took some messages before it was full)
+    assert len(out._pending) == 10  # the batch that timed out was not dropped from the producer
+    ctx.term()  # (the socket is closed: term returns at once)

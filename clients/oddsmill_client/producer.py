@@ -31,6 +31,8 @@ class Producer:
 
     Raises ValueError for a bad address, kind or batch, and TimeoutError when a pub producer's
     daemon has not subscribed within `wait_for_daemon` seconds (the socket is closed either way).
+    With `send_timeout`, a push producer's send that waits that long for the daemon raises
+    TimeoutError, the event not sent (without it a send waits as long as the daemon is behind).
     """
 
     def __init__(
@@ -44,6 +46,7 @@ class Producer:
         wait_for_daemon: float = 10.0,
         context: zmq.Context[Any] | None = None,
         curve: CurveKeys | None = None,
+        send_timeout: float | None = None,
     ) -> None:
         if kind not in ("pub", "push"):
             raise ValueError(f"kind must be pub or push, got {kind!r}")
@@ -52,6 +55,9 @@ class Producer:
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.XPUB if kind == "pub" else zmq.PUSH)
         self._sock.setsockopt(zmq.LINGER, 2000)  # close waits this long for queued messages
+        self._send_timeout = send_timeout
+        if send_timeout is not None:
+            self._sock.setsockopt(zmq.SNDTIMEO, max(0, int(send_timeout * 1000)))
         if curve is not None:
             curve.apply(self._sock)
         connect(self._sock, address)
@@ -83,7 +89,10 @@ class Producer:
         return body
 
     def _send(self, body: dict[str, Any]) -> None:
-        self._sock.send_multipart([self._topic, msgpack.packb(body, use_bin_type=True)])
+        try:
+            self._sock.send_multipart([self._topic, msgpack.packb(body, use_bin_type=True)])
+        except zmq.Again:  # (only with send_timeout: a push whose daemon took nothing in time)
+            raise TimeoutError(f"the daemon took no message within {self._send_timeout:g} s") from None
         self.sent += 1
 
     def send(self, event: Mapping[str, Any]) -> None:
@@ -100,8 +109,8 @@ class Producer:
     def flush(self) -> None:
         """Send the events waiting in a batch."""
         if self._pending:
-            body, self._pending = {"batch": self._pending}, []
-            self._send(body)
+            self._send({"batch": self._pending})
+            self._pending = []  # (after the send: a timed-out batch is still waiting)
 
     def send_columns(
         self,
@@ -140,5 +149,8 @@ class Producer:
     def __enter__(self) -> Producer:
         return self
 
-    def __exit__(self, *exc: object) -> None:
+    def __exit__(self, kind: object, error: object, tb: object) -> None:
+        if isinstance(error, TimeoutError):  # the daemon is not taking messages: no second wait
+            self._sock.close(0)
+            return
         self.close()

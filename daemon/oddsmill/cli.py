@@ -541,27 +541,38 @@ def cmd_send(args: argparse.Namespace) -> int:
     curve = _client_curve(args)
     t0 = time.monotonic()
     sent = 0
+    serve = "oddsmill serve" + (" --ingest-kind pull" if args.kind == "push" else "")
+    nobody = OddsmillError(
+        f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with --ingest"
+        f" {args.to}? --wait gives it longer)"
+    )
     try:
         producer = Producer(
-            args.to, kind=args.kind, src=args.src, batch=args.batch, wait_for_daemon=args.wait, curve=curve
+            args.to,
+            kind=args.kind,
+            src=args.src,
+            batch=args.batch,
+            wait_for_daemon=args.wait,
+            curve=curve,
+            send_timeout=args.wait if args.kind == "push" else None,
         )
     except ValueError as e:
         raise UsageError(f"--to: {e}") from None
     except TimeoutError:
-        raise OddsmillError(
-            f"no daemon took the stream at {args.to} within {args.wait:g} s (is `oddsmill serve` running with"
-            f" --ingest {args.to}? --wait gives it longer)"
-        ) from None
-    with producer as out:
-        for _, body, where in chain([] if first is None else [first], source):
-            if not isinstance(body, dict):
-                raise InputFileError(where, None, "a message must be a map")
-            out.send(body)
-            sent += 1
-            if args.rate:
-                ahead = sent / args.rate - (time.monotonic() - t0)
-                if ahead > 0:
-                    time.sleep(ahead)
+        raise nobody from None
+    try:
+        with producer as out:
+            for _, body, where in chain([] if first is None else [first], source):
+                if not isinstance(body, dict):
+                    raise InputFileError(where, None, "a message must be a map")
+                out.send(body)
+                sent += 1
+                if args.rate:
+                    ahead = sent / args.rate - (time.monotonic() - t0)
+                    if ahead > 0:
+                        time.sleep(ahead)
+    except TimeoutError:
+        raise nobody from None
     print(f"sent {sent:,} events to {args.to} in {time.monotonic() - t0:.1f} s", file=sys.stderr)
     return 0
 
@@ -801,7 +812,7 @@ def build_parser() -> argparse.ArgumentParser:
     se.add_argument("--src", default=None, help="number the messages under this producer name")
     se.add_argument("--batch", type=int, default=1, help="events a message")
     se.add_argument(
-        "--wait", type=float, default=10.0, metavar="SECONDS", help="how long to wait for the daemon (--kind pub)"
+        "--wait", type=float, default=10.0, metavar="SECONDS", help="how long to wait for the daemon to take the stream"
     )
     _client_curve_options(se)
     se.set_defaults(func=cmd_send)
