@@ -142,6 +142,9 @@ def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path
         (["listen", "--from", "nowhere"], "--from: cannot connect to 'nowhere'"),
         (["listen", "--count", "0"], "--count must be >= 1, got 0"),
         (["listen", "--timeout", "-1"], "--timeout must be > 0"),
+        (["keys", str(DEMO)], f"cannot make the directory {DEMO} (File exists)"),  # (a traceback before)
+        (["keys", "/proc/no-such-dir"], "cannot make the directory /proc/no-such-dir"),
+        (["keys", "/proc/no-such-dir", "--name", "../up"], "--name must be a plain file name, got '../up'"),
     ],
 )
 def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys) -> None:  # type: ignore[no-untyped-def]

@@ -600,13 +600,16 @@ def cmd_keys(args: argparse.Namespace) -> int:
     import zmq.auth
 
     out = Path(args.dir)
-    out.mkdir(parents=True, exist_ok=True)
+    if not args.name or "/" in args.name or args.name.startswith("."):
+        raise UsageError(f"--name must be a plain file name, got {args.name!r}")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise UsageError(f"cannot make the directory {out} ({e.strerror})") from None
     public, secret = out / f"{args.name}.key", out / f"{args.name}.key_secret"
     for path in (public, secret):
         if path.exists():
             raise UsageError(f"{path} exists already; not overwriting a key")
-    if not args.name or "/" in args.name or args.name.startswith("."):
-        raise UsageError(f"--name must be a plain file name, got {args.name!r}")
     zmq.auth.create_certificates(str(out), args.name)
     secret.chmod(0o600)
     print(f"public key: {public}   (give this one out)")
