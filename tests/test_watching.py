@@ -330,3 +330,16 @@ def test_report_refuses_a_bad_destination_and_a_missing_state(tmp_path: Path) ->
     assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "r.pdf"))[0] == 2
     assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "nowhere" / "r.html"))[0] == 2
     assert list(tmp_path.iterdir()) == []
+
+
+def test_report_to_a_directory_that_takes_no_file_is_one_line(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A directory that exists but cannot be written (here /proc) ended in a FileNotFoundError
+    traceback."""
+    log = tmp_path / "few.jsonl"
+    log.write_text("".join(f'{{"x": {{"stops": {k % 5}}}, "y": {k % 2}}}\n' for k in range(50)))
+    assert run_cli("replay", str(log), "--state", str(tmp_path / "s"))[0] == 0
+    capsys.readouterr()
+    assert run_cli("report", str(tmp_path / "s"), "--out", "/proc/oddsmill-report.html")[0] == 2
+    assert capsys.readouterr().err.strip() == (
+        "oddsmill: --out '/proc/oddsmill-report.html': cannot write (No such file or directory)"
+    )

@@ -702,9 +702,12 @@ def cmd_report(args: argparse.Namespace) -> int:
         raise UsageError(f"--out {args.out!r}: no such directory {str(out.parent)!r}")
     engine, created, race = load_state(args.state)
     doc = report_document(engine, created, args.state, race)
-    if args.png:
-        write_png(doc, out.with_suffix(".png"))  # first: a missing matplotlib writes nothing
-    write_html(doc, out)
+    try:
+        if args.png:
+            write_png(doc, out.with_suffix(".png"))  # first: a missing matplotlib writes nothing
+        write_html(doc, out)
+    except OSError as e:  # (a directory that exists but takes no file: /proc, read-only, full)
+        raise UsageError(f"--out {args.out!r}: cannot write ({e.strerror})") from None
     print(f"wrote {out}" + (f" and {out.with_suffix('.png')}" if args.png else ""))
     return 0
 
