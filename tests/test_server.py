@@ -271,10 +271,11 @@ def test_a_segment_damaged_in_its_middle_is_kept_whole_before_it_is_cut(  # type
     kept = sorted(tmp_path.glob(f"{seg.name}.damaged-*"))
     if damage == "middle":
         assert len(kept) == 1 and kept[0].read_bytes() == before
-        error = [r for r in caplog.records if r.levelno == logging.ERROR]
-        assert (
-            len(error) == 1 and f"a damaged record at byte {bad_at}, and good records after it" in error[0].getMessage()
-        )
+        errors = [r.getMessage() for r in caplog.records if r.levelno == logging.ERROR]
+        assert len(errors) == 2, errors  # the replay's reading, then the cut
+        assert "the rest of the segment is not read" in errors[0]
+        assert f"a damaged record at byte {bad_at}, and good records after it" in errors[1]
+        assert f"keeping it whole as {kept[0].name}" in errors[1]
     else:
         assert kept == []
         assert any("cutting a torn tail" in r.getMessage() for r in caplog.records)

@@ -114,6 +114,36 @@ def test_journal_round_trip_and_torn_tail(tmp_path: Path, caplog) -> None:  # ty
     assert "torn record" in caplog.text
 
 
+def test_a_record_damaged_in_the_middle_is_an_error_not_a_tail(tmp_path: Path, caplog) -> None:  # type: ignore[no-untyped-def]
+    """A bad record with good ones after it (a byte gone bad, not a crash's torn write): the reading
+    stops there all the same, but says so as an error, naming where the good records resume; a
+    corrupt last record stays a warning about the tail."""
+    import msgpack
+
+    seg = tmp_path / "journal-000000000000.omj"
+    with JournalWriter(seg) as j:
+        for i in range(6):
+            j.append(100.0 + i, msgpack.packb({"id": i, "x": {"route_km": float(i)}}))
+        j.sync()
+    ends = [end for end, _, _ in read_journal(seg)]
+    data = bytearray(seg.read_bytes())
+    data[ends[1] + 15] ^= 0x40  # a byte of the third record's payload
+    seg.write_bytes(bytes(data))
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        assert [b["id"] for _, _, b in read_journal(seg)] == [0, 1]
+    (error,) = [r for r in caplog.records if r.levelno == logging.ERROR]
+    said = error.getMessage()
+    assert f"a damaged record at byte {ends[1]} (CRC mismatch), and good records after it from byte {ends[2]}" in said
+    caplog.clear()
+    data[ends[1] + 15] ^= 0x40  # mended
+    data[ends[-2] + 15] ^= 0x40  # and the last record damaged: a tail
+    seg.write_bytes(bytes(data))
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        assert [b["id"] for _, _, b in read_journal(seg)] == [0, 1, 2, 3, 4]
+    assert [r.levelno for r in caplog.records] == [logging.WARNING]
+    assert "the tail is ignored" in caplog.records[0].getMessage()
+
+
 def test_the_journal_checksum_is_zlibs_crc32(tmp_path: Path) -> None:
     """The journal's CRC-32 comes from zlib-ng; the reference is the standard library's
     zlib.crc32, over lengths from none to a columnar block's 80 KB (short ones on either side of

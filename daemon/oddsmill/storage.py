@@ -486,7 +486,17 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
             return
         payload = data[pos + _RECORD.size : end]
         if crc32(payload) != crc:
-            log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
+            later = good_record_after(path, pos)
+            if later is None:
+                log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
+            else:  # not a tail: the records after it are there, and are not read (the file is left as it is)
+                log.error(
+                    "%s: a damaged record at byte %d (CRC mismatch), and good records after it from byte %d: "
+                    "the rest of the segment is not read",
+                    path,
+                    pos,
+                    later,
+                )
             return
         if fast and payload[:2] == b"\x92\xcb":  # [float64 arrival, body]
             got = read_batch(payload[10:])
