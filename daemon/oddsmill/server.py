@@ -435,7 +435,7 @@ class Server:
                 number = max(self.records, int(last.stem.split("-")[-1]) + 1)
                 return JournalWriter(self.settings.state_dir / f"journal-{number:012d}.omj")
             if size > good:
-                later = good_record_after(last, good)
+                later = good_record_after(last.read_bytes(), good)
                 if later is None:
                     log.warning("%s: cutting a torn tail at byte %d", last.name, good)
                 else:

@@ -486,7 +486,7 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
             return
         payload = data[pos + _RECORD.size : end]
         if crc32(payload) != crc:
-            later = good_record_after(path, pos)
+            later = good_record_after(data, pos)  # (the bytes already read)
             if later is None:
                 log.warning("%s: corrupt record at byte %d (CRC mismatch); the tail is ignored", path, pos)
             else:  # not a tail: the records after it are there, and are not read (the file is left as it is)
@@ -513,12 +513,11 @@ def read_journal(path: Path, start: int = 0, fast: bool = False) -> Iterator[tup
         pos = end
 
 
-def good_record_after(path: Path, start: int) -> int | None:
-    """Where the first record after the one at byte `start` begins whose length and CRC-32 hold
-    (and whose payload begins as every record's does, [float64 arrival, ...]), or None. A segment
-    with one after its first bad record was damaged in its middle, not torn at its end."""
-    with open(path, "rb") as f:
-        data = f.read()
+def good_record_after(data: bytes, start: int) -> int | None:
+    """Where the first record after the one at byte `start` of a segment's bytes begins whose
+    length and CRC-32 hold (and whose payload begins as every record's does, [float64 arrival,
+    ...]), or None. A segment with one after its first bad record was damaged in its middle, not
+    torn at its end."""
     at = data.find(b"\x92\xcb", start + _RECORD.size + 1)  # a payload's first bytes
     while at != -1:
         pos = at - _RECORD.size
