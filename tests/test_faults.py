@@ -16,6 +16,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from oddsmill import storage
 from oddsmill.server import ServerSettings
@@ -262,6 +263,62 @@ def test_a_full_disk_pauses_learning_and_resumes_when_space_returns(small_disk: 
     assert server.engine.learner.step == len(sent)  # every training event learned once (probes have no label)
     assert_state_is_the_replay_of_the_journal(state, learner)
     print(f"disk full at batch {full_at} of {len(batches)}; {held:.0f} messages held, all journaled and learned")
+
+
+def test_a_disk_that_fills_under_lone_messages_holds_them_and_loses_nothing(
+    small_disk: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Lone training messages of known names take the quick path's one compiled call, which writes
+    their journal records itself (quick.py). When that write fails (the disk fills), nothing of the
+    message is learned and the daemon holds it, as the full path does; once space returns, every
+    message is in the journal once, in order, learned once, and the state is its replay."""
+    from oddsmill.quick import WRITE_FAILED, Known
+
+    state = small_disk / "state"
+    settings = loopback(state, http="127.0.0.1:0", fsync="interval", fsync_ms=50.0, checkpoint_events=10**6)
+    learner = LearnerSettings(scale_warmup=100)
+    found: list[int] = []
+    one_call = Known.journal_and_learn
+
+    def counted(self: Any, *a: Any) -> Any:
+        status, bodies = one_call(self, *a)
+        found.append(status)
+        return status, bodies
+
+    monkeypatch.setattr(Known, "journal_and_learn", counted)
+    running, http, client = serving(settings, learner)
+    server = running.server
+    rng = np.random.default_rng(12)
+    names = [f"leg_{j}_km" for j in range(20)]
+    sent: list[dict[str, Any]] = []
+    while health(http) == 200:
+        assert len(sent) < 20_000, "the disk never filled: resize the tmpfs"
+        body = {
+            "x": dict(zip(names, rng.normal(size=20).tolist(), strict=True)),
+            "y": len(sent) % 3 == 0,
+            "id": len(sent),
+        }
+        client.send(body)
+        sent.append(body)
+        assert client.receive(1)[0][1]["id"] == body["id"]  # every message scored
+    assert WRITE_FAILED in found, "the disk filled under another path"
+    step_during = server.engine.learner.step
+    for _ in range(50):  # held while the disk is full
+        body = {"x": dict(zip(names, rng.normal(size=20).tolist(), strict=True)), "y": 1, "id": len(sent)}
+        client.send(body)
+        sent.append(body)
+        client.receive(1)
+    assert server.engine.learner.step == step_during
+    subprocess.run(["mount", "-o", "remount,size=32m", str(small_disk)], check=True)
+    wait_for("recovery", lambda: health(http) == 200)
+    after = [
+        {"x": dict(zip(names, rng.normal(size=20).tolist(), strict=True)), "y": 0, "id": len(sent) + i}
+        for i in range(200)
+    ]
+    records = finish_and_check_the_journal(running, client, after, sent + after, learner)
+    assert server.engine.learner.step == len(sent) + len(after)  # each learned once (probes have no label)
+    assert found.count(WRITE_FAILED) == 1 and len(records) >= len(sent) + len(after)
+    print(f"disk full after {len(sent) - 50} lone messages; held 50, all journaled and learned")
 
 
 def produce(client: Client, events: list[dict[str, Any]], stop: Any, sent: list[int]) -> None:

@@ -235,6 +235,77 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
 
 
+def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path) -> None:
+    """With no request pending, `_quick` reads a block of known names, writes its journal records
+    and learns it in one compiled call (`Known.journal_and_learn`). 900 training messages of every
+    kind of id and name, in blocks of 1 to 8: that call takes many blocks, and the daemon publishes,
+    journals and learns what it does with the small paths turned off."""
+    from oddsmill.fastpath import READ
+    from oddsmill.quick import Known
+
+    rng = np.random.default_rng(31)
+    choices = ["train", "train_id", "train_big_id", "train_str_id", "train_other_order", "train_new_name"]
+    kinds = [str(k) for k in rng.choice(choices, p=[0.35, 0.25, 0.2, 0.08, 0.08, 0.04], size=900)]
+    msgs = build(kinds, 9)
+    blocks, at = [], 0
+    while at < len(msgs):
+        n = int(rng.integers(1, 9))
+        blocks.append(msgs[at : at + n])
+        at += n
+    found: list[int] = []
+    one_call = Known.journal_and_learn
+
+    def counted(self: Any, *a: Any) -> Any:
+        status, bodies = one_call(self, *a)
+        found.append(status)
+        return status, bodies
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(Known, "journal_and_learn", counted)
+        fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
+    assert found.count(READ) >= 40 and len(set(found)) > 1, found  # (declined: other names, str ids)
+    with pytest.MonkeyPatch.context() as mp:
+        full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
+    assert len(fast_frames) == 2 * len(msgs) and fast_frames == full_frames
+    assert fast_journal == full_journal
+    same_state(fast.engine, full.engine)
+    assert fast.engine.metrics.history == full.engine.metrics.history
+    assert fast.engine.counters.train == full.engine.counters.train == len(msgs)
+
+
+def test_records_written_in_compiled_code_are_the_journal_writers_bytes(tmp_path: Path) -> None:
+    """`quick._write_records` writes what `storage.journal_record` makes of each body (record head,
+    CRC-32, arrival, body), for blocks of one to five bodies of any length; a write that fails
+    reports its errno and how far it got."""
+    import errno
+    import os
+
+    from oddsmill.quick import HEAD_BYTES, _write_records
+    from oddsmill.storage import journal_record
+
+    rng = np.random.default_rng(4)
+    for m, arrival in [(1, 1_764_000_000.123456), (2, 0.0), (5, -2.5e-300)]:
+        raws = [bytes(rng.integers(0, 256, int(rng.integers(1, 3000))).tolist()) for _ in range(m)]
+        joined = b"".join(raws)
+        starts = np.cumsum([0, *map(len, raws)]).astype(np.int64)
+        path = tmp_path / f"records-{m}"
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND)
+        done = np.zeros(2, dtype=np.int64)
+        heads, iov = np.empty(HEAD_BYTES + 8 * m, dtype=np.uint8), np.empty(6 * m, dtype=np.int64)
+        _write_records(np.frombuffer(joined, dtype=np.uint8), starts, m, arrival, fd, heads, iov, done)
+        os.close(fd)
+        expected = b"".join(journal_record(arrival, raw) for raw in raws)
+        assert path.read_bytes() == expected and done.tolist() == [len(expected), 0]
+    full = os.open("/dev/full", os.O_WRONLY)  # (every write: ENOSPC)
+    try:
+        _write_records(np.frombuffer(joined, dtype=np.uint8), starts, m, 1.0, full, heads, iov, done)
+    finally:
+        os.close(full)
+    assert done.tolist() == [0, errno.ENOSPC]
+    _write_records(np.frombuffer(joined, dtype=np.uint8), starts, m, 1.0, full, heads, iov, done)  # closed
+    assert done.tolist() == [0, errno.EBADF]
+
+
 def test_the_quick_path_takes_known_names_and_declines_the_rest(tmp_path: Path) -> None:
     """Which blocks each path takes (the equality test above would pass if neither took any)."""
     from oddsmill.server import Server, ServerSettings

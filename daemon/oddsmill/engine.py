@@ -262,6 +262,19 @@ class Engine:
         self.counters.train += len(bodies)
         return bodies
 
+    def journal_and_train_known(
+        self, arrival: float, known: Known, raws: list[bytes], fd: int
+    ) -> tuple[int, list[bytes]]:
+        """`train_known` with the block's reading and its journal records (appended to the file fd)
+        in the same compiled call (`Known.journal_and_learn`): what that returns. Only with no
+        request pending (`train_known` expires the pending store before it learns)."""
+        assert not self.pending
+        metrics = self.metrics
+        arrays = self.learner.arrays(known.slots.shape[0])
+        found, bodies = known.journal_and_learn(raws, fd, arrival, arrays, metrics.arrays(), metrics.scalars())
+        self.counters.train += len(bodies)
+        return found, bodies
+
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:
         """Everything of a block but the kernel: sequence checks, encoding, the pending store and
         the counters. `finish` then runs the kernel and keeps the metrics."""

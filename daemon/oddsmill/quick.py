@@ -20,22 +20,44 @@ four, and no Python object an event but its score's bytes.
 
 from __future__ import annotations
 
+import ctypes
+import errno
 import math
+import os
+from typing import Any
 
 import numpy as np
-from numba import njit
+import zlib_ng.zlib_ng
+from llvmlite import binding as llvm
+from numba import njit, types
+from numba.np.numpy_support import carray
 
 from . import kernel as K
-from .fastpath import NOT_SUCH, EventArrays, _parse_run
+from .fastpath import NOT_SUCH, READ, EventArrays, _parse_run
 from .progressive import _record
 from .protocol import MAX_ITEMS, MAX_STR
 
+WRITE_FAILED = -9  # `_journal_and_learn`: the journal's write failed, and nothing was learned
 SCORE_BYTES = 72  # at most, a score body: 5 keys, 4 numbers of 9 bytes and an id of 9
 _ID = np.frombuffer(b"\x85\xa2id", dtype=np.uint8)  # the body's map header and its first key
 _P = np.frombuffer(b"\xa1p", dtype=np.uint8)
 _LOGIT = np.frombuffer(b"\xa5logit", dtype=np.uint8)
 _STEP = np.frombuffer(b"\xa4step", dtype=np.uint8)
 _TS = np.frombuffer(b"\xa2ts", dtype=np.uint8)
+
+
+# The C functions the journal's write takes in compiled code, called by name, so that numba's cache
+# keeps the code (the address of a function differs from process to process): the C library's
+# writev and errno, and zlib-ng's CRC-32 (the one storage.py computes; its module is loaded with its
+# names private, so its address is given to LLVM here).
+llvm.add_symbol("zng_crc32", ctypes.cast(ctypes.CDLL(zlib_ng.zlib_ng.__file__).zng_crc32, ctypes.c_void_p).value)
+_crc32: Any = types.ExternalFunction("zng_crc32", types.uint32(types.uint32, types.uintp, types.uint32))
+_writev: Any = types.ExternalFunction("writev", types.intp(types.intc, types.uintp, types.intc))
+_errno_location: Any = types.ExternalFunction("__errno_location", types.CPointer(types.intc)())  # type: ignore[no-untyped-call]
+_IOV_MAX = os.sysconf("SC_IOV_MAX")
+_EINTR = errno.EINTR
+_EIO = errno.EIO
+HEAD_BYTES = 16  # `_write_records`' scratch: the payload head, then a record head a message
 
 
 @njit(cache=True, error_model="numpy", inline="always")
@@ -185,6 +207,84 @@ def _learn_known(  # type: ignore[no-untyped-def]
         ends[r] = p
 
 
+@njit(cache=True, error_model="numpy")
+def _write_records(b, starts, m, arrival, fd, heads, iov, done):  # type: ignore[no-untyped-def]
+    """Append the journal records of m messages (message e: b[starts[e]:starts[e + 1]]) that
+    arrived at `arrival` to the file fd, as `storage.JournalWriter.write_all` writes them: record
+    head (u32 LE payload length, u32 LE CRC-32), payload head ([arrival, as msgpack), the body as
+    it came; with writev, the bodies never copied. heads: scratch of HEAD_BYTES + 8 m bytes, iov:
+    of 6 m int64. done[0]: the bytes that reached the file; done[1]: 0, or the errno of the write
+    that failed (a write is tried again after EINTR, as Python's os.writev does)."""
+    scratch = np.zeros(1, dtype=np.uint64)
+    scratch.view(np.float64)[0] = arrival
+    heads[0] = 0x92
+    heads[1] = 0xCB
+    _put_be(heads, 2, scratch[0], 8)
+    base = heads.ctypes.data
+    data = b.ctypes.data
+    crc_head = _crc32(np.uint32(0), base, np.uint32(10))
+    for e in range(m):
+        start = starts[e]
+        n = starts[e + 1] - start
+        crc = _crc32(crc_head, data + start, np.uint32(n))
+        h = HEAD_BYTES + 8 * e
+        length = np.uint64(10 + n)
+        for i in range(4):
+            heads[h + i] = np.uint8((length >> np.uint64(8 * i)) & np.uint64(0xFF))
+            heads[h + 4 + i] = np.uint8((np.uint64(crc) >> np.uint64(8 * i)) & np.uint64(0xFF))
+        iov[6 * e] = base + h
+        iov[6 * e + 1] = 8
+        iov[6 * e + 2] = base
+        iov[6 * e + 3] = 10
+        iov[6 * e + 4] = data + start
+        iov[6 * e + 5] = n
+    pieces = 3 * m
+    at = 0
+    written = 0
+    while at < pieces:
+        r = _writev(np.intc(fd), iov.ctypes.data + 16 * at, np.intc(min(pieces - at, _IOV_MAX)))
+        if r <= 0:
+            code = carray(_errno_location(), 1)[0] if r < 0 else _EIO
+            if code == _EINTR:
+                continue
+            done[0] = written
+            done[1] = code
+            return
+        written += r
+        while at < pieces and r >= iov[2 * at + 1]:  # the pieces written whole
+            r -= iov[2 * at + 1]
+            at += 1
+        if r > 0:  # and the start of one (a short write)
+            iov[2 * at] += r
+            iov[2 * at + 1] -= r
+    done[0] = written
+    done[1] = 0
+
+
+@njit(cache=True, error_model="numpy")
+def _journal_and_learn(  # type: ignore[no-untyped-def]
+    b, starts, key, values, ys, ids, nkeys, keypos, fd, heads, iov, done, slots, prm, sc, sl, fl, cl, wq, dt, rz,
+    ry, rll, chunks, dirty, history, ms, arrival, out, ends
+):  # fmt: skip
+    """`_parse_run` (with the key, integer ids only), then, for a block it READ, the journal's
+    records (`_write_records`), then `_learn_known`: a block of the quick path in one call. What
+    `_parse_run` found when it was not READ, with nothing written; WRITE_FAILED, with nothing
+    learned, when the write failed (done says how far it got)."""
+    m = starts.shape[0] - 1
+    k = slots.shape[0]
+    status = _parse_run(b, starts, key, True, values[: m * k], ys, ids, nkeys, keypos, MAX_STR, MAX_ITEMS)
+    if status != READ:
+        return status
+    _write_records(b, starts, m, arrival, fd, heads, iov, done)
+    if done[1] != 0:
+        return WRITE_FAILED
+    _learn_known(
+        b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
+        out, ends,
+    )  # fmt: skip
+    return READ
+
+
 class Known(EventArrays):
     """The set of names the quick path learned last (its key bytes and slots, in one vocabulary)
     and the arrays it reads blocks into, kept from block to block."""
@@ -198,10 +298,15 @@ class Known(EventArrays):
         self._ends = np.empty(0, dtype=np.int64)
         self._b = np.empty(0, dtype=np.uint8)
         self._m = 0
+        self._heads = np.empty(HEAD_BYTES, dtype=np.uint8)
+        self._iov = np.empty(0, dtype=np.int64)
+        self._done = np.zeros(2, dtype=np.int64)
 
     def _grown(self, messages: int) -> None:
         self._ends = np.empty(messages, dtype=np.int64)
         self._out = np.empty(messages * SCORE_BYTES, dtype=np.uint8)
+        self._heads = np.empty(HEAD_BYTES + 8 * messages, dtype=np.uint8)
+        self._iov = np.empty(6 * messages, dtype=np.int64)
 
     def remember(self, vocab: object, key: bytes, slots: tuple[int, ...]) -> None:
         """Names every one of which has a slot in `vocab`: their key bytes and slots."""
@@ -227,6 +332,50 @@ class Known(EventArrays):
         self._b, self._m = b, m
         return status
 
+    def journal_and_learn(
+        self,
+        raws: list[bytes],
+        fd: int,
+        arrival: float,
+        arrays: tuple[np.ndarray, ...],
+        metrics: tuple[np.ndarray, ...],
+        ms: np.ndarray,
+    ) -> tuple[int, list[bytes]]:
+        """`read`, then for a block it READ, its journal records appended to the file fd, then
+        `learn`, in one compiled call (`_journal_and_learn`): (READ, the score bodies), or what the
+        reading found, nothing written; or (WRITE_FAILED, []) with `written` and `errno` saying
+        how far the write got, and nothing learned. The learner's arrays with room for a block of
+        these slots, as for `learn`."""
+        m = len(raws)
+        k = self.slots.shape[0]
+        fitted = self._fit(raws, m * k)
+        if fitted is None:
+            return NOT_SUCH, []
+        joined, starts = fitted
+        b = np.frombuffer(joined, dtype=np.uint8)
+        prm, sc, sl, fl, cl, wq, dt = arrays
+        rz, ry, rll, chunks, dirty, history = metrics
+        done = self._done
+        status: int = _journal_and_learn(
+            b, starts, self.key, self._values, self._ys, self._ids, self._nkeys, self._keypos, fd, self._heads,
+            self._iov, done, self.slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
+            self._out, self._ends,
+        )  # fmt: skip
+        if status != READ:
+            return status, []
+        self._m = m
+        return READ, self._bodies()
+
+    @property
+    def written(self) -> int:
+        """The bytes of records the last `journal_and_learn` wrote."""
+        return int(self._done[0])
+
+    @property
+    def errno(self) -> int:
+        """After WRITE_FAILED: the errno of the write that failed."""
+        return int(self._done[1])
+
     def learn(
         self, arrays: tuple[np.ndarray, ...], metrics: tuple[np.ndarray, ...], ms: np.ndarray, arrival: float
     ) -> list[bytes]:
@@ -240,6 +389,11 @@ class Known(EventArrays):
             self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq, dt,
             rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends,
         )  # fmt: skip
+        return self._bodies()
+
+    def _bodies(self) -> list[bytes]:
+        """The score bodies the last block's learning packed, in order."""
+        m = self._m
         if m == 1:
             return [self._out[: int(self._ends[0])].tobytes()]
         data = self._out[: int(self._ends[m - 1])].tobytes()

@@ -364,6 +364,21 @@ class JournalWriter:
         if self._end - self._cleaned >= CLEAN_BYTES:
             self._clean()
 
+    def fileno(self) -> int:
+        """The segment's descriptor, for a caller that appends records itself (quick.py); -1 once
+        closed. Only while nothing is buffered (`buffered`), and it tells `wrote` what it wrote."""
+        return self._fd
+
+    def buffered(self) -> int:
+        """Bytes appended and not yet handed to the operating system."""
+        return self._size
+
+    def wrote(self, n: int) -> None:
+        """n bytes of records reached the file through `fileno`, as if `write_all` had written them."""
+        self._end += n
+        if self._end - self._cleaned >= CLEAN_BYTES:
+            self._clean()
+
     def _clean(self) -> None:
         """A cleaning step (see CLEAN_BYTES), unless the last one is still running."""
         if self._cleaning is None or self._cleaning.done():
