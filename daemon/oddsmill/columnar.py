@@ -34,17 +34,16 @@ and state to the full path's, byte for byte and bit for bit.
 
 from __future__ import annotations
 
-import struct
+import threading
 from collections.abc import Mapping
 
-import msgpack
 import numpy as np
 from numba import njit
 
 from .errors import ProtocolError
 from .fastpath import _map_len, _str
 from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, unpack
-from .quick import _p
+from .quick import _ID, _LOGIT, _P, _STEP, _TS, _p, _put, _put_be, _put_float, _put_int
 from .vocabulary import same_bytes
 
 READ, OTHER, NAMES = 0, 1, 2  # read; anything else (the full path decides); names other than the key's
@@ -289,9 +288,6 @@ def _slots_of(cols: bytes, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) ->
     return shapes.get(tuple(names))
 
 
-_NIL_HEAD = b"\x85\xa2id"
-
-
 @njit(cache=True, error_model="numpy")
 def _probabilities(z):  # type: ignore[no-untyped-def]
     out = np.empty(z.shape[0])
@@ -309,39 +305,68 @@ def probabilities(z: np.ndarray) -> bytes:
 
 def score_body(z: np.ndarray, step: int, ts: float) -> bytes:
     """The score body of a columnar block without ids (PROTOCOL 3): the bytes msgpack.packb gives
-    for the full path's dict {"id": [None] * m, "p": ..., "logit": ..., "step": step, "ts": ts}."""
+    for the full path's dict {"id": [None] * m, "p": ..., "logit": ..., "step": step, "ts": ts},
+    put together in one compiled pass (`_pack_body`) and copied out once. (Built from numpy's
+    bytes and joined, a body of 500 rows took 15 us here, most of it copies: a tenth of the
+    block's whole handling.)"""
     m = z.shape[0]
-    p = probabilities(z)
-    logit = z.astype("<f8", copy=False).tobytes()
-    if m <= 15:
-        nils = bytes([0x90 | m])
+    need = 64 + 17 * m  # (53 bytes of keys and headers at most)
+    buf: np.ndarray | None = getattr(_local, "body", None)
+    if buf is None or buf.shape[0] < need or (buf.shape[0] > KEPT_BODY and need <= KEPT_BODY):
+        buf = _local.body = np.empty(max(need, 64 + 17 * 512), dtype=np.uint8)  # (a spike's let go)
+    n = _pack_body(z, step, ts, buf)
+    body: bytes = buf[:n].tobytes()
+    return body
+
+
+KEPT_BODY = 1 << 20  # the body buffer's bytes kept at most after a block that needed more
+_local = threading.local()  # each thread's buffer where score_body packs (a process may serve on several)
+
+
+@njit(cache=True, error_model="numpy")
+def _pack_body(z, step, ts, out):  # type: ignore[no-untyped-def]
+    """`score_body`'s bytes into out (room for 53 + 17 m); returns their length."""
+    m = z.shape[0]
+    scratch = np.zeros(1, dtype=np.uint64)
+    as_float = scratch.view(np.float64)
+    p = _put(out, 0, _ID)
+    if m <= 15:  # the ids: an array of m nils
+        out[p] = np.uint8(0x90 | m)
+        p += 1
     elif m <= 0xFFFF:
-        nils = b"\xdc" + struct.pack(">H", m)
+        out[p] = 0xDC
+        p = _put_be(out, p + 1, np.uint64(m), 2)
     else:
-        nils = b"\xdd" + struct.pack(">I", m)
-    size = _bin_head(8 * m)
-    return b"".join(
-        (
-            _NIL_HEAD,
-            nils,
-            b"\xc0" * m,
-            b"\xa1p",
-            size,
-            p,
-            b"\xa5logit",
-            size,
-            logit,
-            b"\xa4step",
-            msgpack.packb(step),
-            b"\xa2ts\xcb",
-            struct.pack(">d", ts),
-        )
-    )
-
-
-def _bin_head(length: int) -> bytes:
-    if length <= 0xFF:
-        return bytes([0xC4, length])
-    if length <= 0xFFFF:
-        return b"\xc5" + struct.pack(">H", length)
-    return b"\xc6" + struct.pack(">I", length)
+        out[p] = 0xDD
+        p = _put_be(out, p + 1, np.uint64(m), 4)
+    for i in range(m):
+        out[p + i] = 0xC0
+    p += m
+    for key in range(2):  # "p", then "logit": bin 8 m of little-endian float64s
+        p = _put(out, p, _P if key == 0 else _LOGIT)
+        size = 8 * m
+        if size <= 0xFF:
+            out[p] = 0xC4
+            out[p + 1] = np.uint8(size)
+            p += 2
+        elif size <= 0xFFFF:
+            out[p] = 0xC5
+            p = _put_be(out, p + 1, np.uint64(size), 2)
+        else:
+            out[p] = 0xC6
+            p = _put_be(out, p + 1, np.uint64(size), 4)
+        # the floats stored where they go (at any offset: the processor takes unaligned stores; and
+        # in its own order, little-endian, as the x86 and ARM machines numba serves are). A copy
+        # from an array instead took 1.7 us a 500 rows' 4,000 bytes: numba copies byte by byte.
+        dst = out[p : p + size].view(np.float64)
+        if key == 0:
+            for i in range(m):
+                dst[i] = _p(z[i])
+        else:
+            for i in range(m):
+                dst[i] = z[i]
+        p += size
+    p = _put(out, p, _STEP)
+    p = _put_int(out, p, step)
+    p = _put(out, p, _TS)
+    return _put_float(out, p, ts, scratch, as_float)
