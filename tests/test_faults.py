@@ -463,10 +463,10 @@ def test_a_failure_to_start_a_new_segment_holds_only_what_follows(
     failing = {"on": False}
 
     class FlakyWriter(real):  # type: ignore[misc, valid-type]
-        def __init__(self, path: Path) -> None:
+        def __init__(self, path: Path, reserve: int = 0) -> None:
             if failing["on"] and not path.exists():
                 raise OSError(errno.ENOSPC, "No space left on device (injected)")
-            super().__init__(path)
+            super().__init__(path, reserve)
 
     monkeypatch.setattr(server_module, "JournalWriter", FlakyWriter)
     learner = LearnerSettings(scale_warmup=100)

@@ -439,7 +439,7 @@ class Server:
                     good,
                 )
                 number = max(self.records, int(last.stem.split("-")[-1]) + 1)
-                return JournalWriter(self.settings.state_dir / f"journal-{number:012d}.omj")
+                return self._segment(f"journal-{number:012d}.omj")
             if size > good:
                 later = good_record_after(last.read_bytes(), good)
                 if later is None:
@@ -461,8 +461,13 @@ class Server:
                     )
                 with open(last, "r+b") as f:
                     f.truncate(good)
-            return JournalWriter(last)
-        return JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
+            return self._segment(last.name)
+        return self._segment(f"journal-{self.records:012d}.omj")
+
+    def _segment(self, name: str) -> JournalWriter:
+        """The journal segment of that name in the state directory, opened to append, its blocks
+        reserved up to the segment's size."""
+        return JournalWriter(self.settings.state_dir / name, reserve=self.settings.segment_bytes)
 
     def checkpoint(self) -> Path | None:
         """Write a checkpoint now (after the one being written, if any), as the loop does but
@@ -999,7 +1004,7 @@ class Server:
                 self.journal.sync()
                 self._saved()
                 self.journal.close()
-                self.journal = JournalWriter(self.settings.state_dir / f"journal-{self.records:012d}.omj")
+                self.journal = self._segment(f"journal-{self.records:012d}.omj")
                 self._saved()
             except OSError as e:
                 self._fail(e)  # this block is safe in the old segment: only what follows is held
@@ -1046,7 +1051,7 @@ class Server:
         journal = None
         try:
             JournalWriter.cut(path, self.base)
-            journal = JournalWriter(path)
+            journal = self._segment(path.name)
             for arrival, raw in [*zip(self.unsaved_at, self.unsaved, strict=True), *self.held]:
                 journal.append(arrival, raw)
             journal.sync()
