@@ -119,3 +119,67 @@ def test_a_failed_checkpoint_write_on_its_thread_begins_an_outage(
     server._recover()  # the disk answers again: the held messages are journaled and learned
     assert server.outage is None and not server.held and server.engine.learner.step > step
     server.journal.close()
+
+
+def test_the_loop_does_not_wait_on_the_disk_for_a_checkpoint(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The journal's fsync before a checkpoint runs on the background thread (`sync_soon`): the
+    loop takes the state and goes on while the disk is slow, and the checkpoint is written only
+    once the journal up to its position is on disk."""
+    from oddsmill import storage
+
+    server = Server(ServerSettings(state_dir=tmp_path, http="off"))
+    pub = Recorder()
+    for m in messages(200, 5):
+        server.handle([m], pub)  # type: ignore[arg-type]
+    real_fsync, real_write = storage._fsync, server_module.write_checkpoint
+    disk = threading.Event()  # the slow disk answers once set
+    order: list[str] = []
+
+    def slow_fsync(fd: int) -> None:
+        assert threading.current_thread() is not threading.main_thread(), "the loop waited on the disk"
+        assert disk.wait(20)
+        real_fsync(fd)
+        order.append("journal synced")
+
+    def write(*args: Any, **kwargs: Any) -> Path:
+        order.append("checkpoint written")
+        return real_write(*args, **kwargs)
+
+    monkeypatch.setattr(storage, "_fsync", slow_fsync)
+    monkeypatch.setattr(server_module, "write_checkpoint", write)
+    server.checkpoint_soon()  # returns at once: the fsync waits on the disk
+    step = server.engine.learner.step
+    for m in messages(100, 6):  # the loop learns on meanwhile
+        server.handle([m], pub)  # type: ignore[arg-type]
+    assert server.engine.learner.step > step and not order and not list(tmp_path.glob("checkpoint-*.omc"))
+    disk.set()
+    path = server.collect_checkpoint(wait=True)
+    assert path is not None and path.name == f"checkpoint-{step:012d}.omc" and server.outage is None
+    assert order == ["journal synced", "checkpoint written"]
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    assert state["journal"]["offset"] <= server.base  # what the fsync covered is known safe
+    server.journal.close()
+
+
+def test_a_failed_journal_fsync_writes_no_checkpoint_and_begins_an_outage(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from oddsmill import storage
+
+    server = Server(ServerSettings(state_dir=tmp_path, http="off"))
+    pub = Recorder()
+    for m in messages(100, 7):
+        server.handle([m], pub)  # type: ignore[arg-type]
+
+    def failing(fd: int) -> None:
+        raise OSError(errno.EIO, "Input/output error (injected)")
+
+    monkeypatch.setattr(storage, "_fsync", failing)
+    server.checkpoint_soon()
+    assert server.collect_checkpoint(wait=True) is None
+    assert server.outage is not None and "Input/output error" in server.outage
+    assert not list(tmp_path.glob("checkpoint-*.omc"))
+    monkeypatch.undo()
+    server._recover()  # the disk answers again
+    assert server.outage is None and list(tmp_path.glob("checkpoint-*.omc"))
+    server.journal.close()

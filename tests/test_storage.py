@@ -239,6 +239,40 @@ def test_cleaning_steps_advise_dropping_the_segment_so_far(tmp_path: Path, monke
     assert seg.stat().st_size - advised[-1][1] < storage.CLEAN_BYTES
 
 
+def test_a_checkpoints_fsync_fails_after_a_background_fsync_failed(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """`sync_soon` after a background fsync that failed, and was not collected yet, raises that
+    error even though its own fsync would succeed: the kernel may have dropped the pages the first
+    could not write, and a checkpoint must not claim them."""
+    import errno
+
+    from oddsmill import storage
+
+    writer = JournalWriter(tmp_path / "journal-000000000000.omj")
+    writer.write_all(1.0, [b"\x80"])
+    real = storage._fsync
+    failing = {"on": True}
+
+    def fsync(fd: int) -> None:
+        if failing["on"]:
+            raise OSError(errno.EIO, "Input/output error (injected)")
+        real(fd)
+
+    monkeypatch.setattr(storage, "_fsync", fsync)
+    assert writer.sync_later()
+    assert writer._pending is not None and isinstance(writer._pending.exception(), OSError)  # failed, not collected
+    failing["on"] = False
+    job = writer.sync_soon()
+    with pytest.raises(OSError, match="Input/output error"):
+        job.result()
+    fresh = JournalWriter(tmp_path / "journal-000000000001.omj")  # another segment: its own fsyncs
+    fresh.write_all(2.0, [b"\x80"])
+    assert fresh.sync_soon().result() == fresh.tell()
+    fresh.close()
+    writer.abandon()
+
+
 def test_a_segment_reserves_its_blocks_while_open_and_gives_back_the_rest(tmp_path: Path) -> None:
     """`JournalWriter(reserve=...)`: the segment's blocks are reserved when it opens, its size stays
     its records' (PROTOCOL 6: records end to end, so a crash leaves nothing to cut), and what was not

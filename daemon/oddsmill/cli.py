@@ -752,7 +752,7 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--scores", metavar="ADDR", help="default tcp://127.0.0.1:7572")
     s.add_argument("--http", metavar="HOST:PORT", help="/metrics, /healthz, /api/status (default 127.0.0.1:7573; off)")
     s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG")
-    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, help="default 100000")
+    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, help="default 1000000")
     s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, help="default 60")
     s.add_argument("--segment-bytes", dest="segment_bytes", type=int, help="journal segment size (default 64 MiB)")
     s.add_argument(

@@ -92,7 +92,12 @@ class ServerSettings:
     # the cache: 980 MB and 0.82 to 0.90 M events/s at 4,096 messages, 280 MB and 1.0 to 1.6 M at
     # 25 to 100 (scratch runs of the bench's columnar load, 2026-12-02)
     block_bytes: int = 4 << 20
-    checkpoint_events: int = 100_000
+    # A checkpoint stops the loop to copy the state (about 1 ms for a small model, 8 to 40 at a
+    # million slots), and its thread takes the other core meanwhile (the journal's fsync, encoding,
+    # SHA-256, the file's fsync). Every 100,000 events that was 20 a second under the bench's
+    # columnar load. A restart replays the tail after the newest checkpoint: a million events take
+    # 1.5 to 1.6 s (scripts/recovery_time.py); at lower rates checkpoint_seconds comes first.
+    checkpoint_events: int = 1_000_000
     checkpoint_seconds: float = 60.0
     segment_bytes: int = 64 << 20
     window: int = 10_000
@@ -480,19 +485,24 @@ class Server:
         """The loop's checkpoints: the state is taken here (copies, the loop stopped for that only:
         8 to 40 ms at a million slots) and written on a thread of its own, which took the loop
         another 0.3 s at a million slots and 1.6 to 2.4 s with a million requests held (encoding,
-        SHA-256, fsync). `collect_checkpoint` takes the result; a failed write begins an outage as
-        a failed write in the loop does."""
+        SHA-256, fsync). The journal's fsync up to the checkpoint's position runs on the background
+        thread too (`JournalWriter.sync_soon`), and the checkpoint is written once it is done: in
+        the loop it took 4.0 ms after 200,000 columnar events, where the loop's part is now 0.9 ms
+        (`cktime.py`, scratch, eight each). `collect_checkpoint` takes the result; a failed write or
+        fsync begins an outage as a failed write in the loop does."""
         if self.writing is not None or self.outage is not None:
             return
         try:
-            position, state, step = self._checkpoint_state()
+            synced = self.journal.sync_soon()
         except OSError as e:
             self._fail(e)
             return
+        position, state, step = self._checkpoint_state()
         result: list[Any] = []
 
         def write() -> None:
             try:
+                synced.result()  # the journal up to the checkpoint's position is on disk first
                 result.append(write_checkpoint(self.settings.state_dir, step, state))
             except BaseException as e:  # noqa: BLE001 (handed to the loop, which raises what it does not handle)
                 result.append(e)
@@ -519,15 +529,16 @@ class Server:
             return None
         if isinstance(outcome, BaseException):
             raise outcome
+        if self.outage is None and position["segment"] == self.journal.path.name:
+            self._safe_to(position["offset"], position["records"])  # (its fsync covered them)
         self._checkpoint_written(outcome, position, step)
         path: Path = outcome
         return path
 
     def _checkpoint_state(self) -> tuple[dict[str, Any], dict[str, Any], int]:
-        """(journal position, state, step) of a checkpoint: the journal synced up to here, and the
-        state as copies, which the loop may go on changing while they are written."""
-        self.journal.sync()
-        self._saved()
+        """(journal position, state, step) of a checkpoint: the journal's end (flushed; its fsync
+        is the writing thread's to wait for), and the state as copies, which the loop may go on
+        changing while they are written."""
         position = {"segment": self.journal.path.name, "offset": self.journal.tell(), "records": self.records}
         state = {
             "kind": "oddsmill-state",
@@ -1109,11 +1120,17 @@ class Server:
         except OSError as e:
             self._fail(e)
             return False
-        if end is not None and self.sync_records > self.base_records:
-            del self.unsaved[: self.sync_records - self.base_records]
-            del self.unsaved_at[: self.sync_records - self.base_records]
-            self.base, self.base_records = end, self.sync_records
+        if end is not None:
+            self._safe_to(end, self.sync_records)
         return True
+
+    def _safe_to(self, offset: int, records: int) -> None:
+        """The current segment is on disk up to `offset`, the end of record number `records`:
+        the records before it need not be kept for writing again."""
+        if records > self.base_records:
+            del self.unsaved[: records - self.base_records]
+            del self.unsaved_at[: records - self.base_records]
+            self.base, self.base_records = offset, records
 
     def _count(self, r: Rejection) -> Rejection:
         rej = self.engine.counters.rejected

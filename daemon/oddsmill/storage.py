@@ -339,10 +339,12 @@ class JournalWriter:
         self._reserved = reserve > self._end and _reserve(self._fd, reserve)
         self._parts: list[bytes] = []  # buffered, in order
         self._size = 0  # their bytes
-        self._pending: Future[None] | None = None  # a background fsync, covering bytes up to:
+        self._pending: Future[int] | None = None  # a background fsync, covering bytes up to:
         self._pending_end = 0
         self._cleaned = 0  # where the last cleaning step ended (see CLEAN_BYTES)
         self._cleaning: Future[None] | None = None  # and the step itself
+        self._checkpoint_syncs: list[Future[int]] = []  # fsyncs started by `sync_soon`
+        self._sync_failed: OSError | None = None  # a background fsync's error (set on its thread)
         if new:  # the header goes to the file at once, so that tell() is an offset the file has
             self._add([JOURNAL_MAGIC + struct.pack("<I", JOURNAL_VERSION)])
             try:
@@ -436,8 +438,31 @@ class JournalWriter:
             return False
         self.flush()
         self._pending_end = self._end
-        self._pending = _SYNCER.submit(_sync_and_drop, self._fd, self._end)
+        self._pending = _SYNCER.submit(self._background_sync, self._end)
         return True
+
+    def sync_soon(self) -> Future[int]:
+        """flush, then an fsync on the background thread after those started before it: its
+        future gives the offset up to which the segment is then on disk, or raises OSError, also
+        when a background fsync before it failed (`sync`'s rule, kept on the thread that runs
+        them all). For a checkpoint: the loop does not wait on the disk (an fsync after a million
+        events is tens of milliseconds here, and more on a slower disk)."""
+        self.flush()
+        self._checkpoint_syncs = [f for f in self._checkpoint_syncs if not f.done()]
+        job = _SYNCER.submit(self._background_sync, self._end)
+        self._checkpoint_syncs.append(job)
+        return job
+
+    def _background_sync(self, end: int) -> int:
+        """`_sync_and_drop` on the background thread; its error is kept for the fsyncs after it."""
+        if self._sync_failed is not None:
+            raise self._sync_failed
+        try:
+            _sync_and_drop(self._fd, end)
+        except OSError as e:
+            self._sync_failed = e
+            raise
+        return end
 
     def synced_to(self, wait: bool = False) -> int | None:
         """When a background fsync has finished (or, with `wait`, once it has): the offset up to
@@ -453,6 +478,9 @@ class JournalWriter:
         if self._cleaning is not None:  # (never raises) before the descriptor is closed
             self._cleaning.result()
             self._cleaning = None
+        for job in self._checkpoint_syncs:  # (their callers take their errors)
+            job.exception()
+        self._checkpoint_syncs = []
         try:
             self.synced_to(wait=True)
         except OSError:
