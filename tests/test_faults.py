@@ -25,7 +25,7 @@ from oddsmill.storage import list_journal, load_newest, read_journal
 
 from tests.conftest import Client, RunningServer, loopback
 from tests.test_server import bodies, replay_journal
-from tests.tools import full_rows
+from tests.tools import full_rows, one_call_statuses
 
 
 def health(http: str) -> int:
@@ -272,20 +272,12 @@ def test_a_disk_that_fills_under_lone_messages_holds_them_and_loses_nothing(
     their journal records itself (quick.py). When that write fails (the disk fills), nothing of the
     message is learned and the daemon holds it, as the full path does; once space returns, every
     message is in the journal once, in order, learned once, and the state is its replay."""
-    from oddsmill.quick import WRITE_FAILED, Known
+    from oddsmill.quick import WRITE_FAILED
 
     state = small_disk / "state"
     settings = loopback(state, http="127.0.0.1:0", fsync="interval", fsync_ms=50.0, checkpoint_events=10**6)
     learner = LearnerSettings(scale_warmup=100)
-    found: list[int] = []
-    one_call = Known.journal_and_learn
-
-    def counted(self: Any, *a: Any) -> Any:
-        status, bodies = one_call(self, *a)
-        found.append(status)
-        return status, bodies
-
-    monkeypatch.setattr(Known, "journal_and_learn", counted)
+    found = one_call_statuses(monkeypatch)
     running, http, client = serving(settings, learner)
     server = running.server
     rng = np.random.default_rng(12)

@@ -22,6 +22,7 @@ from oddsmill.protocol import Event, decode_body, unpack
 from oddsmill.settings import LearnerSettings
 
 from tests.test_fastpath import same_state
+from tests.tools import one_call_statuses
 
 NAMES = ["route_km", "weight_g", "stops"]
 
@@ -241,7 +242,6 @@ def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path
     kind of id and name, in blocks of 1 to 8: that call takes many blocks, and the daemon publishes,
     journals and learns what it does with the small paths turned off."""
     from oddsmill.fastpath import READ
-    from oddsmill.quick import Known
 
     rng = np.random.default_rng(31)
     choices = ["train", "train_id", "train_big_id", "train_str_id", "train_other_order", "train_new_name"]
@@ -252,16 +252,8 @@ def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path
         n = int(rng.integers(1, 9))
         blocks.append(msgs[at : at + n])
         at += n
-    found: list[int] = []
-    one_call = Known.journal_and_learn
-
-    def counted(self: Any, *a: Any) -> Any:
-        status, bodies = one_call(self, *a)
-        found.append(status)
-        return status, bodies
-
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(Known, "journal_and_learn", counted)
+        found = one_call_statuses(mp)
         fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
     assert found.count(READ) >= 40 and len(set(found)) > 1, found  # (declined: other names, str ids)
     with pytest.MonkeyPatch.context() as mp:

@@ -66,3 +66,20 @@ def full_rows(learner_state: dict[str, Any]) -> dict[str, Any]:
     from oddsmill.learner import Learner
 
     return Learner.from_state_dict(learner_state).state_dict()
+
+
+def one_call_statuses(mp: pytest.MonkeyPatch) -> list[int]:
+    """What each call of the quick path's one compiled call (`Known.journal_and_learn`) found,
+    appended as it returns, while `mp` holds."""
+    from oddsmill.quick import Known
+
+    found: list[int] = []
+    one_call = Known.journal_and_learn
+
+    def counted(self: Any, *a: Any) -> Any:
+        status, bodies = one_call(self, *a)
+        found.append(status)
+        return status, bodies
+
+    mp.setattr(Known, "journal_and_learn", counted)
+    return found
