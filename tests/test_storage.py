@@ -244,7 +244,8 @@ def test_a_checkpoints_fsync_fails_after_a_background_fsync_failed(
 ) -> None:
     """`sync_soon` after a background fsync that failed, and was not collected yet, raises that
     error even though its own fsync would succeed: the kernel may have dropped the pages the first
-    could not write, and a checkpoint must not claim them."""
+    could not write, and a checkpoint must not claim them. Likewise `sync` (the loop's, at a new
+    segment) after a checkpoint's fsync failed."""
     import errno
 
     from oddsmill import storage
@@ -271,6 +272,16 @@ def test_a_checkpoints_fsync_fails_after_a_background_fsync_failed(
     assert fresh.sync_soon().result() == fresh.tell()
     fresh.close()
     writer.abandon()
+    # a checkpoint's fsync that failed: a sync in the loop after it fails too, though its own
+    # fsync would succeed
+    third = JournalWriter(tmp_path / "journal-000000000002.omj")
+    third.write_all(3.0, [b"\x80"])
+    failing["on"] = True
+    assert isinstance(third.sync_soon().exception(), OSError)
+    failing["on"] = False
+    with pytest.raises(OSError, match="Input/output error"):
+        third.sync()
+    third.abandon()
 
 
 def test_a_segment_reserves_its_blocks_while_open_and_gives_back_the_rest(tmp_path: Path) -> None:

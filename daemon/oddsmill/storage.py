@@ -428,6 +428,8 @@ class JournalWriter:
         could seem to succeed: the kernel may have dropped the pages the first one could not
         write)."""
         self._wait(raising=True)
+        if self._sync_failed is not None:  # (one started by `sync_soon`, whose caller had it too)
+            raise self._sync_failed
         self.flush()
         _sync_and_drop(self._fd, self._end)
 
