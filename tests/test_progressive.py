@@ -96,6 +96,34 @@ def test_each_events_loss_is_numpys_bit_for_bit_and_blocks_do_not_matter() -> No
     assert whole.log_loss_window == few.log_loss_window
 
 
+def test_the_probabilities_taken_with_the_losses_are_the_scores_bit_for_bit() -> None:
+    """`update(z, y, p)` (the columnar path's: one exp a row for the loss and the score's p)
+    records what `update(z, y)` does, and gives each row the p a score of its logit has
+    (`quick._p`), bit for bit, extremes, zeros and NaN included; and scipy's logistic function
+    (the outside reference) to within a rounding."""
+    from oddsmill.quick import _p
+    from scipy.special import expit
+
+    rng = np.random.default_rng(11)
+    z = np.concatenate(
+        [rng.normal(0, s, 20_000) for s in (1.0, 30.0, 1e3)]
+        + [np.array([0.0, -0.0, 5e-324, -5e-324, 709.0, -745.0, 1e65, np.inf, -np.inf, np.nan])]
+    )
+    y = (rng.random(z.size) < 0.5).astype(float)
+    plain, with_p = ProgressiveMetrics(window=500), ProgressiveMetrics(window=500)
+    plain.update(z, y)
+    p = np.full(z.size, -1.0)
+    with_p.update(z, y, p)
+    a, b = plain.state_dict(), with_p.state_dict()
+    assert a["sum"] == b["sum"] or (np.isnan(a["sum"]) and np.isnan(b["sum"]))
+    for key in ("z", "y", "history"):
+        assert a[key].tobytes() == b[key].tobytes(), key
+    assert plain._ll.tobytes() == with_p._ll.tobytes()
+    assert p.tobytes() == np.array([_p(v) for v in z.tolist()]).tobytes()
+    finite = np.isfinite(z)
+    np.testing.assert_allclose(p[finite], expit(z[finite]), rtol=1e-15, atol=1e-300)
+
+
 @pytest.mark.parametrize("n", [1, 63, 64, 65, 999, 10_000])
 def test_the_compiled_sums_hold_to_exact_sums(n: int) -> None:
     """The window's sum (chunks of the ring summed in order, chunks written to summed again) is a

@@ -303,18 +303,19 @@ def probabilities(z: np.ndarray) -> bytes:
     return out.astype("<f8", copy=False).tobytes()
 
 
-def score_body(z: np.ndarray, step: int, ts: float) -> bytes:
+def score_body(z: np.ndarray, step: int, ts: float, p: np.ndarray | None = None) -> bytes:
     """The score body of a columnar block without ids (PROTOCOL 3): the bytes msgpack.packb gives
     for the full path's dict {"id": [None] * m, "p": ..., "logit": ..., "step": step, "ts": ts},
     put together in one compiled pass (`_pack_body`) and copied out once. (Built from numpy's
     bytes and joined, a body of 500 rows took 15 us here, most of it copies: a tenth of the
-    block's whole handling.)"""
+    block's whole handling.) `p`: the rows' p when the caller has them (`Engine.train_rows`
+    computes them with the metrics' losses, saving an exp a row), each `_p` of its logit."""
     m = z.shape[0]
     need = 64 + 17 * m  # (53 bytes of keys and headers at most)
     buf: np.ndarray | None = getattr(_local, "body", None)
     if buf is None or buf.shape[0] < need or (buf.shape[0] > KEPT_BODY and need <= KEPT_BODY):
         buf = _local.body = np.empty(max(need, 64 + 17 * 512), dtype=np.uint8)  # (a spike's let go)
-    n = _pack_body(z, step, ts, buf)
+    n = _pack_body(z, _probabilities(z) if p is None else p, step, ts, buf)
     body: bytes = buf[:n].tobytes()
     return body
 
@@ -335,7 +336,7 @@ def _put_length(out, p, n, tag16):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _pack_body(z, step, ts, out):  # type: ignore[no-untyped-def]
+def _pack_body(z, ps, step, ts, out):  # type: ignore[no-untyped-def]
     """`score_body`'s bytes into out (room for 53 + 17 m); returns their length."""
     m = z.shape[0]
     scratch = np.zeros(1, dtype=np.uint64)
@@ -364,7 +365,7 @@ def _pack_body(z, step, ts, out):  # type: ignore[no-untyped-def]
         dst = out[p : p + size].view(np.float64)
         if key == 0:
             for i in range(m):
-                dst[i] = _p(z[i])
+                dst[i] = ps[i]
         else:
             for i in range(m):
                 dst[i] = z[i]

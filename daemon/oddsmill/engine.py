@@ -237,19 +237,25 @@ class Engine:
         return Score(ev.id, z, step, arrival)
 
     def train_rows(
-        self, arrival: float, slots: Sequence[int] | np.ndarray, rows: np.ndarray, y: np.ndarray
+        self,
+        arrival: float,
+        slots: Sequence[int] | np.ndarray,
+        rows: np.ndarray,
+        y: np.ndarray,
+        p: np.ndarray | None = None,
     ) -> tuple[np.ndarray, int]:
         """`process` of a plain columnar block of training events (labels y, 0 or 1) whose names
         all have their slots already: what `prepare` (`_add_columns`) and `settle` do with it, so
         the same state bit for bit (tests/test_lone.py), without a plan. Returns the published
-        logits and the step of the first row (each row's is one more)."""
+        logits and the step of the first row (each row's is one more); with `p` (a row each),
+        their scores' p go there, computed with the metrics' losses."""
         if self.pending:
             self._expire(arrival)
         lr = self.learner
         step = lr.step
         logits = lr.run_rows(slots, rows, y)
         self.counters.train += rows.shape[0]
-        self.metrics.update(logits, y)
+        self.metrics.update(logits, y, p)
         return logits, step
 
     def train_known(self, arrival: float, known: Known) -> list[bytes]:

@@ -23,6 +23,7 @@ HISTORY_POINTS = 512  # the history keeps at most this many points, thinning its
 HISTORY_STRIDE = 50  # labelled events between two points, at first
 LOG2 = math.log(2.0)
 CHUNK = 64  # ring slots summed together for the window's log-loss (see _window_sum)
+_NO_P = np.empty(0)  # `_record` without the probabilities
 
 
 def log_loss_from_logit(z: np.ndarray, y: np.ndarray) -> np.ndarray:
@@ -40,6 +41,22 @@ def _softplus(z: float) -> float:
     if z < 0.0:
         return math.log1p(math.exp(z))
     return LOG2 if z == 0.0 else z
+
+
+@njit(cache=True, inline="always")
+def _softplus_and_p(z: float) -> tuple[float, float]:
+    """(`_softplus(z)`, sigmoid(z)) from one exp, each bit for bit what `_softplus` and a score's
+    p (`quick._p`) compute: both take exp(-|z|), and a columnar block's body needs both."""
+    if z > 0.0:
+        e = math.exp(-z)
+        return z + math.log1p(e), 1.0 / (1.0 + e)
+    if z < 0.0:
+        e = math.exp(z)
+        return math.log1p(e), e / (1.0 + e)
+    if z == 0.0:
+        return LOG2, 1.0 / (1.0 + math.exp(-z))
+    e = math.exp(z)  # NaN
+    return z, e / (1.0 + e)
 
 
 @njit(cache=True)
@@ -91,17 +108,24 @@ def _record(
     filled: int,
     stride: int,
     points: int,
+    p: np.ndarray,
 ) -> tuple[float, int, int, int, int, int]:
     """`ProgressiveMetrics.update`, compiled: each event's loss added to the sum in order and
     written to the ring, a history point at every multiple of the stride. One path for blocks of
     every size: a call costs 1.6 us, about what a block of one cost with Python floats. (With
     numpy, the window's mean over 10,000 values at each of a block's ten history points took most
-    of the metrics' 73 us a block of 500: more than the kernel, and nine times over in a race.)"""
+    of the metrics' 73 us a block of 500: more than the kernel, and nine times over in a race.)
+    When p is not empty, each event's p (its score's) goes there too, from the loss's exp."""
     w = rz.shape[0]
+    with_p = p.shape[0] > 0
     for i in range(z.shape[0]):
         zi = z[i]
         yi = y[i]
-        ll = _softplus(zi) - yi * zi
+        if with_p:
+            sp, p[i] = _softplus_and_p(zi)
+        else:
+            sp = _softplus(zi)
+        ll = sp - yi * zi
         total += ll
         count += 1
         rz[head] = zi
@@ -189,8 +213,9 @@ class ProgressiveMetrics:
     def history(self) -> list[tuple[int, float, float]]:
         return [(int(c), a, b) for c, a, b in self._history[: self._points].tolist()]
 
-    def update(self, z: np.ndarray, y: np.ndarray) -> None:
-        """Record the published logits `z` of labelled events with outcomes `y`, in order."""
+    def update(self, z: np.ndarray, y: np.ndarray, p: np.ndarray | None = None) -> None:
+        """Record the published logits `z` of labelled events with outcomes `y`, in order; with
+        `p`, each one's p (its score's, bit for bit) goes there as well."""
         n = z.shape[0]
         if not n:
             return
@@ -210,6 +235,7 @@ class ProgressiveMetrics:
             int(ms[3]),
             int(ms[4]),
             int(ms[5]),
+            _NO_P if p is None else p,
         )
 
     def arrays(self) -> tuple[np.ndarray, ...]:

@@ -194,7 +194,7 @@ def _learn_known(  # type: ignore[no-untyped-def]
     )
     total, count, head, filled, stride, points = _record(
         z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
-        int(ms[4]), int(ms[5]),
+        int(ms[4]), int(ms[5]), np.empty(0),
     )  # fmt: skip
     ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
     p = 0

@@ -791,10 +791,11 @@ class Server:
             engine.numbered(src, seq)
         bodies: list[bytes] = []
         for run in runs:
-            logits, step = engine.train_rows(arrival, run.slots, run.rows, run.y)
+            p = np.empty(run.y.shape[0])
+            logits, step = engine.train_rows(arrival, run.slots, run.rows, run.y, p)
             at = 0
             for m in run.counts:
-                bodies.append(columnar.score_body(logits[at : at + m], step + at, arrival))
+                bodies.append(columnar.score_body(logits[at : at + m], step + at, arrival, p[at : at + m]))
                 at += m
         self._answer(pub, bodies, arrival)
         return True
