@@ -1,15 +1,18 @@
-"""The daemon's commonest block under load, in two compiled calls: messages of one numeric training
+"""The daemon's commonest block under load, in one compiled call: messages of one numeric training
 event each, every one with the set of names the block before had (in the same order), with an
 integer id or none.
 
 `fastpath._parse_run` reads the block and checks it against the names remembered; nothing is
-changed, so the server journals the block only once it is known to be such. `_learn_known` then learns the events as the
-rows of one columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the
-progressive metrics (`progressive._record`, as `ProgressiveMetrics.update` does) and packs each
-score body (PROTOCOL 3) byte for byte as `msgpack.packb` packs the dict the full path builds. The
-same arithmetic as `Server._quick` on the same block, so the same state and the same bytes
-(tests/test_lone.py holds all three paths to the full one), with two calls where that path made
-four, and no Python object an event but its score's bytes.
+changed until the block is known to be such. `_write_records` then appends its journal records to
+the segment (writev and zlib-ng's CRC-32, called from compiled code; the bytes
+`storage.JournalWriter.write_all` writes), and `_learn_known` learns the events as the rows of one
+columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the progressive metrics
+(`progressive._record`, as `ProgressiveMetrics.update` does) and packs each score body (PROTOCOL 3)
+byte for byte as `msgpack.packb` packs the dict the full path builds. `_journal_and_learn` is the
+three in one call; while requests are pending, or with fsync = "block", the server reads in one
+call, journals in Python and learns in a second (`Known.read`, `Known.learn`). The same arithmetic
+as `Server._quick` on the same block, so the same state and the same bytes (tests/test_lone.py
+holds every path to the full one), and no Python object an event but its score's bytes.
 
 >>> import msgpack, numpy as np
 >>> body = np.zeros(80, dtype=np.uint8)
