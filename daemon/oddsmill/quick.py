@@ -16,7 +16,7 @@ holds every path to the full one), and no Python object an event but its score's
 
 >>> import msgpack, numpy as np
 >>> body = np.zeros(80, dtype=np.uint8)
->>> n = _pack_score(body, 0, True, 7, np.uint64(0), 0.0, 3, 1.5)
+>>> n = _pack_score(body, 0, True, 7, np.uint64(0), 0.0, 0.5, 3, 1.5)
 >>> msgpack.unpackb(body[:n].tobytes())
 {'id': 7, 'p': 0.5, 'logit': 0.0, 'step': 3, 'ts': 1.5}
 """
@@ -151,9 +151,10 @@ def _p(z):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy")
-def _pack_score(out, p, has_id, ident, big_id, z, step, ts):  # type: ignore[no-untyped-def]
+def _pack_score(out, p, has_id, ident, big_id, z, prob, step, ts):  # type: ignore[no-untyped-def]
     """One score body, {"id", "p", "logit", "step", "ts"} in that order, at out[p:]; returns its
-    end. The id: nil (not has_id), the int64 ident, or (ident 0, big_id set) a uint64 past int64."""
+    end. The id: nil (not has_id), the int64 ident, or (ident 0, big_id set) a uint64 past int64;
+    prob: the score's p, `_p(z)` (the metrics compute it with the loss, `_record`)."""
     scratch = np.zeros(1, dtype=np.uint64)
     as_float = scratch.view(np.float64)
     p = _put(out, p, _ID)
@@ -166,7 +167,7 @@ def _pack_score(out, p, has_id, ident, big_id, z, step, ts):  # type: ignore[no-
     else:
         p = _put_int(out, p, ident)
     p = _put(out, p, _P)
-    p = _put_float(out, p, _p(z), scratch, as_float)
+    p = _put_float(out, p, prob, scratch, as_float)
     p = _put(out, p, _LOGIT)
     p = _put_float(out, p, z, scratch, as_float)
     p = _put(out, p, _STEP)
@@ -195,18 +196,19 @@ def _learn_known(  # type: ignore[no-untyped-def]
     K._shared_rows(
         prm, sc, sl, fl, dt, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, xs, ada
     )
+    ps = np.empty(m)  # each score's p, taken with its loss from the same exp
     total, count, head, filled, stride, points = _record(
         z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
-        int(ms[4]), int(ms[5]), np.empty(0),
+        int(ms[4]), int(ms[5]), ps,
     )  # fmt: skip
     ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
     p = 0
     for r in range(m):
         if ids[r] < 0:
-            p = _pack_score(out, p, False, 0, np.uint64(0), z[r], step0 + r, arrival)
+            p = _pack_score(out, p, False, 0, np.uint64(0), z[r], ps[r], step0 + r, arrival)
         else:
             fits, ident, bits = _read_int(b, ids[r])
-            p = _pack_score(out, p, True, ident, np.uint64(0) if fits else bits, z[r], step0 + r, arrival)
+            p = _pack_score(out, p, True, ident, np.uint64(0) if fits else bits, z[r], ps[r], step0 + r, arrival)
         ends[r] = p
 
 
