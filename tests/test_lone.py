@@ -16,7 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from oddsmill.engine import Engine, Rejection, Score
-from oddsmill.fastpath import RunReader, read_each
+from oddsmill.fastpath import READ, RunReader, read_each
 from oddsmill.learner import Learner
 from oddsmill.protocol import Event, decode_body, unpack
 from oddsmill.settings import LearnerSettings
@@ -37,12 +37,15 @@ class Recorder:
         self.frames.append(bytes(data))
 
 
-def run_server(state: Path, blocks: list[list[list[bytes]]], small_paths: bool, monkeypatch: Any) -> Any:
+def run_server(
+    state: Path, blocks: list[list[list[bytes]]], small_paths: bool, monkeypatch: Any, fsync: str = "interval"
+) -> Any:
     """Handle the blocks in a Server (no sockets), each at its own fixed arrival time; returns
     (server, frames published, journal bytes)."""
     from oddsmill.server import Server, ServerSettings
 
-    server = Server(ServerSettings(state_dir=state, pending_limit=5, pending_ttl=30.0), LearnerSettings(scale_warmup=4))
+    settings = ServerSettings(state_dir=state, pending_limit=5, pending_ttl=30.0, fsync=fsync)
+    server = Server(settings, LearnerSettings(scale_warmup=4))
     if not small_paths:
         monkeypatch.setattr(server, "_quick", lambda *a: False)
         monkeypatch.setattr(server, "_columnar", lambda *a: False)
@@ -180,7 +183,6 @@ def test_small_blocks_publish_journal_and_learn_what_the_full_path_does(
 def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) -> None:
     """600 messages of every kind in blocks of 1 to 8, with both small paths counted: each takes
     blocks, and the daemon publishes, journals and learns what it does with both turned off."""
-    from oddsmill.quick import Known
     from oddsmill.server import Server
 
     rng = np.random.default_rng(77)
@@ -200,13 +202,16 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         if columns and len(blocks) % 8 == 4:
             blocks.append(columns[-3:])  # columnar blocks together
             del columns[-3:]
-    taken = {"_quick": 0, "_lone": 0, "_columns": 0, "_columnar": 0, "learn": 0}  # (learn: quick.py's)
+    taken = {"_quick": 0, "_lone": 0, "_columns": 0, "_columnar": 0}
     originals = {name: getattr(Server, name) for name in ("_quick", "_lone", "_columns", "_columnar")}
-    learn = Known.learn
+    one_call = Engine.journal_and_train_known
+    held: list[tuple[int, int, int]] = []  # one call's (status, requests held before, dropped by it)
 
-    def learn_counted(self: Any, *a: Any) -> Any:
-        taken["learn"] += 1
-        return learn(self, *a)
+    def one_call_counted(self: Any, *a: Any) -> Any:
+        before, expired = len(self.pending), self.counters.pending_expired
+        found, bodies = one_call(self, *a)
+        held.append((found, before, self.counters.pending_expired - expired))
+        return found, bodies
 
     def counting(name: str) -> Any:
         def counted(self: Any, *a: Any) -> Any:
@@ -217,17 +222,19 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
         return counted
 
     try:
-        Known.learn = learn_counted  # type: ignore[method-assign]
+        Engine.journal_and_train_known = one_call_counted  # type: ignore[method-assign]
         for name in originals:
             setattr(Server, name, counting(name))
         with pytest.MonkeyPatch.context() as mp:
             fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
     finally:
-        Known.learn = learn  # type: ignore[method-assign]
+        Engine.journal_and_train_known = one_call  # type: ignore[method-assign]
         for name, f in originals.items():
             setattr(Server, name, f)
-    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["learn"] >= 5 and taken["_columns"] >= 4, taken
+    assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["_columns"] >= 4, taken
     assert taken["_columnar"] >= 8, taken
+    # the one call takes blocks while requests are held, and drops those past their time-to-live
+    assert sum(f == READ and n > 0 for f, n, _ in held) >= 10 and sum(e for f, _, e in held if f == READ) > 0, held
     with pytest.MonkeyPatch.context() as mp:
         full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
     assert len(fast_frames) > 1000 and fast_frames == full_frames
@@ -236,12 +243,14 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
 
 
-def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path) -> None:
-    """With no request pending, `_quick` reads a block of known names, writes its journal records
-    and learns it in one compiled call (`Known.journal_and_learn`). 900 training messages of every
-    kind of id and name, in blocks of 1 to 8: that call takes many blocks, and the daemon publishes,
-    journals and learns what it does with the small paths turned off."""
-    from oddsmill.fastpath import READ
+@pytest.mark.parametrize("fsync", ["interval", "block"])
+def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path, fsync: str) -> None:
+    """`_quick` reads a block of known names, writes its journal records and learns it in one
+    compiled call (`Known.journal_and_learn`); with fsync = "block" it reads in one, journals in
+    Python (and syncs) and learns in a second (`Known.learn`). 900 training messages of every kind
+    of id and name, in blocks of 1 to 8: the quick path takes many blocks, and the daemon
+    publishes, journals and learns what it does with the small paths turned off."""
+    from oddsmill.quick import Known
 
     rng = np.random.default_rng(31)
     choices = ["train", "train_id", "train_big_id", "train_str_id", "train_other_order", "train_new_name"]
@@ -252,12 +261,25 @@ def test_training_streams_take_the_one_call_path_and_end_the_same(tmp_path: Path
         n = int(rng.integers(1, 9))
         blocks.append(msgs[at : at + n])
         at += n
+    learned: list[float] = []  # the arrival of each block the second call of two learned
+    learn = Known.learn
+
+    def learn_counted(self: Any, *a: Any) -> Any:
+        if a[-1] > 0.0:  # (not the server's warm-up, at arrival 0)
+            learned.append(a[-1])
+        return learn(self, *a)
+
     with pytest.MonkeyPatch.context() as mp:
         found = one_call_statuses(mp)
-        fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
-    assert found.count(READ) >= 40 and len(set(found)) > 1, found  # (declined: other names, str ids)
+        mp.setattr(Known, "learn", learn_counted)
+        fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp, fsync)
+    if fsync == "interval":
+        # (declined: other names, str ids)
+        assert found.count(READ) >= 40 and len(set(found)) > 1 and not learned, found
+    else:
+        assert found == [READ] and len(learned) >= 40, found  # (one call: the server's warm-up, on /dev/null)
     with pytest.MonkeyPatch.context() as mp:
-        full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
+        full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp, fsync)
     assert len(fast_frames) == 2 * len(msgs) and fast_frames == full_frames
     assert fast_journal == full_journal
     same_state(fast.engine, full.engine)
@@ -444,6 +466,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
     succeed again the held blocks are journaled and learned. Published frames, journal and state
     equal those of the full path under the same failure."""
     import errno
+    import os
 
     from oddsmill import storage
 
@@ -456,6 +479,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
         blocks.append(msgs[at : at + len(block)])
         at += len(block)
     real_writev = storage.os.writev
+    real_fileno = storage.JournalWriter.fileno
 
     def run(state: Path, small_paths: bool) -> tuple[Any, list[bytes], bytes]:
         from oddsmill.server import Server, ServerSettings
@@ -485,8 +509,11 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
                         raise OSError(errno.ENOSPC, "No space left on device (injected)")
 
                     mp.setattr(storage.os, "writev", full_disk)
+                    # and the quick path's compiled writev gets a descriptor whose writes all fail
+                    mp.setattr(storage.JournalWriter, "fileno", lambda self: dev_full)
                 else:
                     mp.setattr(storage.os, "writev", real_writev)
+                    mp.setattr(storage.JournalWriter, "fileno", real_fileno)
                 if k == fail_at + 2:
                     assert server.outage is not None
                     assert len(server.held) == len(blocks[fail_at]) + len(blocks[fail_at + 1])
@@ -499,8 +526,12 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
         journal = b"".join(p.read_bytes() for p in sorted(state.glob("journal-*")))
         return server, pub.frames, journal
 
-    fast, fast_frames, fast_journal = run(tmp_path / "fast", True)
-    full, full_frames, full_journal = run(tmp_path / "full", False)
+    dev_full = os.open("/dev/full", os.O_WRONLY)  # (every write: ENOSPC)
+    try:
+        fast, fast_frames, fast_journal = run(tmp_path / "fast", True)
+        full, full_frames, full_journal = run(tmp_path / "full", False)
+    finally:
+        os.close(dev_full)
     assert fast_frames == full_frames and len(fast_frames) > 20
     assert fast_journal == full_journal
     same_state(fast.engine, full.engine)

@@ -272,9 +272,12 @@ class Engine:
         self, arrival: float, known: Known, raws: list[bytes], fd: int
     ) -> tuple[int, list[bytes]]:
         """`train_known` with the block's reading and its journal records (appended to the file fd)
-        in the same compiled call (`Known.journal_and_learn`): what that returns. Only with no
-        request pending (`train_known` expires the pending store before it learns)."""
-        assert not self.pending
+        in the same compiled call (`Known.journal_and_learn`): what that returns. The pending
+        store's requests past their time-to-live are dropped first, as `train_known` drops them
+        before it learns and `prepare` before each item (at one arrival, a second expiry drops
+        nothing more: a block this call declines expires nothing again on the path that takes it)."""
+        if self.pending:
+            self._expire(arrival)
         metrics = self.metrics
         arrays = self.learner.arrays(known.slots.shape[0])
         found, bodies = known.journal_and_learn(raws, fd, arrival, arrays, metrics.arrays(), metrics.scalars())

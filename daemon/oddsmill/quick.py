@@ -9,8 +9,9 @@ the segment (writev and zlib-ng's CRC-32, called from compiled code; the bytes
 columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the progressive metrics
 (`progressive._record`, as `ProgressiveMetrics.update` does) and packs each score body (PROTOCOL 3)
 byte for byte as `msgpack.packb` packs the dict the full path builds. `_journal_and_learn` is the
-three in one call; while requests are pending, or with fsync = "block", the server reads in one
-call, journals in Python and learns in a second (`Known.read`, `Known.learn`). The same arithmetic
+three in one call (the pending store's expiry, which the full path does first, done in Python just
+before it); with fsync = "block", or while the journal writer holds appended bytes not yet written, the
+server reads in one call, journals in Python and learns in a second (`Known.read`, `Known.learn`). The same arithmetic
 as `Server._quick` on the same block, so the same state and the same bytes (tests/test_lone.py
 holds every path to the full one), and no Python object an event but its score's bytes.
 

@@ -712,8 +712,8 @@ class Server:
         one columnar block, as the full path would learn them, without its plan. The names of the
         block before, with integer ids or none, take one compiled call that writes the journal's
         records too (quick.py, `Engine.journal_and_train_known`; a third less time a message than
-        two calls for blocks of 500, an eighth less for pairs), or two while requests are pending or
-        with fsync = "block" (`Engine.train_known`); other names or str ids `fastpath.RunReader` and
+        two calls for blocks of 500, an eighth less for pairs), or two with fsync = "block" or while
+        the journal holds buffered records (`Engine.train_known`); other names or str ids `fastpath.RunReader` and
         `Engine.train_rows`, which remember the names for the next block. The commonest block
         under load. False, with nothing done, for any other block."""
         raws: list[bytes] = []
@@ -730,7 +730,7 @@ class Server:
         vocab = engine.learner.vocab
         if known.vocab is vocab:  # the names of the last block, in compiled code (quick.py)
             journal = self.journal
-            if self.settings.fsync != "block" and not engine.pending and not journal.buffered():
+            if self.settings.fsync != "block" and not journal.buffered():
                 # read, journaled and learned in one call
                 found, bodies = engine.journal_and_train_known(arrival, known, raws, journal.fileno())
                 if found == READ:
