@@ -269,9 +269,10 @@ def test_a_disk_that_fills_under_lone_messages_holds_them_and_loses_nothing(
     small_disk: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """Lone training messages of known names take the quick path's one compiled call, which writes
-    their journal records itself (quick.py). When that write fails (the disk fills), nothing of the
-    message is learned and the daemon holds it, as the full path does; once space returns, every
-    message is in the journal once, in order, learned once, and the state is its replay."""
+    their journal records itself (quick.py), and soon a wake-up in one call (intake.py). When that
+    write fails (the disk fills), nothing of the message is learned and the daemon holds it, as the
+    full path does; once space returns, every message is in the journal once, in order, learned
+    once, and the state is its replay."""
     from oddsmill.quick import WRITE_FAILED
 
     state = small_disk / "state"

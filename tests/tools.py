@@ -69,17 +69,28 @@ def full_rows(learner_state: dict[str, Any]) -> dict[str, Any]:
 
 
 def one_call_statuses(mp: pytest.MonkeyPatch) -> list[int]:
-    """What each call of the quick path's one compiled call (`Known.journal_and_learn`) found,
-    appended as it returns, while `mp` holds."""
+    """What each call of the quick path's one compiled call (`Known.journal_and_learn`), and each
+    wake-up in one call that something came to (`Engine.take_in`, intake.py), found, appended as
+    it returns, while `mp` holds."""
+    from oddsmill import intake
+    from oddsmill.engine import Engine
     from oddsmill.quick import Known
 
     found: list[int] = []
     one_call = Known.journal_and_learn
+    take_in = Engine.take_in
 
     def counted(self: Any, *a: Any) -> Any:
         status, bodies = one_call(self, *a)
         found.append(status)
         return status, bodies
 
+    def woke(self: Any, *a: Any) -> int:
+        status: int = take_in(self, *a)
+        if status != intake.EMPTY:
+            found.append(status)
+        return status
+
     mp.setattr(Known, "journal_and_learn", counted)
+    mp.setattr(Engine, "take_in", woke)
     return found

@@ -8,6 +8,7 @@ from sockets, so both learn exactly the same thing from the same messages.
 
 from __future__ import annotations
 
+import math
 from array import array
 from collections import OrderedDict
 from collections.abc import Sequence
@@ -19,11 +20,13 @@ import numpy as np
 from . import kernel as K
 from .encoding import Block, BlockBuilder, Rows
 from .errors import ProtocolError
+from .fastpath import READ
 from .learner import Learner
 from .progressive import ProgressiveMetrics
 from .protocol import Columns, Event, Item
 
 if TYPE_CHECKING:
+    from .intake import Intake
     from .quick import Known
 
 # A held scoring request: (slots, values, w, logit, clock): the logit is the score published for
@@ -283,6 +286,20 @@ class Engine:
         found, bodies = known.journal_and_learn(raws, fd, arrival, arrays, metrics.arrays(), metrics.scalars())
         self.counters.train += len(bodies)
         return found, bodies
+
+    def take_in(self, intake: Intake, known: Known, fd: int, wait_ms: int) -> int:
+        """A wake-up of the loop in one compiled call (`Intake.serve`): the block that came, when
+        it is one `journal_and_train_known` would take, journaled (to fd), learned and answered;
+        what that returns. A block that comes when the oldest pending request is past its
+        time-to-live is handed back (EXPIRY_DUE), for the usual path to drop it first."""
+        pending = self.pending
+        oldest = next(iter(pending.values()))[E_CLOCK] if pending else math.inf
+        metrics = self.metrics
+        arrays = self.learner.arrays(known.slots.shape[0])
+        found = intake.serve(wait_ms, known, fd, arrays, metrics.arrays(), metrics.scalars(), oldest, self.pending_ttl)
+        if found == READ:
+            self.counters.train += intake.count
+        return found
 
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:
         """Everything of a block but the kernel: sequence checks, encoding, the pending store and

@@ -503,14 +503,7 @@ class EventArrays:
         m = len(raws)
         if max(map(len, raws)) > MAX_MESSAGE:
             return None
-        if self._ys.shape[0] < m:
-            self._ys = np.empty(2 * m)
-            self._ids = np.empty(2 * m, dtype=np.int64)
-            self._nkeys = np.zeros(2 * m, dtype=np.int64)
-            self._keypos = np.zeros(2 * m, dtype=np.int64)
-            self._grown(2 * m)
-        if self._values.shape[0] < values:
-            self._values = np.empty(2 * values)
+        self.room(m, values)
         joined = b"".join(raws)
         if m == 1:  # (a lone message: the commonest block at a modest load)
             starts = self._one
@@ -518,6 +511,18 @@ class EventArrays:
         else:
             starts = np.array(list(accumulate(map(len, raws), initial=0)), dtype=np.int64)
         return joined, starts
+
+    def room(self, messages: int, values: int) -> None:
+        """Room for a block of this many messages and values (twice what was asked, when the
+        arrays grow)."""
+        if self._ys.shape[0] < messages:
+            self._ys = np.empty(2 * messages)
+            self._ids = np.empty(2 * messages, dtype=np.int64)
+            self._nkeys = np.zeros(2 * messages, dtype=np.int64)
+            self._keypos = np.zeros(2 * messages, dtype=np.int64)
+            self._grown(2 * messages)
+        if self._values.shape[0] < values:
+            self._values = np.empty(2 * values)
 
     def _grown(self, messages: int) -> None:
         """Room for this many messages now (for a subclass's own arrays)."""

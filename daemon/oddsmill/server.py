@@ -12,6 +12,7 @@ uninterrupted run on the same messages, bit for bit.
 
 from __future__ import annotations
 
+import errno
 import ipaddress
 import logging
 import math
@@ -32,7 +33,7 @@ import numpy as np
 import zmq
 from prometheus_client import CollectorRegistry
 
-from . import columnar
+from . import columnar, intake
 from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
@@ -218,6 +219,7 @@ def warm_up(settings: LearnerSettings) -> None:
     finally:
         os.close(void)
     metrics.summary()  # and the window's figures
+    intake.warm_up()  # and a wake-up in one call
     cols = msgpack.packb({"cols": ["warm"], "rows": np.ones(1).tobytes(), "y": b"\x01"})
     columnar.ColumnReader().read([cols], {("warm",): (0,)})  # and of columnar blocks (Server._columnar)
     columnar.score_body(np.zeros(1), 0, 0.0)
@@ -316,6 +318,7 @@ class Server:
         self.last_ranking = self.last_rate = -1e9
         self.reader = RunReader()  # blocks of numeric training events, read in compiled code
         self.known = Known()  # and the names of the last such block, learned in compiled code
+        self.taking_in = False  # whether the next wake-up may be one compiled call (`_take_in`)
         self.columns = columnar.ColumnReader()  # blocks of columnar messages, read in compiled code
         self._refresh()
 
@@ -635,20 +638,29 @@ class Server:
 
             observe = self.board.batch_seconds.observe
             block_max, block_bytes, every = s.block_max, s.block_bytes, s.checkpoint_events
+            # while the blocks are those of the quick path's one call, a wake-up in one compiled call
+            taking = intake.Intake(ingest, pub, block_max, block_bytes) if intake.AVAILABLE else None
             chores = 0.0  # when the checks of time (heartbeat, refresh, retry, checkpoint) are next due
             while not stop.is_set():
-                try:
-                    frames: list[list[bytes]] = [recv()]
-                except zmq.Again:
-                    frames = []
-                if frames:
-                    frames = _drain(frames[0], recv, waiting, block_max, block_bytes)
-                    t0 = time.perf_counter()
-                    self.handle(frames, pub)
-                    now = time.perf_counter()
-                    observe(now - t0)
+                if taking is not None and self._may_take_in():
+                    if self._take_in(taking, pub):
+                        now = time.perf_counter()
+                        observe(now - taking.woke)
+                    else:
+                        now = time.perf_counter()
                 else:
-                    now = time.perf_counter()
+                    try:
+                        frames: list[list[bytes]] = [recv()]
+                    except zmq.Again:
+                        frames = []
+                    if frames:
+                        frames = _drain(frames[0], recv, waiting, block_max, block_bytes)
+                        t0 = time.perf_counter()
+                        self.handle(frames, pub)
+                        now = time.perf_counter()
+                        observe(now - t0)
+                    else:
+                        now = time.perf_counter()
                 due = self.engine.learner.step - self.last_checkpoint_step >= every
                 if now < chores and not due:
                     continue
@@ -678,6 +690,8 @@ class Server:
                 self.clean_exit = False
             else:
                 self.checkpoint()
+            if taking is not None:
+                taking.close()
             if httpd is not None:
                 httpd.shutdown()
                 httpd.server_close()
@@ -692,10 +706,49 @@ class Server:
             self.journal.close()
         release_state_dir(self.settings.state_dir)
 
-    def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any]) -> None:
+    def _may_take_in(self) -> bool:
+        """Whether the next wake-up may be `_take_in`'s: the last block took the quick path's one
+        call (`Server._quick`), and it still would."""
+        return (
+            self.taking_in
+            and self.known.vocab is self.engine.learner.vocab
+            and self.race is None
+            and self.outage is None
+            and not self.journal.buffered()
+        )
+
+    def _take_in(self, taking: intake.Intake, pub: zmq.Socket[Any]) -> bool:
+        """A wake-up in one compiled call (intake.py): wait for messages, then journal, learn and
+        answer the block as `_quick`'s one call does, or hand it to `handle` as it came. False
+        when nothing came."""
+        known = self.known
+        found = self.engine.take_in(taking, known, self.journal.fileno(), POLL_MS)
+        if found == intake.EMPTY:
+            code = taking.poll_errno
+            if code not in (0, errno.EINTR):
+                raise zmq.ZMQError(code)
+            return False
+        arrival = taking.arrival
+        if found == READ:
+            self.journal.wrote(known.written)
+            self._journal_kept(arrival, taking.bodies(), False)
+            self.board.score_latency.observe(time.time() - arrival)
+            return True
+        messages = taking.handed()
+        if found == WRITE_FAILED:  # nothing learned: the full path holds the block
+            self._fail(OSError(known.errno, os.strerror(known.errno)))
+            self._block(messages, pub, arrival, [])
+        else:
+            self.handle(messages, pub, arrival)
+        return True
+
+    def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float | None = None) -> None:
         """One block: journal, then score and learn, then publish, in arrival order. While the state
-        directory cannot be written: score with the model as it stands, and hold the block."""
-        arrival = time.time()
+        directory cannot be written: score with the model as it stands, and hold the block.
+        `arrival`: when it came (default: now)."""
+        if arrival is None:
+            arrival = time.time()
+        self.taking_in = False
         bodies: list[object] = []
         if self.race is None and self.outage is None:
             if self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival):
@@ -737,6 +790,7 @@ class Server:
                     journal.wrote(known.written)
                     self._journal_kept(arrival, raws, False)
                     self._answer(pub, bodies, arrival)
+                    self.taking_in = True
                     return True
                 if found == WRITE_FAILED:  # nothing learned: the full path holds the block
                     self._fail(OSError(known.errno, os.strerror(known.errno)))
