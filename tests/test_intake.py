@@ -70,6 +70,20 @@ def stream(seed: int) -> list[tuple[list[bytes], str | None]]:
     return out[:100] + [(frames, "burst") for frames, _ in burst] + out[100:]
 
 
+def wake_ups(mp: pytest.MonkeyPatch) -> list[int]:
+    """What each wake-up in one call (`Engine.take_in`) found, EMPTY included, appended as it
+    returns, while `mp` holds."""
+    found: list[int] = []
+    take_in = Engine.take_in
+
+    def counted(self: Engine, *a: Any) -> int:
+        found.append(take_in(self, *a))
+        return found[-1]
+
+    mp.setattr(Engine, "take_in", counted)
+    return found
+
+
 def until_taken_in(client: Client, rng: np.random.Generator, found: list[int]) -> int:
     """Send training messages one at a time (each after the answer before) until a wake-up's one
     call has taken one (the names are known after a few, then `_quick` takes them, then the one
@@ -146,16 +160,9 @@ def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tm
 def test_a_request_past_its_time_to_live_is_dropped_before_the_block(tmp_path: Path) -> None:
     """The block that comes after a request's time-to-live goes to the usual path (EXPIRY_DUE),
     which drops the request first: its outcome is then refused, as an uninterrupted replay says."""
-    found: list[int] = []
-    take_in = Engine.take_in
-
-    def counted(self: Engine, *a: Any) -> int:
-        found.append(take_in(self, *a))
-        return found[-1]
-
     rng = np.random.default_rng(5)
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(Engine, "take_in", counted)
+        found = wake_ups(mp)
         running = RunningServer(loopback(tmp_path, pending_ttl=0.5), LEARNER)
         client = Client(running.ctx, running.server.bound["ingest"], running.server.bound["scores"])
         client.send({"id": "R1", "x": {"route_km_0": 1.0}})
@@ -184,19 +191,12 @@ def test_a_failed_journal_write_in_one_call_holds_the_block_until_writes_succeed
     """The one call's write fails (a descriptor whose writes all fail, ENOSPC): nothing of the block
     is learned, its score is still published (the model as it stands), the daemon holds it; when
     writes succeed again it is journaled and learned, and the journal replays to the same state."""
-    found: list[int] = []
-    take_in = Engine.take_in
-
-    def counted(self: Engine, *a: Any) -> int:
-        found.append(take_in(self, *a))
-        return found[-1]
-
     rng = np.random.default_rng(6)
     dev_full = os.open("/dev/full", os.O_WRONLY)
     real_fileno = storage.JournalWriter.fileno
     try:
         with pytest.MonkeyPatch.context() as mp:
-            mp.setattr(Engine, "take_in", counted)
+            found = wake_ups(mp)
             running = RunningServer(loopback(tmp_path), LEARNER)
             server = running.server
             client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])

@@ -308,6 +308,7 @@ class Intake:
 
     @property
     def poll_errno(self) -> int:
+        """After EMPTY: 0, or the errno of a zmq_poll that failed (EINTR: a signal came)."""
         return int(self.ictl[I_POLL_ERR])
 
     def bodies(self) -> list[bytes]:
