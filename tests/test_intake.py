@@ -262,3 +262,39 @@ def test_the_intake_hands_back_frames_as_they_came() -> None:
         ctx.term()
     want = [f[:2] + [b""] * (len(f) - 2) for f in sent]
     assert got == want and scratch.step == 0
+
+
+def test_sigterm_while_a_wake_up_waits_in_one_call_checkpoints_and_exits(tmp_path: Path) -> None:
+    """A daemon whose loop waits in `_serve`'s zmq_poll (the GIL released) when SIGTERM comes:
+    the poll returns (EINTR), the loop stops, checkpoints and exits 0 within seconds, and the
+    checkpoint holds what the journal replays to. (Sixty lone training messages of known names
+    first: the wake-ups are taken in one call after a few, as test_a_request_past_its_time_to_live
+    shows in process.)"""
+    import signal
+
+    from oddsmill.storage import load_newest
+
+    from tests.test_server import free_port, start
+    from tests.tools import full_rows
+
+    ingest, scores = f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}"
+    ctx: zmq.Context[Any] = zmq.Context()
+    proc = start(tmp_path, ingest, scores)
+    client = Client(ctx, ingest, scores)
+    rng = np.random.default_rng(8)
+    for i in range(60):
+        client.send(training(rng, i))
+        assert client.receive(1)[0][1]["id"] == i
+    client.close()
+    time.sleep(0.3)  # (idle: the loop is in its wait)
+    t0 = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(10) == 0
+    assert time.monotonic() - t0 < 5
+    ctx.term()
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    mine = full_rows(state["engine"]["learner"])
+    replayed, _ = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
+    theirs = replayed.learner.state_dict()
+    assert mine["scalars"].tobytes() == theirs["scalars"].tobytes() and replayed.learner.step == 60
+    assert mine["slots"].tobytes() == theirs["slots"].tobytes()
