@@ -41,8 +41,9 @@ def training(rng: np.random.Generator, ident: object = None) -> dict[str, Any]:
 
 def stream(seed: int) -> list[tuple[list[bytes], str | None]]:
     """Messages, each with the topic of its answer (None: none), in three parts: lone training
-    messages with ids, every ninth followed by one the one call does not take; then a burst of 120
-    training messages sent together; then the lone ones again."""
+    messages with ids and scoring requests with integer ids (some with their outcomes), every ninth
+    followed by one the one call does not take; then a burst of 120 training messages sent
+    together; then the lone ones again."""
     rng = np.random.default_rng(seed)
     others: list[tuple[list[bytes], str | None]] = [
         ([b"events", msgpack.packb({"id": "R1", "x": {"route_km_0": 1.0}})], "scores"),  # a request: held
@@ -63,7 +64,12 @@ def stream(seed: int) -> list[tuple[list[bytes], str | None]]:
     ]
     out: list[tuple[list[bytes], str | None]] = []
     for i in range(150):
-        out.append(([b"events", msgpack.packb(training(rng, i))], "scores"))
+        if i % 4 == 3:  # a scoring request with an integer id (held), every fifth then its outcome
+            out.append(([b"events", msgpack.packb({"id": 900 + i, "x": training(rng)["x"]})], "scores"))
+            if i % 5 == 0:
+                out.append(([b"events", msgpack.packb({"id": 900 + i, "y": 1})], None))
+        else:
+            out.append(([b"events", msgpack.packb(training(rng, i))], "scores"))
         if i % 9 == 8:
             out.append(others[(i // 9) % len(others)])
     burst = [([b"events", msgpack.packb(training(rng, 1000 + i))], "scores") for i in range(120)]
@@ -149,10 +155,12 @@ def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tm
     details = [a["detail"] for t, a in on_answers if t == b"rejects"]
     assert "a message has 2 frames, got 3" in details and "a message has 2 frames, got 1" in details
     same_state(on.engine, off.engine)
-    assert on.engine.state_dict()["pending"] == off.engine.state_dict()["pending"]
-    # the journal holds every message the one call took: replayed, the same state and scores
+    held = on.engine.state_dict()["pending"]  # (their arrival times are each run's own)
+    assert len(held) > 20 and [e[:-1] for e in held] == [e[:-1] for e in off.engine.state_dict()["pending"]]
+    # the journal holds every message the one call took: replayed, the same state, requests and scores
     replayed, scores = replay_journal(tmp_path / "on", LEARNER)
     same_state(replayed, on.engine)
+    assert replayed.state_dict()["pending"] == held
     live = [a["logit"] for t, a in on_answers if t == b"scores" and type(a["logit"]) is float]  # (not columnar)
     assert [s.logit for s in scores][-len(live) :] == live
 

@@ -77,7 +77,9 @@ KINDS = [
     "train_other_order",  # the same names in another order: another run
     "train_new_name",
     "request",  # a scoring request with an id: held
+    "request_int_id",  # with an integer id: quick.py scores and the engine holds it, once the names are known
     "outcome",  # the outcome of an earlier request (or of none: unknown_outcome)
+    "outcome_int_id",
     "one_hot",
     "weighted",
     "numbered",  # src and seq (one repeated: a duplicate)
@@ -117,6 +119,10 @@ def build(kinds: list[str], seed: int) -> list[list[bytes]]:
             body = {"id": f"R{i % 7}", "x": {n: float(rng.normal()) for n in NAMES}}
         elif kind == "outcome":
             body = {"id": f"R{int(rng.integers(0, 9))}", "y": int(rng.random() < 0.5)}
+        elif kind == "request_int_id":
+            body = {"id": 500 + i % 7, "x": {n: float(rng.normal()) for n in NAMES}}
+        elif kind == "outcome_int_id":
+            body = {"id": 500 + int(rng.integers(0, 9)), "y": int(rng.random() < 0.5)}
         elif kind == "one_hot":
             body = {"x": {"route_km": 3.0, "depot": "Harbourside"}, "y": 1, "id": i}
         elif kind == "weighted":
@@ -186,7 +192,8 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     from oddsmill.server import Server
 
     rng = np.random.default_rng(77)
-    kinds = [str(k) for k in rng.choice(["train", "train_id", "train_big_id", "request", "outcome"], size=600)]
+    choices = ["train", "train_id", "train_big_id", "request", "outcome", "request_int_id", "outcome_int_id"]
+    kinds = [str(k) for k in rng.choice(choices, size=600)]
     for at in rng.integers(0, 600, size=60).tolist():
         kinds[at] = str(rng.choice(KINDS))
     msgs = build(kinds, 3)
@@ -206,6 +213,12 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     originals = {name: getattr(Server, name) for name in ("_quick", "_lone", "_columns", "_columnar")}
     one_call = Engine.journal_and_train_known
     held: list[tuple[int, int, int]] = []  # one call's (status, requests held before, dropped by it)
+    hold_known = Engine._hold_known
+    scored: list[int] = []  # the scoring requests of each block quick.py learned
+
+    def hold_counted(self: Any, known: Any, arrival: float) -> None:
+        scored.append(len(known.requests()))
+        hold_known(self, known, arrival)
 
     def one_call_counted(self: Any, *a: Any) -> Any:
         before, expired = len(self.pending), self.counters.pending_expired
@@ -223,18 +236,21 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
 
     try:
         Engine.journal_and_train_known = one_call_counted  # type: ignore[method-assign]
+        Engine._hold_known = hold_counted  # type: ignore[method-assign]
         for name in originals:
             setattr(Server, name, counting(name))
         with pytest.MonkeyPatch.context() as mp:
             fast, fast_frames, fast_journal = run_server(tmp_path / "fast", blocks, True, mp)
     finally:
         Engine.journal_and_train_known = one_call  # type: ignore[method-assign]
+        Engine._hold_known = hold_known  # type: ignore[method-assign]
         for name, f in originals.items():
             setattr(Server, name, f)
     assert taken["_quick"] >= 10 and taken["_lone"] >= 10 and taken["_columns"] >= 4, taken
     assert taken["_columnar"] >= 8, taken
     # the one call takes blocks while requests are held, and drops those past their time-to-live
     assert sum(f == READ and n > 0 for f, n, _ in held) >= 10 and sum(e for f, _, e in held if f == READ) > 0, held
+    assert sum(scored) >= 10, scored  # and scoring requests with integer ids, held by the engine
     with pytest.MonkeyPatch.context() as mp:
         full, full_frames, full_journal = run_server(tmp_path / "full", blocks, False, mp)
     assert len(fast_frames) > 1000 and fast_frames == full_frames

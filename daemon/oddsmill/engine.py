@@ -268,8 +268,22 @@ class Engine:
             self._expire(arrival)
         metrics = self.metrics
         bodies = known.learn(self.learner.arrays(known.slots.shape[0]), metrics.arrays(), metrics.scalars(), arrival)
-        self.counters.train += len(bodies)
+        self._hold_known(known, arrival)
         return bodies
+
+    def _hold_known(self, known: Known, arrival: float) -> None:
+        """After a block of known names (quick.py): count its events, and hold its scoring
+        requests with ids in order, as `one` holds them (their slots, values, weight 1, the logit
+        published and the arrival)."""
+        requests = known.requests()
+        self.counters.train += known.count - len(requests)
+        if not requests:
+            return
+        self.counters.score += len(requests)
+        slots = tuple(known.slots.tolist())
+        for r, ident in requests:
+            if ident is not None:
+                self._hold(ident, (slots, known.row_values(r), 1.0, known.logit(r), arrival))
 
     def journal_and_train_known(
         self, arrival: float, known: Known, raws: list[bytes], fd: int
@@ -284,7 +298,8 @@ class Engine:
         metrics = self.metrics
         arrays = self.learner.arrays(known.slots.shape[0])
         found, bodies = known.journal_and_learn(raws, fd, arrival, arrays, metrics.arrays(), metrics.scalars())
-        self.counters.train += len(bodies)
+        if found == READ:
+            self._hold_known(known, arrival)
         return found, bodies
 
     def take_in(self, intake: Intake, known: Known, fd: int, wait_ms: int) -> int:
@@ -298,7 +313,7 @@ class Engine:
         arrays = self.learner.arrays(known.slots.shape[0])
         found = intake.serve(wait_ms, known, fd, arrays, metrics.arrays(), metrics.scalars(), oldest, self.pending_ttl)
         if found == READ:
-            self.counters.train += intake.count
+            self._hold_known(known, intake.arrival)
         return found
 
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:

@@ -104,10 +104,13 @@ def _same_keys(b, p, q, k):  # type: ignore[no-untyped-def]
 
 
 @njit(cache=True, error_model="numpy", inline="always")
-def _event_at(b, pos, n, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items):  # type: ignore[no-untyped-def]
+def _event_at(  # type: ignore[no-untyped-def]
+    b, pos, n, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items, requests=False
+):  # fmt: skip
     """Read the event map at pos (the keys x and y, and id or not), as event e, reading no byte at
     or past n; ids[e] gets the position of its id's msgpack bytes (an int, or a str of at most
-    max_str bytes), -1 without one. Returns (read, position after it, values used)."""
+    max_str bytes), -1 without one. With `requests`, a map of x and id without y is read too, as a
+    scoring request (ys[e] NaN). Returns (read, position after it, values used)."""
     entries, pos = _map_len(b, pos, n)
     if entries != 2 and entries != 3:
         return False, pos, used
@@ -161,6 +164,9 @@ def _event_at(b, pos, n, e, used, values, ys, ids, nkeys, keypos, scratch, as_fl
             pos += 1
         else:
             return False, pos, used
+    if requests and seen_x and not seen_y and entries == 2:  # (x and id: a request)
+        ys[e] = np.nan
+        return True, pos, used
     return seen_x and seen_y, pos, used
 
 
@@ -267,20 +273,23 @@ READ, NOT_SUCH, OTHER_NAMES, STR_ID = 0, -1, -2, -3  # what `_parse_run` found
 
 
 @njit(cache=True, error_model="numpy")
-def _parse_run(b, starts, key, ints_only, values, ys, ids, nkeys, keypos, max_str, max_items):  # type: ignore[no-untyped-def]
+def _parse_run(  # type: ignore[no-untyped-def]
+    b, starts, key, ints_only, values, ys, ids, nkeys, keypos, max_str, max_items, requests=False
+):  # fmt: skip
     """`_parse_each` for a block that must be one run: read messages end to end in b (message e
     from starts[e] to starts[e + 1]) into values, ys and ids (where each id's msgpack bytes begin,
-    -1 without one). READ when every message is one numeric training event with the names of the
-    first in the same order; and, when `key` is not empty, those names are `key` (their key bytes,
-    as `_key_bytes` copies them), and with `ints_only` every id is an integer. Otherwise NOT_SUCH,
-    OTHER_NAMES (not the names of `key`) or STR_ID."""
+    -1 without one). READ when every message is one numeric training event (with `requests`, or
+    a scoring request with an id: y NaN) with the names of the first in the same order; and, when
+    `key` is not empty, those names are `key` (their key bytes, as `_key_bytes` copies them), and
+    with `ints_only` every id is an integer. Otherwise NOT_SUCH, OTHER_NAMES (not the names of
+    `key`) or STR_ID."""
     scratch = np.zeros(1, dtype=np.uint64)
     as_float = scratch.view(np.float64)
     used = 0
     for e in range(starts.shape[0] - 1):
         start, end = starts[e], starts[e + 1]
         ok, pos, used = _event_at(
-            b, start, end, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items
+            b, start, end, e, used, values, ys, ids, nkeys, keypos, scratch, as_float, max_str, max_items, requests
         )
         if not ok or pos != end:
             return NOT_SUCH
@@ -546,10 +555,11 @@ class RunReader(EventArrays):
         return bytes(self._key[: _key_bytes(b, pos, k, self._key)])
 
     def read(
-        self, raws: list[bytes]
+        self, raws: list[bytes], requests: bool = False
     ) -> tuple[tuple[str, ...], np.ndarray, np.ndarray, tuple[object, ...] | None] | None:
         """(names, rows m x k, labels, ids or None) of the block, or None when it is anything else
-        (then `read_each` and the full path decide)."""
+        (then `read_each` and the full path decide). With `requests`, scoring requests with ids
+        are read too (their labels NaN)."""
         m = len(raws)
         fitted = self._fit(raws, sum(map(len, raws)) // 9 + 1)  # (a value takes 9 bytes)
         if fitted is None:
@@ -560,7 +570,7 @@ class RunReader(EventArrays):
         b = np.frombuffer(joined, dtype=np.uint8)
         found = _parse_run(
             b, starts, _ANY_NAMES, False, self._values, self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
-            MAX_ITEMS,
+            MAX_ITEMS, requests,
         )  # fmt: skip
         if found != READ:
             return None

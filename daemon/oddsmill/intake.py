@@ -2,7 +2,8 @@
 in one compiled call, calling ZeroMQ's C library directly.
 
 While the daemon's blocks are those `quick._journal_and_learn` takes (messages of one numeric
-training event each, of the names the block before had), the loop hands each wake-up to `_serve`:
+training event or scoring request each, of the names the block before had), the loop hands each
+wake-up to `_serve`:
 it waits for the ingest socket (zmq_poll, with the GIL released), takes the arrival time, receives
 what is waiting (the block `server._drain` takes: at most `most` messages, stopping once they hold
 `most_bytes`), and when the block is one of those, journals it, learns it and publishes its score
@@ -168,7 +169,7 @@ def _copy_out(msgs, used, sizes, dest):  # type: ignore[no-untyped-def]
 @njit(cache=True, error_model="numpy", nogil=True)
 def _serve(  # type: ignore[no-untyped-def]
     ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, key, values, ys, ids, nkeys, keypos, heads, iov,
-    done, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, out, ends
+    done, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, out, ends, z
 ):  # fmt: skip
     """One wake-up: wait up to ictl[I_WAIT_MS] for the ingest socket, take the time (fctl), receive
     the block, and when `_journal_and_learn` takes it (READ), publish its score bodies; otherwise
@@ -220,7 +221,7 @@ def _serve(  # type: ignore[no-untyped-def]
     starts[m] = at
     status = _journal_and_learn(
         b, starts[: m + 1], key, values, ys, ids, nkeys, keypos, ictl[I_FD], heads, iov, done, slots, prm, sc, sl, fl,
-        cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends,
+        cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends, z,
     )  # fmt: skip
     if status != READ:
         return status
@@ -285,10 +286,12 @@ class Intake:
             ictl, fctl, self.msgs, self.nfr, self.sizes, self.spare, self.pollitem, self.clock, self.b, self.starts,
             known.key, known._values, known._ys, known._ids, known._nkeys, known._keypos, known._heads, known._iov,
             known._done, known.slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms,
-            known._out, known._ends,
+            known._out, known._ends, known._z,
         )  # fmt: skip
-        if status == READ and ictl[I_SENT_ERR]:
-            raise zmq.ZMQError(_lib.zmq_errno() if _lib is not None else 0)
+        if status == READ:
+            known.took(self.b, int(ictl[I_M]))
+            if ictl[I_SENT_ERR]:
+                raise zmq.ZMQError(_lib.zmq_errno() if _lib is not None else 0)
         return status
 
     @property

@@ -1,6 +1,7 @@
 """The daemon's commonest block under load, in one compiled call: messages of one numeric training
-event each, every one with the set of names the block before had (in the same order), with an
-integer id or none.
+event each, or one scoring request with an id, every one with the set of names the block before
+had (in the same order), with an integer id or none. The requests are scored, not learned, and the
+engine holds them after the call (`Engine._hold_known`, as `Engine.one` holds them).
 
 `fastpath._parse_run` reads the block and checks it against the names remembered; nothing is
 changed until the block is known to be such. `_write_records` then appends its journal records to
@@ -30,6 +31,7 @@ import math
 import os
 from typing import Any
 
+import msgpack
 import numpy as np
 import zlib_ng.zlib_ng
 from llvmlite import binding as llvm
@@ -180,37 +182,64 @@ def _pack_score(out, p, has_id, ident, big_id, z, prob, step, ts):  # type: igno
 @njit(cache=True, error_model="numpy")
 def _learn_known(  # type: ignore[no-untyped-def]
     b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
-    out, ends
+    out, ends, z
 ):  # fmt: skip
-    """Learn the m events `read` read (rows of values at `slots`, labels ys) as
-    kernel.learn_rows does, record them in the metrics as ProgressiveMetrics.update does (ms: its
-    sum, count, head, filled, stride and points, updated in place), and pack each one's score body
-    into out (body r ends at ends[r]; its id from b at ids[r])."""
+    """Learn the m events `read` read (rows of values at `slots`, labels ys; a scoring request's
+    label NaN: scored, not learned) as kernel.learn_rows does, record the training events in the
+    metrics as ProgressiveMetrics.update does (ms: its sum, count, head, filled, stride and
+    points, updated in place), and pack each one's score body into out (body r ends at ends[r];
+    its id from b at ids[r]; its step the learner's before it, as `Engine.one` publishes it). z
+    gets each event's logit (for the requests the caller holds)."""
     k = slots.shape[0]
-    step0 = np.int64(sc[K.S_T])
+    step = np.int64(sc[K.S_T])
     rows = values[: m * k].reshape((m, k))
-    y = ys[:m]
-    z = np.empty(m)
+    op = np.full(m, K.OP_TRAIN, dtype=np.int8)
+    y = ys[:m].copy()
+    trained = 0
+    for r in range(m):
+        if math.isnan(y[r]):
+            op[r] = K.OP_SCORE
+            y[r] = 0.0
+        else:
+            trained += 1
     dx = np.zeros(max(1, int(prm[K.P_MAX_CENTRED])))
     xs = np.empty(int(prm[K.P_MAX_CENTRED]) + k + 1)
     ada = prm[K.P_SCHED] == K.SCH_ADAGRAD
-    K._shared_rows(
-        prm, sc, sl, fl, dt, cl, wq, slots, rows, np.full(m, K.OP_TRAIN, dtype=np.int8), y, np.ones(m), z, dx, xs, ada
-    )
-    ps = np.empty(m)  # each score's p, taken with its loss from the same exp
-    total, count, head, filled, stride, points = _record(
-        z, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
-        int(ms[4]), int(ms[5]), ps,
-    )  # fmt: skip
-    ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
+    K._shared_rows(prm, sc, sl, fl, dt, cl, wq, slots, rows, op, y, np.ones(m), z, dx, xs, ada)
+    ps = np.empty(m)  # each score's p, taken with its loss from the same exp (a request's: _p)
+    if trained == m:
+        zt, yt, pt = z[:m], y, ps
+    else:
+        zt, yt, pt = np.empty(trained), np.empty(trained), np.empty(trained)
+        t = 0
+        for r in range(m):
+            if op[r] == K.OP_TRAIN:
+                zt[t], yt[t] = z[r], y[r]
+                t += 1
+    if trained > 0:
+        total, count, head, filled, stride, points = _record(
+            zt, yt, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]),
+            int(ms[4]), int(ms[5]), pt,
+        )  # fmt: skip
+        ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
+    if trained != m:
+        t = 0
+        for r in range(m):
+            if op[r] == K.OP_TRAIN:
+                ps[r] = pt[t]
+                t += 1
+            else:
+                ps[r] = _p(z[r])
     p = 0
     for r in range(m):
         if ids[r] < 0:
-            p = _pack_score(out, p, False, 0, np.uint64(0), z[r], ps[r], step0 + r, arrival)
+            p = _pack_score(out, p, False, 0, np.uint64(0), z[r], ps[r], step, arrival)
         else:
             fits, ident, bits = _read_int(b, ids[r])
-            p = _pack_score(out, p, True, ident, np.uint64(0) if fits else bits, z[r], ps[r], step0 + r, arrival)
+            p = _pack_score(out, p, True, ident, np.uint64(0) if fits else bits, z[r], ps[r], step, arrival)
         ends[r] = p
+        if op[r] == K.OP_TRAIN:
+            step += 1
 
 
 @njit(cache=True, error_model="numpy")
@@ -270,7 +299,7 @@ def _write_records(b, starts, m, arrival, fd, heads, iov, done):  # type: ignore
 @njit(cache=True, error_model="numpy")
 def _journal_and_learn(  # type: ignore[no-untyped-def]
     b, starts, key, values, ys, ids, nkeys, keypos, fd, heads, iov, done, slots, prm, sc, sl, fl, cl, wq, dt, rz,
-    ry, rll, chunks, dirty, history, ms, arrival, out, ends
+    ry, rll, chunks, dirty, history, ms, arrival, out, ends, z
 ):  # fmt: skip
     """`_parse_run` (with the key, integer ids only), then, for a block it READ, the journal's
     records (`_write_records`), then `_learn_known`: a block of the quick path in one call. What
@@ -278,7 +307,7 @@ def _journal_and_learn(  # type: ignore[no-untyped-def]
     learned, when the write failed (done says how far it got)."""
     m = starts.shape[0] - 1
     k = slots.shape[0]
-    status = _parse_run(b, starts, key, True, values[: m * k], ys, ids, nkeys, keypos, MAX_STR, MAX_ITEMS)
+    status = _parse_run(b, starts, key, True, values[: m * k], ys, ids, nkeys, keypos, MAX_STR, MAX_ITEMS, True)
     if status != READ:
         return status
     _write_records(b, starts, m, arrival, fd, heads, iov, done)
@@ -286,7 +315,7 @@ def _journal_and_learn(  # type: ignore[no-untyped-def]
         return WRITE_FAILED
     _learn_known(
         b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
-        out, ends,
+        out, ends, z,
     )  # fmt: skip
     return READ
 
@@ -307,8 +336,10 @@ class Known(EventArrays):
         self._heads = np.empty(HEAD_BYTES, dtype=np.uint8)
         self._iov = np.empty(0, dtype=np.int64)
         self._done = np.zeros(2, dtype=np.int64)
+        self._z = np.empty(0)
 
     def _grown(self, messages: int) -> None:
+        self._z = np.empty(messages)
         self._ends = np.empty(messages, dtype=np.int64)
         self._out = np.empty(messages * SCORE_BYTES, dtype=np.uint8)
         self._heads = np.empty(HEAD_BYTES + 8 * messages, dtype=np.uint8)
@@ -333,7 +364,7 @@ class Known(EventArrays):
         # (values has room for m x k: an event with more features than the key's fails the read)
         status: int = _parse_run(
             b, starts, self.key, True, self._values[: m * k], self._ys, self._ids, self._nkeys, self._keypos, MAX_STR,
-            MAX_ITEMS,
+            MAX_ITEMS, True,
         )  # fmt: skip
         self._b, self._m = b, m
         return status
@@ -365,11 +396,11 @@ class Known(EventArrays):
         status: int = _journal_and_learn(
             b, starts, self.key, self._values, self._ys, self._ids, self._nkeys, self._keypos, fd, self._heads,
             self._iov, done, self.slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
-            self._out, self._ends,
+            self._out, self._ends, self._z,
         )  # fmt: skip
         if status != READ:
             return status, []
-        self._m = m
+        self._b, self._m = b, m
         return READ, self._bodies()
 
     @property
@@ -393,9 +424,48 @@ class Known(EventArrays):
         rz, ry, rll, chunks, dirty, history = metrics
         _learn_known(
             self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq, dt,
-            rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends,
+            rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends, self._z,
         )  # fmt: skip
         return self._bodies()
+
+    def requests(self, b: np.ndarray | None = None) -> list[tuple[int, object]]:
+        """The scoring requests of the block last learned (b: the bodies it was read from, when
+        not `read`'s or `journal_and_learn`'s), in order: (row, id), the id None for a request
+        without one (scored, not held). `row_values` and `logit` give the rest."""
+        m = self._m
+        ys = self._ys[:m]
+        rows = np.flatnonzero(np.isnan(ys)).tolist() if math.isnan(float(ys.sum())) else []
+        if not rows:
+            return []
+        data = self._b if b is None else b
+        out: list[tuple[int, object]] = []
+        for r in rows:
+            at = int(self._ids[r])
+            if at < 0:
+                out.append((r, None))
+                continue
+            c = int(data[at])  # an integer id (the reading took no other): its length from its first byte
+            size = 1 if c <= 0x7F or c >= 0xE0 else 1 + (1 << ((c - 0xCC) & 3))
+            out.append((r, msgpack.unpackb(data[at : at + size].tobytes())))
+        return out
+
+    def took(self, b: np.ndarray, m: int) -> None:
+        """A block of m events read from b and learned in another compiled call (intake.py)."""
+        self._b, self._m = b, m
+
+    def row_values(self, r: int) -> bytes:
+        """Event r's values, as the bytes of native doubles (as `engine.pending_entry` keeps them)."""
+        k = self.slots.shape[0]
+        return self._values[r * k : (r + 1) * k].tobytes()
+
+    def logit(self, r: int) -> float:
+        """Event r's published logit."""
+        return float(self._z[r])
+
+    @property
+    def count(self) -> int:
+        """The events of the block last learned."""
+        return self._m
 
     def _bodies(self) -> list[bytes]:
         """The score bodies the last block's learning packed, in order."""
