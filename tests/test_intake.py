@@ -306,3 +306,21 @@ def test_sigterm_while_a_wake_up_waits_in_one_call_checkpoints_and_exits(tmp_pat
     theirs = replayed.learner.state_dict()
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes() and replayed.learner.step == 60
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
+
+
+def test_compiled_functions_are_cached_under_the_stamp_of_all_the_sources() -> None:
+    """numba keys a cached function by its own file's text; `_serve` holds quick.py's code and was
+    once loaded stale after quick.py changed. Every compiled function of the package is cached
+    under the hash of all its sources (oddsmill.PACKAGE_STAMP), so a change to any compiles all."""
+    import hashlib
+    from pathlib import Path
+
+    import oddsmill
+    from oddsmill import columnar, kernel, quick
+
+    sources = sorted(Path(oddsmill.__file__).parent.glob("*.py"))
+    want = hashlib.sha256(b"".join(p.name.encode() + p.read_bytes() for p in sources)).hexdigest()
+    assert oddsmill.PACKAGE_STAMP == want and len(sources) > 20
+    for f in (intake._serve, quick._journal_and_learn, kernel.learn_block, columnar._pack_body):
+        locator = f._cache._impl.locator  # (numba's: where and under what a function is cached)
+        assert locator.get_source_stamp() == want, f

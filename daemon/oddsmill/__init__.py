@@ -7,4 +7,44 @@ method; storage, the replay engine and the command line sit around them.
 
 from __future__ import annotations
 
+import hashlib
+from pathlib import Path
+from typing import Any
+
 __version__ = "0.1.0"
+
+_HERE = Path(__file__).resolve().parent
+# numba keys each cached function by the text of its own file only, so a function compiled with
+# another module's code in it (intake._serve with quick._journal_and_learn, quick's with the
+# kernel's) would be loaded stale after that other module changed: it happened here, in
+# development, and an upgrade that leaves the old __pycache__ behind would do it too. The
+# package's functions are cached under one stamp, the hash of all its sources: any change compiles
+# them all again, once.
+PACKAGE_STAMP = hashlib.sha256(
+    b"".join(p.name.encode() + p.read_bytes() for p in sorted(_HERE.glob("*.py")))
+).hexdigest()
+
+
+def _stamp_the_cache() -> None:
+    from numba.core import caching
+
+    def ours(base: Any) -> Any:
+        class PackageLocator(base):  # type: ignore[misc]
+            @classmethod
+            def from_function(cls, py_func: Any, py_file: str) -> Any:
+                if Path(py_file).resolve().parent != _HERE:
+                    return None
+                return super().from_function(py_func, py_file)
+
+            def get_source_stamp(self) -> str:
+                return PACKAGE_STAMP
+
+        return PackageLocator
+
+    classes = caching.CacheImpl._locator_classes
+    if not any(getattr(c, "__qualname__", "").endswith("PackageLocator") for c in classes):
+        kinds = (caching.UserProvidedCacheLocator, caching.InTreeCacheLocator, caching.UserWideCacheLocator)
+        classes[:0] = [ours(kind) for kind in kinds]  # (NUMBA_CACHE_DIR's, then __pycache__, then the user's)
+
+
+_stamp_the_cache()

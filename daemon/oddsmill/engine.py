@@ -275,13 +275,13 @@ class Engine:
         """After a block of known names (quick.py): count its events, and hold its scoring
         requests with ids in order, as `one` holds them (their slots, values, weight 1, the logit
         published and the arrival)."""
-        requests = known.requests()
-        self.counters.train += known.count - len(requests)
-        if not requests:
+        n = known.request_count
+        self.counters.train += known.count - n
+        if not n:
             return
-        self.counters.score += len(requests)
-        slots = tuple(known.slots.tolist())
-        for r, ident in requests:
+        self.counters.score += n
+        slots = known.slot_tuple
+        for r, ident in known.requests():
             if ident is not None:
                 self._hold(ident, (slots, known.row_values(r), 1.0, known.logit(r), arrival))
 

@@ -189,7 +189,7 @@ def _learn_known(  # type: ignore[no-untyped-def]
     metrics as ProgressiveMetrics.update does (ms: its sum, count, head, filled, stride and
     points, updated in place), and pack each one's score body into out (body r ends at ends[r];
     its id from b at ids[r]; its step the learner's before it, as `Engine.one` publishes it). z
-    gets each event's logit (for the requests the caller holds)."""
+    gets each event's logit (for the requests the caller holds). Returns how many were requests."""
     k = slots.shape[0]
     step = np.int64(sc[K.S_T])
     rows = values[: m * k].reshape((m, k))
@@ -240,6 +240,7 @@ def _learn_known(  # type: ignore[no-untyped-def]
         ends[r] = p
         if op[r] == K.OP_TRAIN:
             step += 1
+    return m - trained
 
 
 @njit(cache=True, error_model="numpy")
@@ -304,7 +305,8 @@ def _journal_and_learn(  # type: ignore[no-untyped-def]
     """`_parse_run` (with the key, integer ids only), then, for a block it READ, the journal's
     records (`_write_records`), then `_learn_known`: a block of the quick path in one call. What
     `_parse_run` found when it was not READ, with nothing written; WRITE_FAILED, with nothing
-    learned, when the write failed (done says how far it got)."""
+    learned, when the write failed (done says how far it got); after READ, done[2] says how many
+    of the block were scoring requests."""
     m = starts.shape[0] - 1
     k = slots.shape[0]
     status = _parse_run(b, starts, key, True, values[: m * k], ys, ids, nkeys, keypos, MAX_STR, MAX_ITEMS, True)
@@ -313,7 +315,7 @@ def _journal_and_learn(  # type: ignore[no-untyped-def]
     _write_records(b, starts, m, arrival, fd, heads, iov, done)
     if done[1] != 0:
         return WRITE_FAILED
-    _learn_known(
+    done[2] = _learn_known(
         b, m, values, ys, ids, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival,
         out, ends, z,
     )  # fmt: skip
@@ -335,8 +337,10 @@ class Known(EventArrays):
         self._m = 0
         self._heads = np.empty(HEAD_BYTES, dtype=np.uint8)
         self._iov = np.empty(0, dtype=np.int64)
-        self._done = np.zeros(2, dtype=np.int64)
+        self._done = np.zeros(3, dtype=np.int64)  # bytes written, errno, requests of the block
         self._z = np.empty(0)
+        self._requests = 0  # of the block last learned
+        self._slot_tuple: tuple[int, ...] = ()
 
     def _grown(self, messages: int) -> None:
         self._z = np.empty(messages)
@@ -350,6 +354,7 @@ class Known(EventArrays):
         self.vocab = vocab
         self.key = np.frombuffer(key, dtype=np.uint8)
         self.slots = np.array(slots, dtype=np.int64)
+        self._slot_tuple = tuple(slots)
 
     def read(self, raws: list[bytes]) -> int:
         """`fastpath._parse_run` over the messages (READ, NOT_SUCH, OTHER_NAMES or STR_ID); after READ,
@@ -400,7 +405,7 @@ class Known(EventArrays):
         )  # fmt: skip
         if status != READ:
             return status, []
-        self._b, self._m = b, m
+        self._b, self._m, self._requests = b, m, int(done[2])
         return READ, self._bodies()
 
     @property
@@ -422,7 +427,7 @@ class Known(EventArrays):
         m = self._m
         prm, sc, sl, fl, cl, wq, dt = arrays
         rz, ry, rll, chunks, dirty, history = metrics
-        _learn_known(
+        self._requests = _learn_known(
             self._b, m, self._values, self._ys, self._ids, self.slots, prm, sc, sl, fl, cl, wq, dt,
             rz, ry, rll, chunks, dirty, history, ms, arrival, self._out, self._ends, self._z,
         )  # fmt: skip
@@ -432,11 +437,10 @@ class Known(EventArrays):
         """The scoring requests of the block last learned (b: the bodies it was read from, when
         not `read`'s or `journal_and_learn`'s), in order: (row, id), the id None for a request
         without one (scored, not held). `row_values` and `logit` give the rest."""
-        m = self._m
-        ys = self._ys[:m]
-        rows = np.flatnonzero(np.isnan(ys)).tolist() if math.isnan(float(ys.sum())) else []
-        if not rows:
+        if not self._requests:
             return []
+        m = self._m
+        rows = np.flatnonzero(np.isnan(self._ys[:m])).tolist()
         data = self._b if b is None else b
         out: list[tuple[int, object]] = []
         for r in rows:
@@ -451,7 +455,17 @@ class Known(EventArrays):
 
     def took(self, b: np.ndarray, m: int) -> None:
         """A block of m events read from b and learned in another compiled call (intake.py)."""
-        self._b, self._m = b, m
+        self._b, self._m, self._requests = b, m, int(self._done[2])
+
+    @property
+    def slot_tuple(self) -> tuple[int, ...]:
+        """The slots, as the tuple a held request keeps."""
+        return self._slot_tuple
+
+    @property
+    def request_count(self) -> int:
+        """The scoring requests of the block last learned."""
+        return self._requests
 
     def row_values(self, r: int) -> bytes:
         """Event r's values, as the bytes of native doubles (as `engine.pending_entry` keeps them)."""
