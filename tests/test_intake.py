@@ -278,12 +278,7 @@ def test_sigterm_while_a_wake_up_waits_in_one_call_checkpoints_and_exits(tmp_pat
     checkpoint holds what the journal replays to. (Sixty lone training messages of known names
     first: the wake-ups are taken in one call after a few, as test_a_request_past_its_time_to_live
     shows in process.)"""
-    import signal
-
-    from oddsmill.storage import load_newest
-
-    from tests.test_server import free_port, start
-    from tests.tools import full_rows
+    from tests.test_server import checkpoint_and_replay, free_port, start, terminate
 
     ingest, scores = f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}"
     ctx: zmq.Context[Any] = zmq.Context()
@@ -295,14 +290,9 @@ def test_sigterm_while_a_wake_up_waits_in_one_call_checkpoints_and_exits(tmp_pat
         assert client.receive(1)[0][1]["id"] == i
     client.close()
     time.sleep(0.3)  # (idle: the loop is in its wait)
-    t0 = time.monotonic()
-    proc.send_signal(signal.SIGTERM)
-    assert proc.wait(10) == 0
-    assert time.monotonic() - t0 < 5
+    terminate(proc)
     ctx.term()
-    state, _ = load_newest(tmp_path)  # type: ignore[misc]
-    mine = full_rows(state["engine"]["learner"])
-    replayed, _ = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
+    _, mine, replayed = checkpoint_and_replay(tmp_path)
     theirs = replayed.learner.state_dict()
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes() and replayed.learner.step == 60
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()

@@ -295,6 +295,22 @@ def test_a_state_directory_that_cannot_be_made_is_a_clear_error(tmp_path: Path) 
     assert done.stderr == f"oddsmill: cannot use the state directory {tmp_path / 'a-file' / 's'}: Not a directory\n"
 
 
+def terminate(proc: subprocess.Popen[str]) -> None:
+    """SIGTERM: the daemon checkpoints and exits 0 within seconds."""
+    t0 = time.monotonic()
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(10) == 0
+    assert time.monotonic() - t0 < 5
+
+
+def checkpoint_and_replay(state_dir: Path) -> tuple[dict[str, Any], dict[str, Any], Engine]:
+    """The newest checkpoint, its learner's full rows, and the engine replaying the journal gives
+    (the daemons of these tests learn with scale_warmup 200)."""
+    state, _ = load_newest(state_dir)  # type: ignore[misc]
+    engine, _ = replay_journal(state_dir, LearnerSettings(scale_warmup=200))
+    return state, full_rows(state["engine"]["learner"]), engine
+
+
 def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Path) -> None:
     ingest, scores = f"tcp://127.0.0.1:{free_port()}", f"tcp://127.0.0.1:{free_port()}"
     ctx: zmq.Context[Any] = zmq.Context()
@@ -311,14 +327,9 @@ def test_sigterm_checkpoints_and_restarts_after_kill_resume_exactly(tmp_path: Pa
             proc.kill()  # kill -9: no checkpoint; the journal has it all
             assert proc.wait(10) == -signal.SIGKILL
         else:
-            t0 = time.monotonic()
-            proc.send_signal(signal.SIGTERM)
-            assert proc.wait(10) == 0
-            assert time.monotonic() - t0 < 5
+            terminate(proc)
     ctx.term()
-    state, _ = load_newest(tmp_path)  # type: ignore[misc]
-    engine, _ = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
-    mine = full_rows(state["engine"]["learner"])
+    state, mine, engine = checkpoint_and_replay(tmp_path)
     theirs = engine.learner.state_dict()
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes()
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
