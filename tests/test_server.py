@@ -187,7 +187,8 @@ def start(state: Path, ingest: str, scores: str, *extra: str) -> subprocess.Pope
                 serving.set()
 
     threading.Thread(target=read, args=(proc.stderr,), daemon=True).start()
-    deadline = time.monotonic() + 60
+    # (a first start after any edit of the package compiles all of it: about a minute here)
+    deadline = time.monotonic() + 240
     while not serving.wait(0.1):
         if proc.poll() is not None:
             raise AssertionError(f"the daemon exited with {proc.returncode}: {''.join(lines)}")

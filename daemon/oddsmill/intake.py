@@ -36,7 +36,7 @@ from numba.np.numpy_support import carray
 
 from .fastpath import NOT_SUCH, READ
 from .protocol import MAX_MESSAGE
-from .quick import WRITE_FAILED, Known, _journal_and_learn
+from .quick import WRITE_FAILED, Known, _journal_and_learn, pieces
 
 EMPTY = -20  # `_serve`: nothing came within the wait
 HANDED = -21  # `_serve`: a block the one call does not take (or too large to copy): handed back
@@ -316,12 +316,7 @@ class Intake:
 
     def bodies(self) -> list[bytes]:
         """The bodies of the last block, after READ (for the writer's records not yet on disk)."""
-        m = self.count
-        starts = self.starts[: m + 1].tolist()
-        data = self.b[: starts[m]].tobytes()
-        if m == 1:
-            return [data]
-        return [data[a:e] for a, e in zip(starts[:-1], starts[1:], strict=True)]
+        return pieces(self.b, self.starts[: self.count + 1].tolist())
 
     def handed(self) -> list[list[bytes]]:
         """The last block's messages as they came (frames past a message's second: empty), its
@@ -331,9 +326,7 @@ class Intake:
         dest = np.empty(int(sizes.sum()), dtype=np.uint8)
         _copy_out(self.msgs, used, sizes, dest)
         self.ictl[I_SLOTS] = 0
-        data = dest.tobytes()
-        bounds = [0, *np.cumsum(sizes).tolist()]
-        frames = [data[bounds[i] : bounds[i + 1]] for i in range(used)]
+        frames = pieces(dest, [0, *np.cumsum(sizes).tolist()]) if used else []
         out: list[list[bytes]] = []
         at = 0
         for n in self.nfr[:m].tolist():

@@ -11,10 +11,11 @@ columnar block (`kernel._shared_rows`, as `kernel.learn_rows` does), keeps the p
 (`progressive._record`, as `ProgressiveMetrics.update` does) and packs each score body (PROTOCOL 3)
 byte for byte as `msgpack.packb` packs the dict the full path builds. `_journal_and_learn` is the
 three in one call (the pending store's expiry, which the full path does first, done in Python just
-before it); with fsync = "block", or while the journal writer holds appended bytes not yet written, the
-server reads in one call, journals in Python and learns in a second (`Known.read`, `Known.learn`). The same arithmetic
-as `Server._quick` on the same block, so the same state and the same bytes (tests/test_lone.py
-holds every path to the full one), and no Python object an event but its score's bytes.
+before it); with fsync = "block", or while the journal writer holds appended bytes not yet
+written, the server reads in one call, journals in Python and learns in a second (`Known.read`,
+`Known.learn`). The same arithmetic as `Server._quick` on the same block, so the same state and
+the same bytes (tests/test_lone.py holds every path to the full one), and no Python object an
+event but its score's bytes.
 
 >>> import msgpack, numpy as np
 >>> body = np.zeros(80, dtype=np.uint8)
@@ -483,9 +484,12 @@ class Known(EventArrays):
 
     def _bodies(self) -> list[bytes]:
         """The score bodies the last block's learning packed, in order."""
-        m = self._m
-        if m == 1:
-            return [self._out[: int(self._ends[0])].tobytes()]
-        data = self._out[: int(self._ends[m - 1])].tobytes()
-        ends = self._ends[:m].tolist()
-        return [data[a:e] for a, e in zip([0, *ends[:-1]], ends, strict=True)]
+        return pieces(self._out, [0, *self._ends[: self._m].tolist()])
+
+
+def pieces(buffer: np.ndarray, bounds: list[int]) -> list[bytes]:
+    """The bytes of buffer between each bound and the next (one copy, then slices)."""
+    if len(bounds) == 2:  # (one piece: a lone message's block)
+        return [buffer[bounds[0] : bounds[1]].tobytes()]
+    data = buffer[: bounds[-1]].tobytes()
+    return [data[a:e] for a, e in zip(bounds[:-1], bounds[1:], strict=True)]

@@ -735,12 +735,18 @@ class Server:
             self.board.score_latency.observe(time.time() - arrival)
             return True
         messages = taking.handed()
-        if found == WRITE_FAILED:  # nothing learned: the full path holds the block
-            self._fail(OSError(known.errno, os.strerror(known.errno)))
-            self._block(messages, pub, arrival, [])
+        if found == WRITE_FAILED:
+            self._write_failed(messages, pub, arrival)
         else:
             self.handle(messages, pub, arrival)
         return True
+
+    def _write_failed(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> None:
+        """The one call's journal write failed (`Known.errno`): nothing of the block was learned;
+        the outage begins and the full path holds the block."""
+        code = self.known.errno
+        self._fail(OSError(code, os.strerror(code)))
+        self._block(messages, pub, arrival, [])
 
     def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float | None = None) -> None:
         """One block: journal, then score and learn, then publish, in arrival order. While the state
@@ -793,9 +799,8 @@ class Server:
                     self._answer(pub, bodies, arrival)
                     self.taking_in = True
                     return True
-                if found == WRITE_FAILED:  # nothing learned: the full path holds the block
-                    self._fail(OSError(known.errno, os.strerror(known.errno)))
-                    self._block(messages, pub, arrival, [])
+                if found == WRITE_FAILED:
+                    self._write_failed(messages, pub, arrival)
                     return True
             else:  # in two
                 found = known.read(raws)
