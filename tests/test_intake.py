@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import zmq
 from oddsmill import intake, storage
-from oddsmill.engine import ColumnScores, Engine, Score
+from oddsmill.engine import Engine
 from oddsmill.fastpath import NOT_SUCH, OTHER_NAMES, READ, STR_ID
 from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body
@@ -77,31 +77,25 @@ def stream(seed: int) -> list[tuple[list[bytes], str | None]]:
 
 
 def wake_ups(mp: pytest.MonkeyPatch) -> list[int]:
-    """What each wake-up in one call (`Engine.take_in`, `Engine.take_in_cols`) found, EMPTY
-    included, appended as it returns, while `mp` holds."""
+    """What each wake-up in one call (`Engine.take_in`) found, EMPTY included, appended as it
+    returns, while `mp` holds."""
     found: list[int] = []
+    take_in = Engine.take_in
 
-    def counting(take_in: Any) -> Any:
-        def counted(self: Engine, *a: Any) -> int:
-            found.append(take_in(self, *a))
-            return found[-1]
+    def counted(self: Engine, *a: Any) -> int:
+        found.append(take_in(self, *a))
+        return found[-1]
 
-        return counted
-
-    mp.setattr(Engine, "take_in", counting(Engine.take_in))
-    mp.setattr(Engine, "take_in_cols", counting(Engine.take_in_cols))
+    mp.setattr(Engine, "take_in", counted)
     return found
 
 
-def until_taken_in(client: Client, rng: np.random.Generator, found: list[int], cols: bool = False) -> int:
+def until_taken_in(client: Client, rng: np.random.Generator, found: list[int]) -> int:
     """Send training messages one at a time (each after the answer before) until a wake-up's one
     call has taken one (the names are known after a few, then `_quick` takes them, then the one
-    call; columnar ones with `cols`); how many were sent."""
+    call); how many were sent."""
     for i in range(40):
-        if cols:
-            client.push.send_multipart(columnar(rng, 3))
-        else:
-            client.send(training(rng, i))
+        client.send(training(rng, i))
         client.receive(1)
         if READ in found:
             return i + 1
@@ -114,7 +108,7 @@ def run(state: Path, taking: bool, messages: list[tuple[list[bytes], str | None]
     found: list[int] = []
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(intake, "AVAILABLE", taking)
-        take_in, take_in_cols = Engine.take_in, Engine.take_in_cols
+        take_in = Engine.take_in
 
         def counted(self: Engine, box: Any, *a: Any) -> int:
             status = take_in(self, box, *a)
@@ -122,14 +116,7 @@ def run(state: Path, taking: bool, messages: list[tuple[list[bytes], str | None]
                 found.append(status if status != READ else 100 + box.count)  # (READ: 100 + messages)
             return status
 
-        def counted_cols(self: Engine, box: Any, *a: Any) -> int:
-            status = take_in_cols(self, box, *a)
-            if status != intake.EMPTY:
-                found.append(status if status != READ else 1000 + box.count)  # (READ: 1000 + messages)
-            return status
-
         mp.setattr(Engine, "take_in", counted)
-        mp.setattr(Engine, "take_in_cols", counted_cols)
         running = RunningServer(loopback(state, block_max=5), LEARNER)
         client = Client(running.ctx, running.server.bound["ingest"], running.server.bound["scores"])
         answers: list[Any] = []
@@ -157,7 +144,7 @@ def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tm
     off, off_answers, not_found = run(tmp_path / "off", False, messages)
     assert not not_found
     # the one call took lone messages and blocks of up to block_max, and handed back the others
-    reads = [f - 100 for f in found if 100 < f < 1000]
+    reads = [f - 100 for f in found if f > 100]
     assert len(reads) >= 100 and max(reads) > 1 and max(reads) <= 5, found
     assert sum(f in (intake.HANDED, NOT_SUCH, OTHER_NAMES, STR_ID) for f in found) >= 10, found
 
@@ -176,80 +163,6 @@ def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tm
     assert replayed.state_dict()["pending"] == held
     live = [a["logit"] for t, a in on_answers if t == b"scores" and type(a["logit"]) is float]  # (not columnar)
     assert [s.logit for s in scores][-len(live) :] == live
-
-
-def columnar(rng: np.random.Generator, m: int, names: list[str] = NAMES, **extra: Any) -> list[bytes]:
-    """A plain columnar message of m labelled rows."""
-    body = {
-        "cols": names,
-        "rows": (rng.normal(size=(m, len(names))) * 3).tobytes(),
-        "y": bytes(rng.integers(0, 2, m).tolist()),
-    }
-    return [b"events", msgpack.packb({**body, **extra})]
-
-
-def cols_stream(seed: int) -> list[tuple[list[bytes], str | None]]:
-    """Columnar messages of 1 to 40 rows, in three parts: sent each after the answer before, every
-    seventh followed by one the one call does not take (numbered, other names, a bad value, a
-    row without a label, one event, an extra frame, ids); then a burst of 60 sent together
-    (blocks of up to block_max); then one at a time again."""
-    rng = np.random.default_rng(seed)
-    others: list[tuple[list[bytes], str | None]] = [
-        (columnar(rng, 5, src="depot-3", seq=1), "scores"),  # numbered
-        (columnar(rng, 4, NAMES[:7]), "scores"),  # other names
-        (columnar(rng, 3, NAMES + ["parcel_kg"]), "scores"),  # a new name
-        (
-            [b"events", msgpack.packb({"cols": NAMES, "rows": np.full((2, 20), np.nan).tobytes(), "y": b"\x01\x00"})],
-            "rejects",
-        ),
-        ([b"events", msgpack.packb({"cols": NAMES, "rows": np.ones((2, 20)).tobytes(), "y": b"\x01\xff"})], "scores"),
-        ([b"events", msgpack.packb(training(rng, "lone"))], "scores"),
-        (columnar(rng, 3) + [b"extra"], "rejects"),
-        (columnar(rng, 3, ids=[1, 2, 3]), "scores"),
-        (columnar(rng, 6, src="depot-3", seq=2), "scores"),
-    ]
-    out: list[tuple[list[bytes], str | None]] = []
-    for i in range(90):
-        out.append((columnar(rng, int(rng.integers(1, 41))), "scores"))
-        if i % 7 == 6:
-            out.append(others[(i // 7) % len(others)])
-    burst = [(columnar(rng, int(rng.integers(1, 41))), "burst") for _ in range(60)]
-    return out[:60] + burst + out[60:]
-
-
-def test_columnar_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tmp_path: Path) -> None:
-    """Plain columnar blocks of the names of the block before are taken in one compiled call
-    (`_serve_cols`): the same answers, state and journal as the usual path, which takes every
-    other block (handed back as it came)."""
-    messages = cols_stream(4)
-    on, on_answers, found = run(tmp_path / "on", True, messages)
-    off, off_answers, not_found = run(tmp_path / "off", False, messages)
-    assert not not_found
-    reads = [f - 1000 for f in found if f > 1000]
-    assert len(reads) >= 60 and max(reads) > 1 and max(reads) <= 5, found
-    assert found.count(intake.HANDED) >= 10, found
-
-    def without_ts(answers: list[Any]) -> list[Any]:
-        return [(t, {k: v for k, v in a.items() if k != "ts"}) for t, a in answers]
-
-    assert len(on_answers) > 150 and without_ts(on_answers) == without_ts(off_answers)
-    assert sum(t == b"rejects" for t, _ in on_answers) >= 2
-    same_state(on.engine, off.engine)
-    assert on.engine.counters.train > 2000
-    replayed = Engine(Learner(LEARNER))  # the journal replayed: the same state, and the same logits
-    logits: list[float] = []
-    for segment in list_journal(tmp_path / "on"):
-        for _, arrival, body in read_journal(segment):
-            for _, r in replayed.process([(arrival, item) for item in decode_body(body)]):
-                logits += (
-                    r.logits.tolist() if isinstance(r, ColumnScores) else [r.logit] if isinstance(r, Score) else []
-                )
-    same_state(replayed, on.engine)
-    live: list[float] = []
-    for t, a in on_answers:
-        if t == b"scores":
-            live += [a["logit"]] if type(a["logit"]) is float else np.frombuffer(a["logit"], "<f8").tolist()
-    assert len(live) > 2000 and logits[-len(live) :] == live  # (the client's probe came first)
 
 
 def test_a_request_past_its_time_to_live_is_dropped_before_the_block(tmp_path: Path) -> None:
@@ -282,13 +195,10 @@ def test_a_request_past_its_time_to_live_is_dropped_before_the_block(tmp_path: P
     same_state(replayed, engine)
 
 
-@pytest.mark.parametrize("cols", [False, True], ids=["events", "columnar"])
-def test_a_failed_journal_write_in_one_call_holds_the_block_until_writes_succeed(tmp_path: Path, cols: bool) -> None:
+def test_a_failed_journal_write_in_one_call_holds_the_block_until_writes_succeed(tmp_path: Path) -> None:
     """The one call's write fails (a descriptor whose writes all fail, ENOSPC): nothing of the block
     is learned, its score is still published (the model as it stands), the daemon holds it; when
-    writes succeed again the records not yet synced are written again from the bodies kept
-    (`Intake.bodies`), the held block is journaled and learned, and the journal replays to the
-    same state."""
+    writes succeed again it is journaled and learned, and the journal replays to the same state."""
     rng = np.random.default_rng(6)
     dev_full = os.open("/dev/full", os.O_WRONLY)
     real_fileno = storage.JournalWriter.fileno
@@ -298,30 +208,23 @@ def test_a_failed_journal_write_in_one_call_holds_the_block_until_writes_succeed
             running = RunningServer(loopback(tmp_path), LEARNER)
             server = running.server
             client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
-            sent = until_taken_in(client, rng, found, cols)
+            sent = until_taken_in(client, rng, found)
             step = server.engine.learner.step
-            assert server.unsaved  # (bodies kept by the one call, to be written again)
             mp.setattr(storage.JournalWriter, "fileno", lambda self: dev_full)
             calls = len(found)
             while len(found) == calls:  # (a wait that began before has ended: the next has that descriptor)
                 time.sleep(0.01)
-            if cols:
-                client.push.send_multipart(columnar(rng, 4))
-            else:
-                client.send(training(rng, sent))
+            client.send(training(rng, sent))
             ((topic, answer),) = client.receive(1)
-            assert topic == b"scores" and answer["step"] == step and (cols or answer["id"] == sent)
+            assert topic == b"scores" and answer["id"] == sent and answer["step"] == step
             assert intake.WRITE_FAILED in found and server.outage is not None
             assert server.engine.learner.step == step and len(server.held) == 1
             mp.setattr(storage.JournalWriter, "fileno", real_fileno)
             deadline = time.monotonic() + 10
             while server.outage is not None and time.monotonic() < deadline:  # (retried every second)
                 time.sleep(0.05)
-            assert server.outage is None and server.engine.learner.step == step + (4 if cols else 1)
-            if cols:
-                client.push.send_multipart(columnar(rng, 2))
-            else:
-                client.send(training(rng, sent + 1))
+            assert server.outage is None and server.engine.learner.step == step + 1
+            client.send(training(rng, sent + 1))
             client.receive(1)
             client.close()
             running.close()
@@ -411,3 +314,17 @@ def test_compiled_functions_are_cached_under_the_stamp_of_all_the_sources() -> N
     for f in (intake._serve, quick._journal_and_learn, kernel.learn_block, columnar._pack_body):
         locator = f._cache._impl.locator  # (numba's: where and under what a function is cached)
         assert locator.get_source_stamp() == want, f
+
+
+def test_pieces_cut_a_buffer_at_its_bounds_whole_or_piece_by_piece() -> None:
+    """`quick.pieces` (the bodies a one call kept, its score bodies): the bytes between each bound
+    and the next, as Python's slicing gives them, under JOIN_MOST bytes (one copy, then slices)
+    and past it (each piece copied on its own)."""
+    from oddsmill.quick import JOIN_MOST, pieces
+
+    rng = np.random.default_rng(11)
+    data = rng.integers(0, 256, 3 * JOIN_MOST, dtype=np.uint8)
+    raw = data.tobytes()
+    for total in (1000, JOIN_MOST // 2, 3 * JOIN_MOST):
+        bounds = sorted({0, total, *rng.integers(0, total, 9).tolist()})
+        assert pieces(data, bounds) == [raw[a:e] for a, e in zip(bounds[:-1], bounds[1:], strict=True)]

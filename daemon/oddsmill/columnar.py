@@ -40,27 +40,10 @@ from collections.abc import Mapping
 import numpy as np
 from numba import njit
 
-from . import kernel as K
 from .errors import ProtocolError
 from .fastpath import _map_len, _str
-from .progressive import _record
 from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, unpack
-from .quick import (
-    _ID,
-    _LOGIT,
-    _P,
-    _STEP,
-    _TS,
-    HEAD_BYTES,
-    WRITE_FAILED,
-    _p,
-    _put,
-    _put_be,
-    _put_float,
-    _put_int,
-    _write_messages,
-    bytes_at,
-)
+from .quick import _ID, _LOGIT, _P, _STEP, _TS, _p, _put, _put_be, _put_float, _put_int
 from .vocabulary import same_bytes
 
 READ, OTHER, NAMES = 0, 1, 2  # read; anything else (the full path decides); names other than the key's
@@ -391,102 +374,3 @@ def _pack_body(z, ps, step, ts, out):  # type: ignore[no-untyped-def]
     p = _put_int(out, p, step)
     p = _put(out, p, _TS)
     return _put_float(out, p, ts, scratch, as_float)
-
-
-@njit(cache=True, error_model="numpy")
-def _journal_and_learn_cols(  # type: ignore[no-untyped-def]
-    at, lengths, key, values, ys, counts, fd, heads, iov, done, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll,
-    chunks, dirty, history, ms, arrival, out, ends, z, ps
-):  # fmt: skip
-    """A block of plain columnar messages (message e: lengths[e] bytes at the address at[e], a
-    ZeroMQ message's, read where it is) whose names are all `key`'s (slots), none numbered, in
-    one call, as `Server._columnar` takes it: each read by `_read` (its rows into values, labels
-    into ys, its row count into counts), then the block's journal records
-    (`quick._write_messages`), then its rows learned as `kernel.learn_rows` learns them, the
-    metrics kept as `ProgressiveMetrics.update` keeps them, and each message's score body packed
-    as `score_body` packs it (into out, ending at ends[e]; z and ps get the rows' logits and p).
-    What `_read` found when it was not READ (NAMES, OTHER, or OTHER for a numbered message),
-    nothing written; WRITE_FAILED, nothing learned, when the write failed (done says how far it
-    got). After READ, done[2] holds the block's rows."""
-    m = at.shape[0]
-    k = slots.shape[0]
-    used = 0
-    rows = 0
-    for e in range(m):
-        status, n, cols_at, cols_end, src_at, src_end, seq = _read(
-            bytes_at(at[e], lengths[e]), key, k, values, used, ys, rows
-        )
-        if status != READ:
-            return status
-        if src_at >= 0 or seq >= 0:  # (the engine keeps the numbers: the usual path)
-            return OTHER
-        counts[e] = n
-        rows += n
-        used += n * k
-    _write_messages(at, lengths, m, arrival, fd, heads, iov, done)
-    if done[1] != 0:
-        return WRITE_FAILED
-    step = np.int64(sc[K.S_T])
-    y = ys[:rows]
-    zr = z[:rows]
-    op = np.full(rows, K.OP_TRAIN, dtype=np.int8)
-    K.learn_rows(prm, sc, sl, fl, cl, wq, dt, slots, values[: rows * k].reshape((rows, k)), op, y, zr)
-    pr = ps[:rows]
-    total, count, head, filled, stride, points = _record(
-        zr, y, rz, ry, rll, chunks, dirty, history, ms[0], int(ms[1]), int(ms[2]), int(ms[3]), int(ms[4]), int(ms[5]),
-        pr,
-    )  # fmt: skip
-    ms[0], ms[1], ms[2], ms[3], ms[4], ms[5] = total, count, head, filled, stride, points
-    p = 0
-    r = 0
-    for e in range(m):
-        n = counts[e]
-        p += _pack_body(zr[r : r + n], pr[r : r + n], step + r, arrival, out[p:])
-        ends[e] = p
-        r += n
-    done[2] = rows
-    return READ
-
-
-class ColumnKnown:
-    """The names of the last plain columnar block the usual path took whole (`Server._columnar`:
-    one run, none numbered), for the wake-ups in one call (intake.py): their cols bytes and slots
-    in one vocabulary, and the arrays a block of at most `most` messages and `most_bytes` bytes
-    is read, learned and answered in, kept from block to block."""
-
-    def __init__(self) -> None:
-        self.vocab: object = None
-        self.key = np.empty(0, dtype=np.uint8)
-        self.slots = np.empty(0, dtype=np.int64)
-        self.rows = 0  # of the block last learned
-        self._room = (0, 0)
-        self.done = np.zeros(3, dtype=np.int64)  # bytes written, errno, rows of the block
-
-    def remember(self, vocab: object, key: np.ndarray, slots: np.ndarray) -> None:
-        self.vocab = vocab
-        self.key = key.copy()
-        self.slots = slots.copy()
-
-    def room(self, most: int, most_bytes: int) -> None:
-        """Arrays for a block of at most `most` messages of `most_bytes` bytes in all (a value takes
-        8 bytes of a body, a row's label one more: values, labels, logits and p get most_bytes / 8)."""
-        if self._room == (most, most_bytes):
-            return
-        n = most_bytes // 8 + 1
-        self.values, self.ys, self.z, self.ps = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
-        self.counts = np.zeros(most, dtype=np.int64)
-        self.out = np.empty(most * 64 + 17 * n, dtype=np.uint8)
-        self.ends = np.zeros(most, dtype=np.int64)
-        self.heads = np.empty(HEAD_BYTES + 8 * most, dtype=np.uint8)
-        self.iov = np.empty(6 * most, dtype=np.int64)
-        self._room = (most, most_bytes)
-
-    @property
-    def written(self) -> int:
-        """The bytes of records the last call wrote."""
-        return int(self.done[0])
-
-    @property
-    def errno(self) -> int:
-        """After WRITE_FAILED: the errno of the write that failed."""
-        return int(self.done[1])

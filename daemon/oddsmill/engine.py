@@ -26,7 +26,6 @@ from .progressive import ProgressiveMetrics
 from .protocol import Columns, Event, Item
 
 if TYPE_CHECKING:
-    from .columnar import ColumnKnown
     from .intake import Intake
     from .quick import Known
 
@@ -315,21 +314,6 @@ class Engine:
         found = intake.serve(wait_ms, known, fd, arrays, metrics.arrays(), metrics.scalars(), oldest, self.pending_ttl)
         if found == READ:
             self._hold_known(known, intake.arrival)
-        return found
-
-    def take_in_cols(self, intake: Intake, known: ColumnKnown, fd: int, wait_ms: int) -> int:
-        """`take_in` for blocks of plain columnar messages of the names `known` holds
-        (`Intake.serve_cols`): journaled, learned as `train_rows` learns them, and answered, or
-        handed back. Expiry as `take_in`."""
-        pending = self.pending
-        oldest = next(iter(pending.values()))[E_CLOCK] if pending else math.inf
-        metrics = self.metrics
-        arrays = self.learner.arrays(known.slots.shape[0])
-        found = intake.serve_cols(
-            wait_ms, known, fd, arrays, metrics.arrays(), metrics.scalars(), oldest, self.pending_ttl
-        )
-        if found == READ:
-            self.counters.train += known.rows
         return found
 
     def prepare(self, items: list[tuple[float, Item]]) -> Plan:

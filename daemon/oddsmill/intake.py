@@ -33,7 +33,6 @@ import zmq
 from llvmlite import binding as llvm
 from numba import njit, types
 
-from .columnar import ColumnKnown, _journal_and_learn_cols
 from .fastpath import NOT_SUCH, READ
 from .protocol import MAX_MESSAGE
 from .quick import WRITE_FAILED, Known, _journal_and_learn, pieces
@@ -42,7 +41,6 @@ EMPTY = -20  # `_serve`: nothing came within the wait
 HANDED = -21  # `_serve`: a block the one call does not take (or too large to copy): handed back
 EXPIRY_DUE = -22  # `_serve`: a pending request's time-to-live ended: handed back, for the usual path
 MSG_BYTES = 64  # sizeof(zmq_msg_t)
-SPILL = 1 << 20  # a block's last message may take it past most_bytes by this much and still be taken
 _DONTWAIT, _SNDMORE, _POLLIN = 1, 2, 1
 _EINTR = errno.EINTR
 _TOPIC = np.frombuffer(b"scores", dtype=np.uint8)
@@ -167,16 +165,16 @@ def _copy_out(msgs, used, sizes, dest):  # type: ignore[no-untyped-def]
         _msg_close(a)
 
 
-@njit(cache=True, error_model="numpy")
-def _wake(ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, copy):  # type: ignore[no-untyped-def]
-    """A wake-up's start: wait up to ictl[I_WAIT_MS] for the ingest socket, take the time (fctl),
-    receive the block, and when each of its messages has two frames, return their count, with
-    each body's address in at and its length in sizes[2 e + 1]; with `copy`, and when they fit
-    b, the bodies copied there end to end (message e: b[starts[e]:starts[e + 1]]). Otherwise
-    EMPTY, HANDED (its frames left open for `Intake.handed`) or EXPIRY_DUE (when the oldest
-    pending request, fctl[F_OLDEST], is past its time-to-live at this arrival: the usual path
-    expires it first). Frames a wake-up before left open are let go of first."""
-    _close(msgs, ictl[I_SLOTS])
+@njit(cache=True, error_model="numpy", nogil=True)
+def _serve(  # type: ignore[no-untyped-def]
+    ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, key, values, ys, ids, nkeys, keypos, heads, iov,
+    done, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, out, ends, z
+):  # fmt: skip
+    """One wake-up: wait up to ictl[I_WAIT_MS] for the ingest socket, take the time (fctl), receive
+    the block, and when `_journal_and_learn` takes it (READ), publish its score bodies; otherwise
+    leave its frames open for `Intake.handed`. EMPTY, READ, WRITE_FAILED (nothing learned), HANDED
+    or EXPIRY_DUE (when the oldest pending request, fctl[F_OLDEST], is past its time-to-live at
+    this arrival: the usual path expires it first)."""
     ictl[I_M] = 0
     ictl[I_SLOTS] = 0
     ictl[I_POLL_ERR] = 0
@@ -203,35 +201,30 @@ def _wake(ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, c
     if ictl[I_SLOTS] != 2 * m:  # (a message of one frame)
         return HANDED
     total = 0
-    base = msgs.ctypes.data
     for e in range(m):
         n = sizes[2 * e + 1]
         if nfr[e] != 2 or n > MAX_MESSAGE:
             return HANDED
-        at[e] = _msg_data(base + MSG_BYTES * (2 * e + 1))
         total += n
-    if not copy:
-        return m
     if total > b.shape[0]:
         return HANDED
+    base = msgs.ctypes.data
     dest = b.ctypes.data
-    to = 0
-    for e in range(m):  # the bodies end to end (by the C library's memcpy: numba's loop copied a
-        starts[e] = to  # byte at a time, 0.4 ns a byte, where a columnar message has 80 KB)
+    at = 0
+    for e in range(m):  # the bodies end to end (by the C library's memcpy, where numba's loop
+        starts[e] = at  # copied a byte at a time)
         n = sizes[2 * e + 1]
-        _memcpy(dest + to, at[e], n)
-        to += n
-    starts[m] = to
-    return m
-
-
-@njit(cache=True, error_model="numpy")
-def _answer(ictl, msgs, m, out, ends, close):  # type: ignore[no-untyped-def]
-    """A block learned: let go of its frames (with `close`), and publish its m score bodies
-    (body e: out[ends[e - 1]:ends[e]]), counting the sends that failed in ictl[I_SENT_ERR]."""
-    if close:
-        _close(msgs, ictl[I_SLOTS])
-        ictl[I_SLOTS] = 0
+        _memcpy(dest + at, _msg_data(base + MSG_BYTES * (2 * e + 1)), n)
+        at += n
+    starts[m] = at
+    status = _journal_and_learn(
+        b, starts[: m + 1], key, values, ys, ids, nkeys, keypos, ictl[I_FD], heads, iov, done, slots, prm, sc, sl, fl,
+        cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, arrival, out, ends, z,
+    )  # fmt: skip
+    if status != READ:
+        return status
+    _close(msgs, ictl[I_SLOTS])
+    ictl[I_SLOTS] = 0
     sout = np.uintp(ictl[I_SOUT])
     topic = _TOPIC.ctypes.data
     data = out.ctypes.data
@@ -244,47 +237,6 @@ def _answer(ictl, msgs, m, out, ends, close):  # type: ignore[no-untyped-def]
             errors += 1
         p = ends[e]
     ictl[I_SENT_ERR] = errors
-
-
-@njit(cache=True, error_model="numpy", nogil=True)
-def _serve(  # type: ignore[no-untyped-def]
-    ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, key, values, ys, ids, nkeys, keypos, heads,
-    iov, done, slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, out, ends, z
-):  # fmt: skip
-    """One wake-up (`_wake`), and when `_journal_and_learn` takes its block (READ), its score
-    bodies published; otherwise its frames left open for `Intake.handed`. EMPTY, READ,
-    WRITE_FAILED (nothing learned), HANDED or EXPIRY_DUE."""
-    m = _wake(ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, True)
-    if m < 0:
-        return m
-    status = _journal_and_learn(
-        b, starts[: m + 1], key, values, ys, ids, nkeys, keypos, ictl[I_FD], heads, iov, done, slots, prm, sc, sl, fl,
-        cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, fctl[F_ARRIVAL], out, ends, z,
-    )  # fmt: skip
-    if status != READ:
-        return status
-    _answer(ictl, msgs, m, out, ends, True)
-    return READ
-
-
-@njit(cache=True, error_model="numpy", nogil=True)
-def _serve_cols(  # type: ignore[no-untyped-def]
-    ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, key, values, ys, counts, heads, iov, done,
-    slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, out, ends, z, ps
-):  # fmt: skip
-    """`_serve` for blocks of plain columnar messages of the names the block before had
-    (`columnar._journal_and_learn_cols`, as `Server._columnar` takes them)."""
-    m = _wake(ictl, fctl, msgs, nfr, sizes, spare, pollitem, clock, b, starts, at, False)
-    if m < 0:
-        return m
-    lengths = sizes[1 : 2 * m : 2]
-    status = _journal_and_learn_cols(
-        at[:m], lengths, key, values, ys, counts, ictl[I_FD], heads, iov, done, slots, prm, sc, sl, fl, cl, wq, dt, rz,
-        ry, rll, chunks, dirty, history, ms, fctl[F_ARRIVAL], out, ends, z, ps,
-    )  # fmt: skip
-    if status != READ:
-        return HANDED if status != WRITE_FAILED else status
-    _answer(ictl, msgs, m, out, ends, False)  # (the bodies are copied out, then let go of: `Intake.bodies`)
     return READ
 
 
@@ -303,10 +255,8 @@ class Intake:
         self.sizes = np.zeros(2 * most, dtype=np.int64)
         self.pollitem = np.zeros(2, dtype=np.int64)  # zmq_pollitem_t: socket, fd, events, revents
         self.clock = np.zeros(4, dtype=np.int64)  # two struct timespec: the wall clock's, the monotonic
-        # the bodies of a block (whose last message may cross most_bytes: by up to SPILL bytes here)
-        self.b = np.empty(max(most_bytes, 1 << 16) + SPILL, dtype=np.uint8)
+        self.b = np.empty(max(most_bytes, 1 << 16), dtype=np.uint8)  # the bodies a quick block may have
         self.starts = np.zeros(most + 1, dtype=np.int64)
-        self.at = np.zeros(most, dtype=np.uintp)  # where each body of the block is (ZeroMQ's)
         self.most = most
 
     def serve(
@@ -332,43 +282,12 @@ class Intake:
         rz, ry, rll, chunks, dirty, history = metrics
         status: int = _serve(
             ictl, fctl, self.msgs, self.nfr, self.sizes, self.spare, self.pollitem, self.clock, self.b, self.starts,
-            self.at, known.key, known._values, known._ys, known._ids, known._nkeys, known._keypos, known._heads,
-            known._iov, known._done, known.slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms,
+            known.key, known._values, known._ys, known._ids, known._nkeys, known._keypos, known._heads, known._iov,
+            known._done, known.slots, prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms,
             known._out, known._ends, known._z,
         )  # fmt: skip
         if status == READ:
             known.took(self.b, int(ictl[I_M]))
-            if ictl[I_SENT_ERR]:
-                raise zmq.ZMQError(_lib.zmq_errno() if _lib is not None else 0)
-        return status
-
-    def serve_cols(
-        self,
-        wait_ms: int,
-        known: ColumnKnown,
-        fd: int,
-        arrays: tuple[np.ndarray, ...],
-        metrics: tuple[np.ndarray, ...],
-        ms: np.ndarray,
-        oldest: float,
-        ttl: float,
-    ) -> int:
-        """`serve` for plain columnar blocks of the names `known` holds (`_serve_cols`). A block
-        it does not take is HANDED (or WRITE_FAILED), whatever `_read` found."""
-        known.room(self.most, self.b.shape[0])
-        ictl, fctl = self.ictl, self.fctl
-        ictl[I_WAIT_MS], ictl[I_FD] = wait_ms, fd
-        fctl[F_OLDEST], fctl[F_TTL] = oldest, ttl
-        prm, sc, sl, fl, cl, wq, dt = arrays
-        rz, ry, rll, chunks, dirty, history = metrics
-        status: int = _serve_cols(
-            ictl, fctl, self.msgs, self.nfr, self.sizes, self.spare, self.pollitem, self.clock, self.b, self.starts,
-            self.at, known.key, known.values, known.ys, known.counts, known.heads, known.iov, known.done, known.slots,
-            prm, sc, sl, fl, cl, wq, dt, rz, ry, rll, chunks, dirty, history, ms, known.out, known.ends, known.z,
-            known.ps,
-        )  # fmt: skip
-        if status == READ:
-            known.rows = int(known.done[2])
             if ictl[I_SENT_ERR]:
                 raise zmq.ZMQError(_lib.zmq_errno() if _lib is not None else 0)
         return status
@@ -394,16 +313,8 @@ class Intake:
         return int(self.ictl[I_POLL_ERR])
 
     def bodies(self) -> list[bytes]:
-        """The bodies of the last block, after READ (for the writer's records not yet on disk):
-        copied from b, or (after `serve_cols`, which reads them where they came) each from its
-        ZeroMQ message, which is then let go of."""
-        m, used = self.count, int(self.ictl[I_SLOTS])
-        if not used:
-            return pieces(self.b, self.starts[: m + 1].tolist())
-        out = list(map(ctypes.string_at, self.at[:m].tolist(), self.sizes[1 : 2 * m : 2].tolist()))
-        _close(self.msgs, used)
-        self.ictl[I_SLOTS] = 0
-        return out
+        """The bodies of the last block, after READ (for the writer's records not yet on disk)."""
+        return pieces(self.b, self.starts[: self.count + 1].tolist())
 
     def handed(self) -> list[list[bytes]]:
         """The last block's messages as they came (frames past a message's second: empty), its
@@ -431,7 +342,7 @@ class Intake:
 
 
 def warm_up() -> None:
-    """Load `_serve`, `_serve_cols`, `_copy_out` and `_close` from numba's cache (a wake-up on a socket nothing
+    """Load `_serve`, `_copy_out` and `_close` from numba's cache (a wake-up on a socket nothing
     is sent to, and a handed block of nothing)."""
     if not AVAILABLE:
         return
@@ -450,9 +361,6 @@ def warm_up() -> None:
             metrics = ProgressiveMetrics(window=2)
             intake.serve(0, known, -1, scratch.arrays(1), metrics.arrays(), metrics.scalars(), np.inf, 1.0)
             intake.handed()
-            cols = ColumnKnown()
-            cols.remember(None, np.frombuffer(b"\x91\xa4warm", dtype=np.uint8), np.zeros(1, dtype=np.int64))
-            intake.serve_cols(0, cols, -1, scratch.arrays(1), metrics.arrays(), metrics.scalars(), np.inf, 1.0)
             intake.close()
     finally:
         ctx.term()

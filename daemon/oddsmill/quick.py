@@ -37,7 +37,6 @@ import numpy as np
 import zlib_ng.zlib_ng
 from llvmlite import binding as llvm
 from numba import njit, types
-from numba.extending import intrinsic
 from numba.np.numpy_support import carray
 
 from . import kernel as K
@@ -245,58 +244,26 @@ def _learn_known(  # type: ignore[no-untyped-def]
     return m - trained
 
 
-_BYTE_POINTER: Any = types.CPointer(types.uint8)  # type: ignore[no-untyped-call]
-
-
-@intrinsic
-def _pointer(typingctx, address):  # type: ignore[no-untyped-def]
-    """The address (an integer) as a pointer to bytes, for `carray`."""
-
-    def codegen(context, builder, signature, args):  # type: ignore[no-untyped-def]
-        return builder.inttoptr(args[0], context.get_value_type(_BYTE_POINTER))
-
-    return _BYTE_POINTER(types.uintp), codegen
-
-
-@njit(cache=True, error_model="numpy", inline="always")
-def bytes_at(address, n):  # type: ignore[no-untyped-def]
-    """The n bytes at an address (memory the caller holds, such as a ZeroMQ message's), as an
-    array, not copied."""
-    return carray(_pointer(np.uintp(address)), n)  # type: ignore[call-arg]
-
-
 @njit(cache=True, error_model="numpy")
 def _write_records(b, starts, m, arrival, fd, heads, iov, done):  # type: ignore[no-untyped-def]
     """Append the journal records of m messages (message e: b[starts[e]:starts[e + 1]]) that
-    arrived at `arrival` to the file fd (`_write_messages`)."""
-    at = np.empty(m, dtype=np.uintp)
-    lengths = np.empty(m, dtype=np.int64)
-    data = np.uintp(b.ctypes.data)
-    for e in range(m):
-        at[e] = data + np.uintp(starts[e])
-        lengths[e] = starts[e + 1] - starts[e]
-    _write_messages(at, lengths, m, arrival, fd, heads, iov, done)
-
-
-@njit(cache=True, error_model="numpy")
-def _write_messages(at, lengths, m, arrival, fd, heads, iov, done):  # type: ignore[no-untyped-def]
-    """Append the journal records of m messages (message e: lengths[e] bytes at the address
-    at[e]) that arrived at `arrival` to the file fd, as `storage.JournalWriter.write_all` writes
-    them: record head (u32 LE payload length, u32 LE CRC-32), payload head ([arrival, as
-    msgpack), the body as it came; with writev, the bodies never copied. heads: scratch of
-    HEAD_BYTES + 8 m bytes, iov: of 6 m int64. done[0]: the bytes that reached the file; done[1]:
-    0, or the errno of the write that failed (a write is tried again after EINTR, as Python's
-    os.writev does)."""
+    arrived at `arrival` to the file fd, as `storage.JournalWriter.write_all` writes them: record
+    head (u32 LE payload length, u32 LE CRC-32), payload head ([arrival, as msgpack), the body as
+    it came; with writev, the bodies never copied. heads: scratch of HEAD_BYTES + 8 m bytes, iov:
+    of 6 m int64. done[0]: the bytes that reached the file; done[1]: 0, or the errno of the write
+    that failed (a write is tried again after EINTR, as Python's os.writev does)."""
     scratch = np.zeros(1, dtype=np.uint64)
     scratch.view(np.float64)[0] = arrival
     heads[0] = 0x92
     heads[1] = 0xCB
     _put_be(heads, 2, scratch[0], 8)
     base = heads.ctypes.data
+    data = b.ctypes.data
     crc_head = _crc32(np.uint32(0), base, np.uint32(10))
     for e in range(m):
-        n = lengths[e]
-        crc = _crc32(crc_head, at[e], np.uint32(n))
+        start = starts[e]
+        n = starts[e + 1] - start
+        crc = _crc32(crc_head, data + start, np.uint32(n))
         h = HEAD_BYTES + 8 * e
         length = np.uint64(10 + n)
         for i in range(4):
@@ -306,13 +273,13 @@ def _write_messages(at, lengths, m, arrival, fd, heads, iov, done):  # type: ign
         iov[6 * e + 1] = 8
         iov[6 * e + 2] = base
         iov[6 * e + 3] = 10
-        iov[6 * e + 4] = at[e]
+        iov[6 * e + 4] = data + start
         iov[6 * e + 5] = n
     pieces = 3 * m
-    done_pieces = 0
+    at = 0
     written = 0
-    while done_pieces < pieces:
-        r = _writev(np.intc(fd), iov.ctypes.data + 16 * done_pieces, np.intc(min(pieces - done_pieces, _IOV_MAX)))
+    while at < pieces:
+        r = _writev(np.intc(fd), iov.ctypes.data + 16 * at, np.intc(min(pieces - at, _IOV_MAX)))
         if r <= 0:
             code = carray(_errno_location(), 1)[0] if r < 0 else _EIO
             if code == _EINTR:
@@ -321,12 +288,12 @@ def _write_messages(at, lengths, m, arrival, fd, heads, iov, done):  # type: ign
             done[1] = code
             return
         written += r
-        while done_pieces < pieces and r >= iov[2 * done_pieces + 1]:  # the pieces written whole
-            r -= iov[2 * done_pieces + 1]
-            done_pieces += 1
+        while at < pieces and r >= iov[2 * at + 1]:  # the pieces written whole
+            r -= iov[2 * at + 1]
+            at += 1
         if r > 0:  # and the start of one (a short write)
-            iov[2 * done_pieces] += r
-            iov[2 * done_pieces + 1] -= r
+            iov[2 * at] += r
+            iov[2 * at + 1] -= r
     done[0] = written
     done[1] = 0
 
@@ -525,8 +492,8 @@ JOIN_MOST = 1 << 18  # bytes: `pieces` copies out at most this much at once, the
 
 def pieces(buffer: np.ndarray, bounds: list[int]) -> list[bytes]:
     """The bytes of buffer between each bound and the next: one copy, then slices; or, past
-    JOIN_MOST bytes, each piece copied on its own (a block of columnar messages copied whole was
-    4 MB that glibc maps fresh, and faults in a page at a time, on every block)."""
+    JOIN_MOST bytes, each piece copied on its own (a large block copied whole is an allocation
+    glibc maps fresh, past its threshold of 1 MiB here, and faults in a page at a time)."""
     if len(bounds) == 2 or bounds[-1] - bounds[0] > JOIN_MOST:
         return [buffer[a:e].tobytes() for a, e in zip(bounds[:-1], bounds[1:], strict=True)]
     data = buffer[: bounds[-1]].tobytes()

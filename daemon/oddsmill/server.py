@@ -65,7 +65,6 @@ log = logging.getLogger("oddsmill")
 
 # a columnar message's first key, as the client library and most producers pack it (cols, then rows)
 COLUMNAR_FIRST = (b"\xa4cols", b"\xa4rows")
-TAKE_NONE, TAKE_EVENTS, TAKE_COLS = 0, 1, 2  # `Server.taking_in`: which blocks the last one call took
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 CHORES_SECONDS = 0.01  # the loop's checks of time run at most this often (a few us each wake-up)
@@ -319,10 +318,8 @@ class Server:
         self.last_ranking = self.last_rate = -1e9
         self.reader = RunReader()  # blocks of numeric training events, read in compiled code
         self.known = Known()  # and the names of the last such block, learned in compiled code
+        self.taking_in = False  # whether the next wake-up may be one compiled call (`_take_in`)
         self.columns = columnar.ColumnReader()  # blocks of columnar messages, read in compiled code
-        self.cols_known = columnar.ColumnKnown()  # and the names of the last, for `_take_in`
-        # whether the next wake-up may be one compiled call (`_take_in`), and for which blocks
-        self.taking_in = TAKE_NONE
         self._refresh()
 
     def _refresh(self) -> None:
@@ -711,25 +708,21 @@ class Server:
 
     def _may_take_in(self) -> bool:
         """Whether the next wake-up may be `_take_in`'s: the last block took the quick path's one
-        call (`Server._quick`) or was a plain columnar block of one set of names
-        (`Server._columnar`), and the next of its kind still would be."""
-        mode = self.taking_in
-        if mode == TAKE_NONE or self.race is not None or self.outage is not None or self.journal.buffered():
-            return False
-        known = self.known if mode == TAKE_EVENTS else self.cols_known
-        return known.vocab is self.engine.learner.vocab
+        call (`Server._quick`), and it still would."""
+        return (
+            self.taking_in
+            and self.known.vocab is self.engine.learner.vocab
+            and self.race is None
+            and self.outage is None
+            and not self.journal.buffered()
+        )
 
     def _take_in(self, taking: intake.Intake, pub: zmq.Socket[Any]) -> bool:
         """A wake-up in one compiled call (intake.py): wait for messages, then journal, learn and
-        answer the block as `_quick`'s one call (or `_columnar`) does, or hand it to `handle` as
-        it came. False when nothing came."""
-        fd = self.journal.fileno()
-        if self.taking_in == TAKE_COLS:
-            known: Known | columnar.ColumnKnown = self.cols_known
-            found = self.engine.take_in_cols(taking, self.cols_known, fd, POLL_MS)
-        else:
-            known = self.known
-            found = self.engine.take_in(taking, self.known, fd, POLL_MS)
+        answer the block as `_quick`'s one call does, or hand it to `handle` as it came. False
+        when nothing came."""
+        known = self.known
+        found = self.engine.take_in(taking, known, self.journal.fileno(), POLL_MS)
         if found == intake.EMPTY:
             code = taking.poll_errno
             if code not in (0, errno.EINTR):
@@ -743,14 +736,15 @@ class Server:
             return True
         messages = taking.handed()
         if found == WRITE_FAILED:
-            self._write_failed(messages, pub, arrival, known.errno)
+            self._write_failed(messages, pub, arrival)
         else:
             self.handle(messages, pub, arrival)
         return True
 
-    def _write_failed(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float, code: int) -> None:
-        """A one-call journal write failed (errno `code`): nothing of the block was learned; the
-        outage begins and the full path holds the block."""
+    def _write_failed(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> None:
+        """The one call's journal write failed (`Known.errno`): nothing of the block was learned;
+        the outage begins and the full path holds the block."""
+        code = self.known.errno
         self._fail(OSError(code, os.strerror(code)))
         self._block(messages, pub, arrival, [])
 
@@ -760,7 +754,7 @@ class Server:
         `arrival`: when it came (default: now)."""
         if arrival is None:
             arrival = time.time()
-        self.taking_in = TAKE_NONE
+        self.taking_in = False
         bodies: list[object] = []
         if self.race is None and self.outage is None:
             if self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival):
@@ -803,10 +797,10 @@ class Server:
                     journal.wrote(known.written)
                     self._journal_kept(arrival, raws, False)
                     self._answer(pub, bodies, arrival)
-                    self.taking_in = TAKE_EVENTS
+                    self.taking_in = True
                     return True
                 if found == WRITE_FAILED:
-                    self._write_failed(messages, pub, arrival, known.errno)
+                    self._write_failed(messages, pub, arrival)
                     return True
             else:  # in two
                 found = known.read(raws)
@@ -866,9 +860,6 @@ class Server:
                 bodies.append(columnar.score_body(logits[at : at + m], step + at, arrival, p[at : at + m]))
                 at += m
         self._answer(pub, bodies, arrival)
-        if len(runs) == 1 and all(n == (None, None) for n in numbers):  # the next may be one call
-            self.cols_known.remember(engine.learner.vocab, self.columns.key, self.columns.slots)
-            self.taking_in = TAKE_COLS
         return True
 
     def _lone(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> list[object]:
