@@ -3,7 +3,7 @@ arrive, with a few numeric features beside them) until the vocabulary holds N na
 the growth of the process's resident memory per slot, beside the bytes of the state arrays and of
 the vocabulary's arrays alone. `--encode-only` grows the vocabulary without learning (the figure
 of earlier sessions); `--glibc-threshold` leaves glibc's mmap threshold as it is (the daemon fixes
-it: learner.give_back_large_frees).
+it: learner.give_back_large_frees, and keeps the heap's free top: learner.keep_freed_heap).
 
     python scripts/memory_per_slot.py [--slots N] [--encode-only] [--glibc-threshold]
 """
@@ -17,7 +17,7 @@ import gc
 import numpy as np
 from oddsmill import kernel as K
 from oddsmill.encoding import BlockBuilder
-from oddsmill.learner import Learner, give_back_large_frees
+from oddsmill.learner import Learner, give_back_large_frees, keep_freed_heap
 from oddsmill.settings import LearnerSettings
 
 
@@ -55,6 +55,7 @@ def main() -> None:
     n = args.slots
     if not args.glibc_threshold:
         give_back_large_frees()  # as `oddsmill serve` does
+        keep_freed_heap()
     # A first learner of a few thousand slots loads every compiled function the loop calls (the
     # table's growth included): code, not memory a slot.
     grow(Learner(LearnerSettings(max_features=2 * n)), 5_000, args.encode_only)

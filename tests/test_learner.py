@@ -189,3 +189,44 @@ def test_checkpoints_with_the_old_row_order_load_and_continue_bit_for_bit(schedu
     learn(again, events[1500:])
     assert again.state_dict()["slots"].tobytes() == lr.state_dict()["slots"].tobytes()
     assert again.coefficients().coefs.tobytes() == lr.coefficients().coefs.tobytes()
+
+
+HEAP_PROBE = r"""
+import resource, sys
+from oddsmill.learner import give_back_large_frees, keep_freed_heap
+assert give_back_large_frees()  # as `oddsmill serve` does
+if sys.argv[1] == "keep":
+    assert keep_freed_heap()
+
+def faults():
+    return resource.getrusage(resource.RUSAGE_SELF).ru_minflt
+
+def burst():  # 64 MB in bodies of 80 KB (a columnar block's), each written, then all freed
+    before = faults()
+    bodies = [b"\x01" * 80_000 for _ in range(800)]
+    del bodies
+    return faults() - before
+
+burst()
+print(burst())
+"""
+
+
+@pytest.mark.parametrize("keep", [True, False], ids=["kept", "glibc's own"])
+def test_the_heap_freed_after_a_burst_is_kept_for_the_next(keep: bool) -> None:
+    """`keep_freed_heap` (what `oddsmill serve` sets at start): a second burst of 80 KB bodies
+    reuses the pages the first freed, where glibc's own setting handed them back at the free and
+    faulted them in again, one fault a 4 KiB page (about 15,600 for 64 MB)."""
+    import subprocess
+    import sys
+
+    if sys.platform != "linux":
+        pytest.skip("glibc's allocator")
+    out = subprocess.run(
+        [sys.executable, "-c", HEAP_PROBE, "keep" if keep else "own"], capture_output=True, text=True, check=True
+    )
+    second = int(out.stdout)
+    if keep:
+        assert second < 1_000, second
+    else:
+        assert second > 10_000, second

@@ -483,7 +483,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from .learner import give_back_large_frees
+    from .learner import give_back_large_frees, keep_freed_heap
     from .server import Server
 
     settings, learner, warm = serve_settings(args)
@@ -491,6 +491,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
         print_config(settings, learner)
         return 0
     give_back_large_frees()  # before the state is loaded: its arrays then leave no free heap behind
+    keep_freed_heap()  # and the heap's free top kept for the allocations that follow
     server = Server(settings, learner, warm)
     stop = threading.Event()
 

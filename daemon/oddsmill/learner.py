@@ -68,6 +68,32 @@ def give_back_large_frees() -> bool:
     return bool(mallopt(m_mmap_threshold, MMAP_THRESHOLD))
 
 
+TRIM_THRESHOLD = 1 << 30  # bytes of free memory at the top of a heap that glibc keeps (M_TRIM_THRESHOLD)
+
+
+def keep_freed_heap() -> bool:
+    """Have glibc keep the free memory at the top of its heaps, up to TRIM_THRESHOLD, for the
+    allocations that follow, rather than hand it back to the system whenever it passes 128 KiB.
+    Under columnar load the loop keeps the bodies of the journal's records until an fsync covers
+    them (up to a segment of 64 MiB), and ZeroMQ's I/O thread holds its queue of messages: each
+    release gave those pages back, and the next allocations faulted them in again, a page at a
+    time, zeroed (perf: the kernel's clear_page and page faults, 5% to 10% of the loop's
+    samples). The cost: memory freed after a burst stays with the process, up to what the burst
+    needed. (glibc's M_TOP_PAD at 64 MiB as well added 30 bytes a slot of resident memory in
+    scripts/memory_per_slot.py; this alone adds 1.) `oddsmill serve` calls it at start. False
+    where there is no glibc."""
+    import ctypes
+    import ctypes.util
+
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        mallopt = libc.mallopt
+    except (OSError, AttributeError):
+        return False
+    m_trim_threshold = -1  # <malloc.h>
+    return bool(mallopt(m_trim_threshold, TRIM_THRESHOLD))
+
+
 def row_width(s: LearnerSettings) -> int:
     """Columns of a slot's row: AdaGrad keeps two more (kernel.R_G, kernel.R_LAST)."""
     return K.N_ROWS if s.schedule == "adagrad" else K.N_ROWS_GLOBAL
