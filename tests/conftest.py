@@ -1,7 +1,9 @@
 from __future__ import annotations
 
 import random
+import subprocess
 import time
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -40,6 +42,22 @@ def sparse_stream(n: int, seed: int) -> list[tuple[dict[str, object], int]]:
         y = int(rnd.random() < 1 / (1 + 2.718281828 ** (-z)))
         out.append((x, y))
     return out
+
+
+# Daemon processes a test started (tests/test_server.py's `start`): any still running when the test
+# ends is killed. A test that failed before stopping its daemon left it running, and it held its
+# HTTP port (and CPU) through the tests that followed.
+STARTED: list[subprocess.Popen[str]] = []
+
+
+@pytest.fixture(autouse=True)
+def no_daemon_left_running() -> Iterator[None]:
+    yield
+    while STARTED:
+        proc = STARTED.pop()
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(30)
 
 
 @pytest.fixture(scope="session")

@@ -21,7 +21,7 @@ from oddsmill.protocol import decode_body
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import Client, RunningServer, loopback, sparse_stream
+from tests.conftest import STARTED, Client, RunningServer, loopback, sparse_stream
 from tests.tools import full_rows
 
 
@@ -176,6 +176,7 @@ def start(state: Path, ingest: str, scores: str, *extra: str) -> subprocess.Pope
         text=True,
         env={**os.environ, "PYTHONUNBUFFERED": "1"},
     )
+    STARTED.append(proc)  # (killed when the test ends, should it fail before stopping it)
     assert proc.stderr is not None
     serving = threading.Event()
     lines: list[str] = []
