@@ -56,6 +56,11 @@ def give_back_large_frees() -> bool:
     process keeps: 64 bytes a slot resident at a million slots against 57 to 58 with this
     (measured, scripts/memory_per_slot.py). `oddsmill serve` calls it at start; False where there is no
     glibc (the process then keeps its allocator as it is)."""
+    return _mallopt(-3, MMAP_THRESHOLD)  # M_MMAP_THRESHOLD (<malloc.h>)
+
+
+def _mallopt(param: int, value: int) -> bool:
+    """glibc's mallopt(param, value): whether it took it (False where there is no glibc)."""
     import ctypes
     import ctypes.util
 
@@ -64,8 +69,7 @@ def give_back_large_frees() -> bool:
         mallopt = libc.mallopt
     except (OSError, AttributeError):
         return False
-    m_mmap_threshold = -3  # <malloc.h>
-    return bool(mallopt(m_mmap_threshold, MMAP_THRESHOLD))
+    return bool(mallopt(param, value))
 
 
 TRIM_THRESHOLD = 1 << 30  # bytes of free memory at the top of a heap that glibc keeps (M_TRIM_THRESHOLD)
@@ -79,19 +83,10 @@ def keep_freed_heap() -> bool:
     release gave those pages back, and the next allocations faulted them in again, a page at a
     time, zeroed (perf: the kernel's clear_page and page faults, 5% to 10% of the loop's
     samples). The cost: memory freed after a burst stays with the process, up to what the burst
-    needed. (glibc's M_TOP_PAD at 64 MiB as well added 30 bytes a slot of resident memory in
-    scripts/memory_per_slot.py; this alone adds 1.) `oddsmill serve` calls it at start. False
-    where there is no glibc."""
-    import ctypes
-    import ctypes.util
-
-    try:
-        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-        mallopt = libc.mallopt
-    except (OSError, AttributeError):
-        return False
-    m_trim_threshold = -1  # <malloc.h>
-    return bool(mallopt(m_trim_threshold, TRIM_THRESHOLD))
+    needed. (glibc's M_TOP_PAD at 64 MiB as well took scripts/memory_per_slot.py's resident
+    memory from 58 to 88 bytes a slot; this alone, 59 to 60.) `oddsmill serve` calls it at start.
+    False where there is no glibc."""
+    return _mallopt(-1, TRIM_THRESHOLD)  # M_TRIM_THRESHOLD (<malloc.h>)
 
 
 def row_width(s: LearnerSettings) -> int:
