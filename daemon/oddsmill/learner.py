@@ -84,7 +84,7 @@ def keep_freed_heap() -> bool:
     time, zeroed (perf: the kernel's clear_page and page faults, 5% to 10% of the loop's
     samples). The cost: memory freed after a burst stays with the process, up to what the burst
     needed. (glibc's M_TOP_PAD at 64 MiB as well took scripts/memory_per_slot.py's resident
-    memory from 58 to 88 bytes a slot; this alone, 59 to 60.) `oddsmill serve` calls it at start.
+    memory from 58 to 88 bytes a slot; this alone, 57 to 60.) `oddsmill serve` calls it at start.
     False where there is no glibc."""
     return _mallopt(-1, TRIM_THRESHOLD)  # M_TRIM_THRESHOLD (<malloc.h>)
 
