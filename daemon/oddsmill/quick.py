@@ -434,15 +434,14 @@ class Known(EventArrays):
         )  # fmt: skip
         return self._bodies()
 
-    def requests(self, b: np.ndarray | None = None) -> list[tuple[int, object]]:
-        """The scoring requests of the block last learned (b: the bodies it was read from, when
-        not `read`'s or `journal_and_learn`'s), in order: (row, id), the id None for a request
-        without one (scored, not held). `row_values` and `logit` give the rest."""
+    def requests(self) -> list[tuple[int, object]]:
+        """The scoring requests of the block last learned, in order: (row, id), the id None for a
+        request without one (scored, not held). `row_values` and `logit` give the rest."""
         if not self._requests:
             return []
         m = self._m
         rows = np.flatnonzero(np.isnan(self._ys[:m])).tolist()
-        data = self._b if b is None else b
+        data = self._b
         out: list[tuple[int, object]] = []
         for r in rows:
             at = int(self._ids[r])
