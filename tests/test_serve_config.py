@@ -113,3 +113,34 @@ def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
     )
     assert again.engine.metrics.sum == state["engine"]["metrics"]["sum"]
     again.journal.close()
+
+
+def test_serve_sets_the_allocator_before_it_loads_the_state(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """`oddsmill serve` sets glibc's two thresholds (learner.give_back_large_frees, then
+    learner.keep_freed_heap) before it builds the server, which loads the state: set after, the
+    state's arrays would already sit in the heap. Their effect is test_learner's heap test; this
+    is that the command sets them, which only the bench would notice otherwise. (The server is a
+    stand-in that records when it was built and stops at once.)"""
+    import gc
+    import signal
+
+    from oddsmill import learner, server
+
+    order: list[str] = []
+    monkeypatch.setattr(learner, "give_back_large_frees", lambda: order.append("mmap threshold") or True)
+    monkeypatch.setattr(learner, "keep_freed_heap", lambda: order.append("trim threshold") or True)
+    monkeypatch.setattr(gc, "freeze", lambda: None)  # (not this test process's collector)
+    monkeypatch.setattr(signal, "signal", lambda *a: None)  # (nor its signal handlers)
+
+    class StandIn:
+        clean_exit = True
+
+        def __init__(self, settings: object, learner_settings: object, warm: object) -> None:
+            order.append("server built")
+
+        def serve(self, stop: object) -> None:
+            order.append("served")
+
+    monkeypatch.setattr(server, "Server", StandIn)
+    assert main(["serve", "--state", str(tmp_path / "state"), "--http", "off"]) == 0
+    assert order == ["mmap threshold", "trim threshold", "server built", "served"]
