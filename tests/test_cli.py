@@ -261,17 +261,29 @@ def test_aliased_fit_is_refused_with_the_names(tmp_path: Path, capsys) -> None: 
     assert code == 0
 
 
-def test_demo_summary_agrees_with_the_fit(capsys) -> None:  # type: ignore[no-untyped-def]
+def test_demo_summary_agrees_with_the_fit(tmp_path: Path, monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
+    """The demo's summary against a Newton fit of its log, and the state it keeps for a look
+    inside (in this test's directory: each run of the suite left 6 MB in the machine's /tmp)."""
     import argparse
+    import gzip
+    import tempfile
 
     from oddsmill.demo import run_demo
     from oddsmill.offline import fit_logs
     from oddsmill.settings import LearnerSettings
 
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
     buf = io.StringIO()
     with redirect_stdout(buf):
         assert run_demo(argparse.Namespace(data=None, keep_running=False), out=buf) == 0
     text = buf.getvalue()
+    kept = [line.removeprefix("state: ") for line in text.splitlines() if line.startswith("state: ")]
+    assert len(kept) == 1 and Path(kept[0]).parent.parent == tmp_path
+    assert f"look inside: oddsmill inspect {kept[0]}" in text
+    code, out, _ = run(["inspect", kept[0], "--json"], capsys)
+    with gzip.open(DEMO, "rt") as f:
+        outcomes = sum(1 for line in f if '"y"' in line)
+    assert code == 0 and json.loads(out)["step"] == outcomes  # every outcome of the demo's log learned
     res, _ = fit_logs([str(DEMO)], LearnerSettings())
     assert f"log-loss {res.log_loss:.4f}" in text
     assert "a week of snow" in text
