@@ -471,7 +471,7 @@ def test_timings_expose_what_prometheus_clients_histogram_would() -> None:
 
 
 WARM_CHECK = r"""
-import sys, tempfile
+import sys
 from pathlib import Path
 import msgpack, numpy as np, zmq
 from numba.core.registry import CPUDispatcher
@@ -481,7 +481,7 @@ def compiled():
     return {f"{name}.{attr}": len(obj.signatures) for name, mod in list(sys.modules.items())
             if name.startswith("oddsmill") for attr, obj in vars(mod).items() if isinstance(obj, CPUDispatcher)}
 
-server = Server(ServerSettings(state_dir=Path(tempfile.mkdtemp())))  # loads the state, warms up
+server = Server(ServerSettings(state_dir=Path(sys.argv[1])))  # loads the state, warms up
 before = compiled()
 ctx = zmq.Context()
 pub = ctx.socket(zmq.PUB)
@@ -515,12 +515,15 @@ print(" ".join(grew) if grew else "nothing")
 """
 
 
-def test_warm_up_leaves_nothing_to_compile_or_load_for_the_loop() -> None:
+def test_warm_up_leaves_nothing_to_compile_or_load_for_the_loop(tmp_path: Path) -> None:
     """In a fresh process, the daemon's start-up loads every compiled function the loop calls:
     one-event messages alone and read together, batches, a columnar block, a held request and its
     outcome, one-hot features then compile or load nothing more (a function first loaded in the
-    loop held its block up by 3 to 4 ms; the first compiled call of a process, by half a second)."""
-    out = subprocess.run([sys.executable, "-c", WARM_CHECK], capture_output=True, text=True, timeout=300, check=True)
+    loop held its block up by 3 to 4 ms; the first compiled call of a process, by half a second).
+    Its state is in this test's directory (in one of its own, each run left 65 MB in /tmp)."""
+    out = subprocess.run(
+        [sys.executable, "-c", WARM_CHECK, str(tmp_path)], capture_output=True, text=True, timeout=300, check=True
+    )
     assert out.stdout.strip() == "nothing", out.stdout + out.stderr
 
 
