@@ -347,3 +347,31 @@ def test_replay_races_the_candidates_and_inspect_lists_them(tmp_path: Path, caps
         assert single["learner"] == c["learner"]
         assert single["metrics"]["log_loss"] == c["log_loss"]
         assert single["metrics"]["log_loss_window"] == c["log_loss_window"]
+
+
+COMPILE_PROBE = r"""
+import logging, sys
+import numpy as np
+logging.basicConfig(level=logging.INFO, format="oddsmill: %(message)s")
+from oddsmill import columnar
+columnar.probabilities(np.zeros(2))  # two compiled functions (_probabilities calls _p)
+"""
+
+
+def test_a_first_run_says_it_is_compiling_and_a_cached_one_does_not(tmp_path: Path) -> None:
+    """On a fresh machine the first command compiled the package for two minutes without a word
+    (`oddsmill demo`'s first line came after it). One line says so, once a process, and only when
+    numba compiles rather than loads (a cache of the test's own: NUMBA_CACHE_DIR)."""
+    import os
+    import subprocess
+    import sys
+
+    from oddsmill import COMPILING
+
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path)}
+    runs = [
+        subprocess.run([sys.executable, "-c", COMPILE_PROBE], env=env, capture_output=True, text=True, check=True)
+        for _ in range(2)
+    ]
+    assert runs[0].stderr.count(COMPILING) == 1, runs[0].stderr
+    assert COMPILING not in runs[1].stderr, runs[1].stderr  # loaded from the cache the first run left

@@ -48,3 +48,34 @@ def _stamp_the_cache() -> None:
 
 
 _stamp_the_cache()
+
+COMPILING = (
+    "compiling the learner's code for this machine, once: about two minutes on 2 cores, with nothing "
+    "more to see until it ends (numba keeps it in the package's __pycache__ for the runs after)"
+)
+
+
+def _say_when_compiling() -> None:
+    """Log COMPILING (logger "oddsmill", INFO) when the process first compiles one of numba's
+    functions rather than loading it from the cache. On a fresh machine the first command
+    (`oddsmill demo`, as the README says) compiles the whole package, and said nothing for two
+    minutes. numba's "numba:compile" event fires only on a cache miss; once a process."""
+    import logging
+
+    from numba.core import event
+
+    class FirstCompile(event.Listener):
+        said = False
+
+        def on_start(self, ev: Any) -> None:
+            if not self.said:
+                self.said = True
+                logging.getLogger("oddsmill").info(COMPILING)
+
+        def on_end(self, ev: Any) -> None:
+            pass
+
+    event.register("numba:compile", FirstCompile())  # type: ignore[no-untyped-call]
+
+
+_say_when_compiling()
