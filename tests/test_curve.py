@@ -120,4 +120,4 @@ def test_the_send_and_listen_commands_take_client_keys(keys: dict[str, Path]) ->
     code = run_cli("listen", "--curve-secret", str(keys["alice"]), "--timeout", "0.1", "--count", "1")[0]
     assert code == 2  # --curve-server missing
     args: Any = ["listen", "--curve-secret", str(keys["alice"]), "--curve-server", str(keys["daemon_public"])]
-    assert run_cli(*args, "--timeout", "0.2", "--count", "1")[0] == 0  # nobody there: silence, then exit
+    assert run_cli(*args, "--timeout", "0.2", "--count", "1")[0] == 1  # nobody there: silence, short of --count

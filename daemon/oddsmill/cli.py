@@ -636,7 +636,16 @@ def cmd_listen(args: argparse.Namespace) -> int:
             try:
                 topic, body = scores.receive(timeout=args.timeout)
             except TimeoutError:
-                break
+                # silence: the end asked for without --count, and short of it with one. Either way a
+                # stop with nothing (a wrong address, a daemon not running: a subscriber cannot tell
+                # them from a quiet daemon) was silent, and exited 0 with --count unmet
+                wanted = "" if args.count is None else f" of {args.count}"
+                print(
+                    f"oddsmill listen: {received}{wanted} messages from {args.source},"
+                    f" then {args.timeout:g} s of silence",
+                    file=sys.stderr,
+                )
+                return 1 if args.count is not None else 0
             received += 1
             if isinstance(body.get("p"), bytes):
                 body = decode_columns(body)
