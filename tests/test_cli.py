@@ -391,3 +391,29 @@ def test_a_first_run_says_it_is_compiling_and_a_cached_one_does_not(tmp_path: Pa
     ]
     assert runs[0].stderr.count(COMPILING) == 1, runs[0].stderr
     assert COMPILING not in runs[1].stderr, runs[1].stderr  # loaded from the cache the first run left
+
+
+@pytest.mark.parametrize("free", [1 << 20, None], ids=["estimated first", "numpy's MemoryError"])
+def test_a_fit_too_large_for_the_memory_says_so(free: int | None, monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A log whose dense design matrix does not fit in memory: the fit stopped with numpy's
+    MemoryError and a traceback (44.7 GiB asked for 300,000 events x 20,000 features, here), or,
+    short of that, paged until the OOM killer came. One line now, with the sizes, exit 1, before
+    the matrix is made when the system says what is free (here made to say 1 MiB), and from the
+    MemoryError when it does not (here made to come from the fit)."""
+    from oddsmill import offline
+
+    monkeypatch.setattr(offline, "available_bytes", lambda: free)
+    if free is None:
+
+        def short(*args: object) -> None:
+            raise MemoryError
+
+        monkeypatch.setattr(offline, "newton_fit", short)
+    code, out, err = run(["fit", str(DEMO)], capsys)
+    assert code == 1 and out == ""
+    need = offline.fit_bytes(28_000, 16) / 2**20  # the demo log's labelled events and features
+    have = ", and 1 MiB is available" if free else ""
+    assert err == (
+        f"oddsmill: the Newton fit of 28,000 events x 16 features needs about {need:.0f} MiB of memory{have}:"
+        " fit part of the log (the fit holds every event as a dense row)\n"
+    )
