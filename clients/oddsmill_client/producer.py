@@ -20,8 +20,10 @@ class Producer:
     `kind="pub"` (the default) connects an XPUB to the daemon's SUB and waits, up to
     `wait_for_daemon` seconds, until the daemon's subscription has arrived before the first send: a
     plain PUB would drop the first messages while the connection is being made (ZeroMQ's slow
-    joiner). `kind="push"` connects a PUSH to a daemon started with `ingest_kind = "pull"`: nothing is
-    dropped, and `send` blocks while the daemon is behind.
+    joiner). When such a producer outruns the daemon by more than the high-water marks, ZeroMQ
+    drops messages; with `wait_when_behind` its send waits for room instead (ZeroMQ's
+    XPUB_NODROP), as a push producer's does. `kind="push"` connects a PUSH to a daemon started with
+    `ingest_kind = "pull"`: nothing is dropped, and `send` blocks while the daemon is behind.
 
     With `src`, events are numbered (`src`, `seq` from 0; each event of a batch, and each columnar
     block, has its own number) so the daemon can count what was lost and drop repeats. With
@@ -31,8 +33,9 @@ class Producer:
 
     Raises ValueError for a bad address, kind or batch, and TimeoutError when a pub producer's
     daemon has not subscribed within `wait_for_daemon` seconds (the socket is closed either way).
-    With `send_timeout`, a push producer's send that waits that long for the daemon raises
-    TimeoutError, the event not sent (without it a send waits as long as the daemon is behind).
+    With `send_timeout`, a send that waits that long for the daemon (push, or pub with
+    `wait_when_behind`) raises TimeoutError, the event not sent (without it a send waits as long as
+    the daemon is behind).
     """
 
     def __init__(
@@ -47,6 +50,7 @@ class Producer:
         context: zmq.Context[Any] | None = None,
         curve: CurveKeys | None = None,
         send_timeout: float | None = None,
+        wait_when_behind: bool = False,
     ) -> None:
         if kind not in ("pub", "push"):
             raise ValueError(f"kind must be pub or push, got {kind!r}")
@@ -55,6 +59,8 @@ class Producer:
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.XPUB if kind == "pub" else zmq.PUSH)
         self._sock.setsockopt(zmq.LINGER, 2000)  # close waits this long for queued messages
+        if wait_when_behind and kind == "pub":
+            self._sock.setsockopt(zmq.XPUB_NODROP, 1)
         self._send_timeout = send_timeout
         if send_timeout is not None:
             self._sock.setsockopt(zmq.SNDTIMEO, max(0, int(send_timeout * 1000)))
@@ -91,7 +97,7 @@ class Producer:
     def _send(self, body: dict[str, Any]) -> None:
         try:
             self._sock.send_multipart([self._topic, msgpack.packb(body, use_bin_type=True)])
-        except zmq.Again:  # (only with send_timeout: a push whose daemon took nothing in time)
+        except zmq.Again:  # (only with send_timeout: a daemon that took nothing in time)
             raise TimeoutError(f"the daemon took no message within {self._send_timeout:g} s") from None
         self.sent += 1
 

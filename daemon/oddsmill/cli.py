@@ -555,7 +555,8 @@ def cmd_send(args: argparse.Namespace) -> int:
             batch=args.batch,
             wait_for_daemon=args.wait,
             curve=curve,
-            send_timeout=args.wait if args.kind == "push" else None,
+            send_timeout=args.wait,
+            wait_when_behind=True,  # a file is sent whole: past the high-water marks, wait, never drop
         )
     except ValueError as e:
         raise UsageError(f"--to: {e}") from None
