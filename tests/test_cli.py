@@ -417,3 +417,32 @@ def test_a_fit_too_large_for_the_memory_says_so(free: int | None, monkeypatch, c
         f"oddsmill: the Newton fit of 28,000 events x 16 features needs about {need:.0f} MiB of memory{have}:"
         " fit part of the log (the fit holds every event as a dense row)\n"
     )
+
+
+def test_inspect_says_how_far_the_journal_is_ahead_of_the_checkpoint(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A state directory inspected while its daemon serves: the newest checkpoint's model, which
+    showed step 0 after a start with nothing to say that the daemon had learned more. Now the
+    first lines say when the checkpoint was written and how many bytes of journal came after it
+    (here: the records of two messages handled after the checkpoint, counted from the file)."""
+    import msgpack
+    import zmq
+    from oddsmill.server import Server, ServerSettings
+
+    ctx: zmq.Context[object] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://inspect-ahead")
+    server = Server(ServerSettings(state_dir=tmp_path / "live", http="off"))
+    server.handle([[b"events", msgpack.packb({"x": {"route_km": 1.0}, "y": 1})]], pub)
+    server.checkpoint()
+    covered = server.journal.tell()
+    code, out, _ = run(["inspect", str(tmp_path / "live")], capsys)
+    assert code == 0 and "; the journal has nothing after it" in out.splitlines()[2]
+    server.handle([[b"events", msgpack.packb({"x": {"route_km": r}, "y": 0})] for r in (2.0, 3.0)], pub)
+    ahead = server.journal.tell() - covered
+    assert ahead > 0
+    code, out, _ = run(["inspect", str(tmp_path / "live")], capsys)
+    assert code == 0 and out.splitlines()[0].startswith("step 1 ")  # the checkpoint's model
+    assert f"; the journal has {ahead:,} bytes after it, which a daemon serving" in out.splitlines()[2]
+    server.journal.close()
+    pub.close(0)
+    ctx.term()

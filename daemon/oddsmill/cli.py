@@ -220,9 +220,10 @@ def load_engine(target: str) -> Any:
     return load_state(target)[0]
 
 
-def load_state(target: str) -> tuple[Any, float, Any]:
-    """(engine, when its checkpoint was written, the race or None) of a state directory or a
-    checkpoint file; in a race, the engine is the serving candidate's."""
+def load_state(target: str) -> tuple[Any, float, Any, dict[str, Any] | None]:
+    """(engine, when its checkpoint was written, the race or None, the journal position it covers
+    or None) of a state directory or a checkpoint file; in a race, the engine is the serving
+    candidate's."""
     from .engine import Engine
     from .storage import load_newest, read_checkpoint
 
@@ -241,7 +242,8 @@ def load_state(target: str) -> tuple[Any, float, Any]:
     try:
         race = Race.from_state_dict(state["race"]) if "race" in state else None
         engine = race.engine if race is not None else Engine.from_state_dict(state["engine"])
-        return engine, float(state.get("created", 0.0)), race
+        position = state.get("journal") if isinstance(state.get("journal"), dict) else None
+        return engine, float(state.get("created", 0.0)), race, position
     except (KeyError, TypeError, ValueError) as e:
         raise CheckpointError(f"{target}: the checkpoint's content is not an oddsmill state ({e})") from None
 
@@ -336,8 +338,36 @@ def inspect_json(engine: Any) -> dict[str, Any]:
     }
 
 
+def _checkpoint_line(target: Path, created: float, position: dict[str, Any] | None) -> str:
+    """When the checkpoint was written and, for a state directory, how much of its journal came
+    after it: a daemon serving the directory (and a restart) has learned that too, so the model
+    shown is behind by it. (A state directory inspected while its daemon ran showed the
+    checkpoint's model, step 0 after a start, with nothing to say the daemon was ahead.)"""
+    import time
+
+    from .storage import list_journal
+
+    when = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(created)) if created else "at an unknown time"
+    line = f"checkpoint written {when}"
+    if not target.is_dir() or position is None:
+        return line
+    segments = list_journal(target)
+    names = [p.name for p in segments]
+    if position.get("segment") not in names:
+        return line
+    k = names.index(position["segment"])
+    after = max(0, segments[k].stat().st_size - int(position["offset"]))
+    after += sum(p.stat().st_size for p in segments[k + 1 :])
+    if not after:
+        return line + "; the journal has nothing after it"
+    return (
+        line + f"; the journal has {after:,} bytes after it, which a daemon serving this directory has learned"
+        " too (its /api/status has the live figures) and a restart learns again"
+    )
+
+
 def cmd_inspect(args: argparse.Namespace) -> int:
-    engine, _, race = load_state(args.state)
+    engine, created, race, position = load_state(args.state)
     doc = inspect_json(engine)
     if race is not None:
         doc["candidates"] = race.table()
@@ -355,6 +385,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"learning rate {m['learning_rate']:.3g}   averaging {'on' if s['average'] else 'off'}"
     )
     print("settings: " + ", ".join(f"{k}={v}" for k, v in s.items()))
+    print(_checkpoint_line(Path(args.state), created, position))
     if m["log_loss_count"]:
         print(
             f"progressive log-loss {m['log_loss']:.5f} over {int(m['log_loss_count']):,} labelled events; "
@@ -711,7 +742,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         raise UsageError(f"--out must name an .html file, got {args.out!r}")
     if not out.parent.is_dir():
         raise UsageError(f"--out {args.out!r}: no such directory {str(out.parent)!r}")
-    engine, created, race = load_state(args.state)
+    engine, created, race, _ = load_state(args.state)
     doc = report_document(engine, created, args.state, race)
     try:
         if args.png:
