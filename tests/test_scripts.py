@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -61,6 +62,19 @@ def test_script_runs(args: tuple[str, ...], says: str) -> None:
     done = script(*args)
     assert done.returncode == 0, done.stderr
     assert says in done.stdout
+
+
+def test_journal_cost_keeps_the_copys_journal_out_of_its_files() -> None:
+    """Its figure stands on the copy writing next to nothing: a patch that stopped taking (the
+    daemon journaling by another path) would make the two alike and the script would not say."""
+    done = script("journal_cost.py", "--events", "20000", "--pairs", "1")
+    assert done.returncode == 0, done.stderr
+    assert "the paired ratio, memory over file:" in done.stdout
+    counts = re.search(r"write and writev\): ([\d,]+), ([\d,]+) by the copy", done.stdout)
+    assert counts is not None, done.stdout
+    to_file, to_memory = (int(c.replace(",", "")) for c in counts.groups())
+    assert to_file > 3_000_000  # 20,000 events of 161 bytes in the journal
+    assert to_memory < to_file / 10
 
 
 def test_profile_engine_reports_each_shape() -> None:

@@ -230,10 +230,15 @@ def peak_memory_kib(pid: int) -> int:
     return 0
 
 
+# How oddsmill's server is started; `Running(serve=...)` starts another command with the same flags
+# (scripts/journal_cost.py: a copy of the daemon whose journal stays in memory).
+SERVE = [sys.executable, "-m", "oddsmill.cli", "serve"]
+
+
 class Running:
     """One server process on fresh loopback ports."""
 
-    def __init__(self, kind: str, ingest_kind: str) -> None:
+    def __init__(self, kind: str, ingest_kind: str, serve: list[str] | None = None) -> None:
         # oddsmill's state directory (journal and checkpoints, up to 770 MB a server here, which
         # were left behind after every run until it was a TemporaryDirectory): removed when the
         # server stops or fails to start, and at exit if a run raised before stopping it
@@ -255,7 +260,7 @@ class Running:
             stream = "stdout"
         else:
             self.state = tempfile.TemporaryDirectory(prefix="oddsmill-bench-")
-            cmd = [sys.executable, "-m", "oddsmill.cli", "serve", "--state", self.state.name, "--ingest", self.ingest]
+            cmd = [*(serve or SERVE), "--state", self.state.name, "--ingest", self.ingest]
             cmd += ["--ingest-kind", ingest_kind, "--scores", self.scores, "--http", "off"]
             cmd += ["--scores-hwm", "100000000"]
             if kind == "race":  # nine candidates on the same stream, one serving
@@ -309,11 +314,16 @@ def _tidy(server: Running, producer: subprocess.Popen[str] | None, ctx: zmq.Cont
 
 
 def throughput(
-    kind: str, shape: str, n: int, before_stop: Callable[[Running], dict[str, float]] | None = None
+    kind: str,
+    shape: str,
+    n: int,
+    before_stop: Callable[[Running], dict[str, float]] | None = None,
+    serve: list[str] | None = None,
 ) -> dict[str, float]:
     """Events/s of one server over n events of a shape, and its peak memory; `before_stop` (a
-    script's) looks at the server after its last answer, and what it returns joins the figures."""
-    server = Running(kind, "pull")
+    script's) looks at the server after its last answer, and what it returns joins the figures;
+    `serve`, another command for oddsmill's server (see SERVE)."""
+    server = Running(kind, "pull", serve)
     seen: dict[str, float] = {}
     ctx: zmq.Context[Any] = zmq.Context()
     producer: subprocess.Popen[str] | None = None
