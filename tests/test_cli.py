@@ -48,6 +48,7 @@ def test_fit_json_shape_and_against(tmp_path: Path, capsys) -> None:  # type: ig
     assert code == 0
     doc = json.loads(out)
     assert doc["n"] == 28_000 and doc["converged"] is True and doc["iterations"] > 1
+    assert doc["warnings"] == []  # the demo's parcels leave nothing to the penalty
     assert set(doc["intercept"]) == {"coef", "se", "z", "p_value", "ci95"}
     for row in doc["coefficients"]:
         assert set(row) == {"feature", "coef", "se", "z", "p_value", "ci95", "odds_ratio"}
@@ -391,6 +392,55 @@ def test_a_first_run_says_it_is_compiling_and_a_cached_one_does_not(tmp_path: Pa
     ]
     assert runs[0].stderr.count(COMPILING) == 1, runs[0].stderr
     assert COMPILING not in runs[1].stderr, runs[1].stderr  # loaded from the cache the first run left
+
+
+def _parcels(path: Path, late_depot: int, all_late: bool = False) -> Path:
+    """400 parcels: route_km, and the depot Fenwick Yard on the first `late_depot` late ones only."""
+    rng = np.random.default_rng(8)
+    km = rng.normal(20.0, 6.0, 400)
+    late = np.ones(400, dtype=bool) if all_late else rng.random(400) < 1 / (1 + np.exp(-(km - 20.0) / 6.0))
+    with path.open("w") as f:
+        fenwick = 0
+        for i in range(400):
+            x: dict[str, object] = {"route_km": round(float(km[i]), 2)}
+            if late[i] and fenwick < late_depot:
+                x["depot"] = "Fenwick Yard"
+                fenwick += 1
+            f.write(json.dumps({"id": f"P{i:06d}", "x": x, "y": int(late[i])}) + "\n")
+    return path
+
+
+def test_fit_says_which_coefficients_the_penalty_holds(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A depot whose every parcel was late: at the default L2 its coefficient is finite, with a
+    standard error and a p-value, but they are the penalty's. They were printed as if they were
+    the data's, with nothing to say so (tests/test_reference.py holds the diagnosis against
+    statsmodels)."""
+    log = _parcels(tmp_path / "parcels.jsonl", late_depot=9)
+    code, out, _ = run(["fit", str(log)], capsys)
+    assert code == 0
+    assert out.splitlines()[-1] == (
+        "warning: present only in events of one outcome, so without the L2 penalty their coefficients would grow "
+        "without bound; their sizes, standard errors, z and p-values here are the penalty's (L2 = 0.0001), not "
+        "the data's: depot=Fenwick Yard (9 events, all y = 1)"
+    )
+    code, out, _ = run(["fit", str(log), "--json"], capsys)
+    assert code == 0
+    (warning,) = json.loads(out)["warnings"]
+    assert warning["kind"] == "one_outcome" and warning["features"] == ["depot=Fenwick Yard"]
+    code, out, err = run(["fit", str(log), "--l2", "0"], capsys)
+    assert code == 2 and out == ""
+    assert err.startswith("oddsmill: these features are present only in events of one outcome: depot=Fenwick Yard")
+
+
+def test_fit_refuses_a_log_of_one_outcome(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """Every parcel late: the intercept ran off to 38 in 38 iterations, "NOT converged", with NaN
+    standard errors, and the command exited 0."""
+    code, out, err = run(["fit", str(_parcels(tmp_path / "late.jsonl", 0, all_late=True))], capsys)
+    assert code == 2 and out == ""
+    assert err == (
+        "oddsmill: all 400 labelled events have y = 1: with one outcome only the log-likelihood has no maximum "
+        "(the intercept, which is not penalised, grows without bound); a fit needs events of both outcomes\n"
+    )
 
 
 @pytest.mark.parametrize("free", [1 << 20, None], ids=["estimated first", "numpy's MemoryError"])

@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from .errors import CheckpointError, ConfigError, InputFileError, OddsmillError, UsageError
-from .reference import Z95, AliasedError
+from .reference import Z95, AliasedError, NoOptimumError
 
 log = logging.getLogger("oddsmill")
 
@@ -294,6 +294,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
             f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>11.4g}':>11}"
         )
     print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
+    for w in res.warnings:
+        print(f"warning: {w.detail}")
     if args.against:
         a = out["against"]
         print(
@@ -929,7 +931,7 @@ def main(argv: list[str] | None = None) -> int:
                 f" (oddsmill {args.command} --help lists them)"
             )
         return int(args.func(args))
-    except (UsageError, ConfigError, InputFileError, CheckpointError, AliasedError) as e:
+    except (UsageError, ConfigError, InputFileError, CheckpointError, AliasedError, NoOptimumError) as e:
         print(f"oddsmill: {e}", file=sys.stderr)
         return 2
     except OddsmillError as e:

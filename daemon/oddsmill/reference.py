@@ -35,6 +35,23 @@ class AliasedError(OddsmillError):
         self.names = names
 
 
+class NoOptimumError(OddsmillError):
+    """Data on which the objective has no maximum: one outcome only, or (at L2 = 0) outcomes the
+    features separate."""
+
+
+@dataclass(frozen=True)
+class FitWarning:
+    """What makes some of a fit's figures the penalty's rather than the data's (`diagnose`)."""
+
+    kind: str  # "separation", "one_outcome", "aliased" or "absent"
+    features: tuple[str, ...]  # the features concerned (none for "separation")
+    detail: str  # a sentence for a person
+
+    def as_json(self) -> dict[str, object]:
+        return {"kind": self.kind, "features": list(self.features), "detail": self.detail}
+
+
 @dataclass(frozen=True)
 class FitResult:
     names: list[str]
@@ -45,6 +62,7 @@ class FitResult:
     converged: bool
     log_loss: float  # mean negative log-likelihood per event
     objective: float
+    warnings: tuple[FitWarning, ...] = ()
 
     def z(self) -> np.ndarray:
         out: np.ndarray = self.coef / self.se
@@ -78,6 +96,7 @@ class FitResult:
             "log_loss": self.log_loss,
             "intercept": row(0),
             "coefficients": coefs,
+            "warnings": [w.as_json() for w in self.warnings],
         }
 
 
@@ -85,24 +104,16 @@ def _odds(c: float) -> float:
     return math.exp(c) if c < 709.0 else float("inf")
 
 
-def aliased_columns(X: np.ndarray) -> list[int]:
-    """Columns (of X, after an implicit intercept) that are linear combinations of the intercept and
-    earlier columns: Gram-Schmidt in order, keeping the first of every collinear set."""
-    n = X.shape[0]
-    basis = [np.ones(n) / math.sqrt(n)]
-    bad = []
-    for j in range(X.shape[1]):
-        v = X[:, j].astype(np.float64).copy()
-        norm = np.linalg.norm(v)
-        for _ in range(2):  # twice is enough (Kahan-Parlett)
-            for q in basis:
-                v -= (q @ v) * q
-        r = np.linalg.norm(v)
-        if norm == 0.0 or r <= ALIAS_TOL * norm:
-            bad.append(j)
-        else:
-            basis.append(v / r)
-    return bad
+def aliased_columns(Z: np.ndarray) -> list[int]:
+    """Features (columns of Z after its first, the intercept's) that are linear combinations of the
+    columns before them: those whose distance from the span of the earlier columns is at most
+    ALIAS_TOL of their norm, or which are 0. That distance is |R_jj| of Z's QR decomposition
+    (Householder's, LAPACK's geqrf through numpy), so of every collinear set the first columns are
+    kept and the last named. 2.3 s for 200,000 events of 202 features here, where Gram-Schmidt a
+    column at a time in numpy took 15.7 s (one Hessian of the fit: 0.27 s)."""
+    norms = np.linalg.norm(Z, axis=0)
+    r = np.abs(np.diag(np.linalg.qr(Z, mode="r")))
+    return [j - 1 for j in range(1, Z.shape[1]) if norms[j] == 0.0 or r[j] <= ALIAS_TOL * norms[j]]
 
 
 def newton_fit(
@@ -119,11 +130,11 @@ def newton_fit(
     n, d = X.shape
     if n == 0:
         raise OddsmillError("no labelled events to fit")
-    if l2 == 0.0:
-        bad = aliased_columns(X)
-        if bad:
-            raise AliasedError([names[j] for j in bad])
+    _both_outcomes(y, w)
     Z = np.hstack([np.ones((n, 1)), X / scale])
+    bad = aliased_columns(Z)
+    if l2 == 0.0 and bad:
+        raise AliasedError([names[j] for j in bad])
     pen = np.full(d + 1, l2)
     pen[0] = 0.0
     beta = np.zeros(d + 1)
@@ -167,4 +178,100 @@ def newton_fit(
         se_std = np.full(d + 1, np.nan)
     unit = np.concatenate([[1.0], scale])
     mean_ll = float(np.sum(w * log_loss_from_logit(z, y)) / n)
-    return FitResult(names, beta / unit, se_std / unit, n, iterations, converged, mean_ll, f)
+    found = diagnose(X, y, w, z, names, l2, bad)
+    return FitResult(names, beta / unit, se_std / unit, n, iterations, converged, mean_ll, f, found)
+
+
+def _both_outcomes(y: np.ndarray, w: np.ndarray) -> None:
+    """Refuse events of one outcome: the intercept, which is not penalised, would grow without
+    bound (the log-likelihood then has no maximum, whatever the penalty)."""
+    ones = float(np.sum(w * y))
+    zeros = float(np.sum(w * (1.0 - y)))
+    if ones == 0.0 or zeros == 0.0:
+        which = "the one labelled event has" if y.shape[0] == 1 else f"all {y.shape[0]:,} labelled events have"
+        raise NoOptimumError(
+            f"{which} y = {1 if zeros == 0.0 else 0}: with one outcome only "
+            "the log-likelihood has no maximum (the intercept, which is not penalised, grows without bound); "
+            "a fit needs events of both outcomes"
+        )
+
+
+def diagnose(
+    X: np.ndarray, y: np.ndarray, w: np.ndarray, z: np.ndarray, names: list[str], l2: float, aliased: list[int]
+) -> tuple[FitWarning, ...]:
+    """What the data leave to the penalty, given the fitted logits z (raises NoOptimumError at
+    L2 = 0, where nothing holds the coefficients back):
+    - separation: every event lies on its own side of the fitted boundary (z > 0 where y = 1, z < 0
+      where y = 0). The boundary itself proves the data separable, and then the log-likelihood
+      grows without bound along it (Albert and Anderson, Biometrika 71, 1984). Separable data the
+      penalised boundary does not separate go unflagged;
+    - one_outcome: a feature of one sign (>= 0 throughout, or <= 0) that is present (not 0) only in
+      events of one outcome: raising its coefficient's size raises those events' likelihood and no
+      other's, so it too grows without bound (quasi-complete separation by one feature: a depot
+      whose every parcel was late);
+    - aliased, absent: `aliased_columns`, split into features present in no labelled event and
+      the others."""
+    found: list[FitWarning] = []
+    ones = y > 0.5
+    penalty = f"their sizes, standard errors, z and p-values here are the penalty's (L2 = {l2:g}), not the data's"
+    if bool(np.all(np.where(ones, z > 0.0, z < 0.0))):
+        if l2 == 0.0:
+            raise NoOptimumError(
+                "the features separate the outcomes completely (every labelled event lies on its own side of the "
+                "fitted boundary): at L2 = 0 the log-likelihood has no maximum and the coefficients grow without "
+                "bound; give a small L2 penalty (for example --l2 1e-4)"
+            )
+        found.append(
+            FitWarning(
+                "separation",
+                (),
+                "the features separate the outcomes completely: every labelled event lies on its own side of the "
+                f"fitted boundary, so without the L2 penalty the coefficients would grow without bound; {penalty}",
+            )
+        )
+    present = X != 0.0
+    in_ones = present[ones].sum(axis=0)
+    in_zeros = present[~ones].sum(axis=0)
+    one_signed = (X.min(axis=0, initial=0.0) >= 0.0) | (X.max(axis=0, initial=0.0) <= 0.0)
+    lopsided = np.nonzero(one_signed & ((in_ones == 0) != (in_zeros == 0)))[0]
+    if lopsided.size:
+        listed = ", ".join(
+            f"{names[j]} ({max(in_ones[j], in_zeros[j]):,} events, all y = {1 if in_ones[j] else 0})" for j in lopsided
+        )
+        if l2 == 0.0:
+            raise NoOptimumError(
+                f"these features are present only in events of one outcome: {listed}; at L2 = 0 the log-likelihood "
+                "has no maximum and their coefficients grow without bound; drop them, or give a small L2 penalty "
+                "(for example --l2 1e-4)"
+            )
+        found.append(
+            FitWarning(
+                "one_outcome",
+                tuple(names[j] for j in lopsided),
+                "present only in events of one outcome, so without the L2 penalty their coefficients would grow "
+                f"without bound; {penalty}: {listed}",
+            )
+        )
+    absent = [j for j in aliased if not present[:, j].any()]
+    if absent:
+        found.append(
+            FitWarning(
+                "absent",
+                tuple(names[j] for j in absent),
+                "present in no labelled event (scored only), so the data say nothing of their coefficients, "
+                f"which the L2 penalty holds at 0: {', '.join(names[j] for j in absent)}",
+            )
+        )
+    tied = [j for j in aliased if j not in absent]
+    if tied:
+        found.append(
+            FitWarning(
+                "aliased",
+                tuple(names[j] for j in tied),
+                "aliased (each a linear combination of the intercept and the features before it): the data fix "
+                "only combinations of these coefficients with the intercept's and the others'; how they are split "
+                "comes from the L2 penalty, so one coefficient's z and p-value mean little: "
+                + ", ".join(names[j] for j in tied),
+            )
+        )
+    return tuple(found)
