@@ -21,6 +21,7 @@ from .progressive import log_loss_from_logit
 
 Z95 = 1.959963984540054  # the 97.5% point of the standard normal
 ALIAS_TOL = 1e-9  # a column whose residual is below this fraction of its norm is aliased
+QR_ROWS = 8192  # rows of Z taken into its QR at a time (`aliased_columns`)
 
 
 class AliasedError(OddsmillError):
@@ -107,13 +108,22 @@ def _odds(c: float) -> float:
 def aliased_columns(Z: np.ndarray) -> list[int]:
     """Features (columns of Z after its first, the intercept's) that are linear combinations of the
     columns before them: those whose distance from the span of the earlier columns is at most
-    ALIAS_TOL of their norm, or which are 0. That distance is |R_jj| of Z's QR decomposition
-    (Householder's, LAPACK's geqrf through numpy), so of every collinear set the first columns are
-    kept and the last named. 2.3 s for 200,000 events of 202 features here, where Gram-Schmidt a
-    column at a time in numpy took 15.7 s (one Hessian of the fit: 0.27 s)."""
+    ALIAS_TOL of their norm, or which are 0. That distance is |R_jj| of Z's QR decomposition, so of
+    every collinear set the first columns are kept and the last named. R is found a block of rows
+    at a time (Householder's QR of the R so far stacked on the next rows, LAPACK's geqrf through
+    numpy: the same R, up to signs), so that no copy of Z is made: 200,000 events of 202 features
+    in 1.3 to 1.9 s here, where Gram-Schmidt a column at a time took 15.7 s, and numpy's QR of the
+    whole matrix 2.3 s and a copy of it (the fit's peak 1.31 GiB against 1.02)."""
+    n, k = Z.shape
     norms = np.linalg.norm(Z, axis=0)
-    r = np.abs(np.diag(np.linalg.qr(Z, mode="r")))
-    return [j - 1 for j in range(1, Z.shape[1]) if norms[j] == 0.0 or r[j] <= ALIAS_TOL * norms[j]]
+    rows = max(QR_ROWS, 4 * k)
+    r = np.zeros((0, k))
+    for lo in range(0, n, rows):
+        r = np.linalg.qr(np.vstack([r, Z[lo : lo + rows]]), mode="r")
+    diag = np.zeros(k)
+    m = min(r.shape)
+    diag[:m] = np.abs(np.diag(r)[:m])
+    return [j - 1 for j in range(1, k) if norms[j] == 0.0 or diag[j] <= ALIAS_TOL * norms[j]]
 
 
 def newton_fit(
