@@ -117,9 +117,9 @@ def aliased_columns(Z: np.ndarray) -> list[int]:
     n, k = Z.shape
     norms = np.linalg.norm(Z, axis=0)
     rows = max(QR_ROWS, 4 * k)
-    r = np.zeros((0, k))
-    for lo in range(0, n, rows):
-        r = np.linalg.qr(np.vstack([r, Z[lo : lo + rows]]), mode="r")
+    r: np.ndarray = np.zeros((0, k))
+    for lo in range(0, n, rows):  # (mode "r" returns R alone, an array; numpy's stubs say a QRResult)
+        r = np.asarray(np.linalg.qr(np.vstack([r, Z[lo : lo + rows]]), mode="r"))
     diag = np.zeros(k)
     m = min(r.shape)
     diag[:m] = np.abs(np.diag(r)[:m])
