@@ -115,15 +115,18 @@ class Client:
         self.push.connect(ingest)
         # the subscription is in place once a probe's score comes back
         deadline = time.monotonic() + TIMEOUT_MS / 1000
+        self.probes_answered = 0  # scores the daemon published for probes (and counted as such)
         while time.monotonic() < deadline:
             self.send({"x": {"probe": 1.0}})
             if self.sub.poll(100):
                 self.sub.recv_multipart()
+                self.probes_answered += 1
                 break
         else:
             raise AssertionError("no score for a probe: the daemon is not answering")
         while self.sub.poll(200):  # drain the answers to extra probes
             self.sub.recv_multipart()
+            self.probes_answered += 1
 
     def send(self, body: dict[str, Any]) -> None:
         self.push.send_multipart([b"events", msgpack.packb(body)])

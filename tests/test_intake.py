@@ -20,6 +20,7 @@ from oddsmill.learner import Learner
 from oddsmill.protocol import decode_body
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, read_journal
+from prometheus_client import generate_latest
 
 from tests.conftest import Client, RunningServer, loopback
 from tests.test_fastpath import same_state
@@ -102,9 +103,12 @@ def until_taken_in(client: Client, rng: np.random.Generator, found: list[int]) -
     raise AssertionError(f"no wake-up was taken in one call: {found}")
 
 
-def run(state: Path, taking: bool, messages: list[tuple[list[bytes], str | None]]) -> tuple[Any, list[Any], list[int]]:
+def run(
+    state: Path, taking: bool, messages: list[tuple[list[bytes], str | None]]
+) -> tuple[Any, list[Any], list[int], int]:
     """Serve the messages (lone ones each after the answer before; the burst at once) with the
-    one-call wake-ups on or off; the server, the answers, and what each one-call wake-up found."""
+    one-call wake-ups on or off; the server, the answers, what each one-call wake-up found, and
+    how many of the client's probes were answered before the messages."""
     found: list[int] = []
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(intake, "AVAILABLE", taking)
@@ -135,13 +139,13 @@ def run(state: Path, taking: bool, messages: list[tuple[list[bytes], str | None]
                 answers += client.receive(1)
         client.close()
         running.close()
-    return running.server, answers, found
+    return running.server, answers, found, client.probes_answered
 
 
 def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tmp_path: Path) -> None:
     messages = stream(3)
-    on, on_answers, found = run(tmp_path / "on", True, messages)
-    off, off_answers, not_found = run(tmp_path / "off", False, messages)
+    on, on_answers, found, on_probes = run(tmp_path / "on", True, messages)
+    off, off_answers, not_found, off_probes = run(tmp_path / "off", False, messages)
     assert not not_found
     # the one call took lone messages and blocks of up to block_max, and handed back the others
     reads = [f - 100 for f in found if f > 100]
@@ -152,6 +156,13 @@ def test_wake_ups_in_one_call_answer_journal_and_learn_as_the_usual_path_does(tm
         return [(t, {k: v for k, v in a.items() if k != "ts"}) for t, a in answers]
 
     assert len(on_answers) > 250 and without_ts(on_answers) == without_ts(off_answers)
+    # the score latency's histogram counts each message answered, on every path (it counted a
+    # block once, however many messages it answered: 15,822 for the demo's 28,000 scores)
+    answered = sum(t == b"scores" for t, _ in on_answers)
+    for server, probes in ((on, on_probes), (off, off_probes)):
+        server.board.score_latency.fold()
+        exposed = generate_latest(server.board.registry).decode().splitlines()
+        assert f"oddsmill_score_latency_seconds_count {float(answered + probes)}" in exposed
     details = [a["detail"] for t, a in on_answers if t == b"rejects"]
     assert "a message has 2 frames, got 3" in details and "a message has 2 frames, got 1" in details
     same_state(on.engine, off.engine)

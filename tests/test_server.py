@@ -468,6 +468,52 @@ def test_timings_expose_what_prometheus_clients_histogram_would() -> None:
         assert float(sums[0][0].split()[1]) == pytest.approx(float(sums[1][0].split()[1]), rel=1e-12)
         assert [x for x in ours_lines if "_sum" not in x] == [x for x in theirs_lines if "_sum" not in x]
     assert f"t_seconds_count {float(len(values))}" in lines(ours_registry)
+    # a block's answers, observed at once (`observe_many`): as many observes of the same value
+    for v, n in zip(values[::37], range(1, 500, 29), strict=False):
+        ours.observe_many(v, n)
+        for _ in range(n):
+            theirs.observe(v)
+        ours.observe(v / 3)
+        theirs.observe(v / 3)
+    ours.fold()
+    ours_lines, theirs_lines = lines(ours_registry), lines(theirs_registry)
+    assert [x for x in ours_lines if "_sum" not in x] == [x for x in theirs_lines if "_sum" not in x]
+    sums = [float(x.split()[1]) for got in (ours_lines, theirs_lines) for x in got if x.startswith("t_seconds_sum")]
+    assert len(sums) == 2 and sums[0] == pytest.approx(sums[1], rel=1e-12)
+
+
+def test_the_score_latency_counts_each_message_a_block_answers(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """A block on the full path (`Server._block`: a fresh daemon's first block, names it does not
+    know yet) answers each training message and request with a score, and refuses an outcome
+    for an id it never held. The histogram "from a message's arrival to its score being
+    published" (PROTOCOL 8) counted such a block once."""
+    import msgpack
+    from oddsmill.server import Server, ServerSettings
+    from prometheus_client import generate_latest
+
+    blocks: list[int] = []
+    full_path = Server._block
+
+    def counted(self: Server, messages: list[list[bytes]], *a: Any) -> None:
+        blocks.append(len(messages))
+        full_path(self, messages, *a)
+
+    monkeypatch.setattr(Server, "_block", counted)
+    rng = np.random.default_rng(2)
+    bodies = [{"x": {"route_km": float(rng.normal(20, 5)), "express": bool(i % 2)}, "y": i % 3 == 0} for i in range(10)]
+    bodies += [{"id": "P-1", "x": {"route_km": 4.0}}, {"id": "P-404", "y": 1}]
+    ctx: zmq.Context[Any] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://latency-count")
+    server = Server(ServerSettings(state_dir=tmp_path / "s", http="off"))
+    server.handle([[b"events", msgpack.packb(b)] for b in bodies], pub)
+    server.journal.close()
+    pub.close(0)
+    ctx.term()
+    assert blocks == [12]
+    assert server.engine.counters.rejected == {"unknown_outcome": 1}
+    server.board.score_latency.fold()
+    assert "oddsmill_score_latency_seconds_count 11.0" in generate_latest(server.board.registry).decode().splitlines()
 
 
 WARM_CHECK = r"""

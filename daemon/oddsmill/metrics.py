@@ -144,23 +144,38 @@ class Timings(Collector):
         self._lock = threading.Lock()  # fold (the loop) against collect (a scrape, on its thread)
         self._observed: list[float] = []
         self.observe = self._observed.append
+        self._many: list[float] = []  # values observed several times over (`observe_many`)
+        self._times: list[int] = []  # and how many times each
         registry.register(self)
+
+    def observe_many(self, value: float, n: int) -> None:
+        """`observe` the value n times: the latency of a block's n answers, sent at one moment."""
+        self._many.append(value)
+        self._times.append(n)
 
     def waiting(self) -> int:
         """Values observed and not binned yet."""
-        return len(self._observed)
+        return len(self._observed) + len(self._many)
 
     def fold(self) -> None:
         """Bin what was observed since the last fold (the loop's thread only)."""
-        if not self._observed:
+        if not self._observed and not self._many:
             return
         values = np.array(self._observed)
+        many = np.array(self._many)
+        times = np.array(self._times, dtype=np.int64)
         self._observed.clear()
+        self._many.clear()
+        self._times.clear()
         # a value on a bound counts in that bound's bucket (le: less than or equal)
-        counts = np.bincount(np.searchsorted(self._bounds, values, side="left"), minlength=self._counts.shape[0])
+        buckets = self._counts.shape[0]
+        counts = np.bincount(np.searchsorted(self._bounds, values, side="left"), minlength=buckets)
+        if many.size:  # (float sums of whole counts: exact below 2**53)
+            at = np.searchsorted(self._bounds, many, side="left")
+            counts += np.bincount(at, weights=times, minlength=buckets).astype(np.int64)
         with self._lock:
             self._counts += counts
-            self._sum += float(values.sum())
+            self._sum += float(values.sum()) + float((many * times).sum())
 
     def describe(self) -> Iterator[Metric]:
         yield HistogramMetricFamily(self.name, self.documentation)
