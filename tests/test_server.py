@@ -516,6 +516,41 @@ def test_the_score_latency_counts_each_message_a_block_answers(tmp_path: Path, m
     assert "oddsmill_score_latency_seconds_count 11.0" in generate_latest(server.board.registry).decode().splitlines()
 
 
+def test_the_block_time_histogram_tells_the_demos_blocks_apart(tmp_path: Path) -> None:
+    """The demo's events through a live daemon, a block at a time (each message sent after the
+    answer before): batches of 50, and lone events. Their times fall in several buckets of
+    oddsmill_batch_seconds; with prometheus_client's default buckets (5 ms and up) every block
+    of the demo fell in the first."""
+    from oddsmill.logs import read_bodies
+    from oddsmill.metrics import BLOCK_BUCKETS, LATENCY_BUCKETS
+    from oddsmill.settings import LearnerSettings
+    from prometheus_client import generate_latest
+
+    from tests.conftest import DEMO
+
+    for bounds in (BLOCK_BUCKETS, LATENCY_BUCKETS):
+        assert bounds[0] <= 0.000025 and all(b / a <= 2.5 + 1e-9 for a, b in zip(bounds, bounds[1:], strict=False))
+    events = [body for _, body, _ in read_bodies([str(DEMO)]) if "x" in body][:2000]
+    running = RunningServer(loopback(tmp_path / "s"), LearnerSettings())
+    client = Client(running.ctx, running.server.bound["ingest"], running.server.bound["scores"])
+    try:
+        for lo in range(0, 1500, 50):
+            client.send({"batch": events[lo : lo + 50]})
+            client.receive(1)
+        for body in events[1500:1530]:
+            client.send(body)
+            client.receive(1)
+    finally:
+        client.close()
+        running.close()
+    board = running.server.board
+    board.batch_seconds.fold()
+    lines = generate_latest(board.registry).decode().splitlines()
+    cumulative = [float(x.split()[1]) for x in lines if x.startswith("oddsmill_batch_seconds_bucket")]
+    counts = [b - a for a, b in zip([0.0, *cumulative], cumulative, strict=False)]
+    assert cumulative[-1] >= 60 and sum(c > 0 for c in counts) >= 2, counts
+
+
 WARM_CHECK = r"""
 import sys
 from pathlib import Path

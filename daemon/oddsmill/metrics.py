@@ -196,9 +196,15 @@ FOLD_AT = 1024  # values a Timings holds before the loop bins them (about 30 us 
 SNAPSHOT_WAIT = 1.0  # seconds a scrape waits for the loop's fresh snapshot before it takes the last
 
 
-# prometheus_client's default buckets (seconds), which oddsmill_batch_seconds has always had
-DEFAULT_BUCKETS = (0.005, 0.01, 0.025, 0.05, 0.075, 0.1, 0.25, 0.5, 0.75, 1.0, 2.5, 5.0, 7.5, 10.0)
-LATENCY_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0)
+# Bucket bounds (seconds), from 25 us, each at most 2.5 times the one before. The block time had
+# prometheus_client's defaults (5 ms up) and the latency began at 0.1 ms: after the demo's 28,000
+# events through a live daemon, all 24,947 blocks were in the first bucket, and 13,662 of the
+# 15,822 latencies then observed; a block of the demo takes tens to hundreds of microseconds.
+BLOCK_BUCKETS = (
+    *(0.000025, 0.00005, 0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25),
+    *(0.5, 1.0, 2.5, 5.0, 10.0),
+)
+LATENCY_BUCKETS = BLOCK_BUCKETS[: BLOCK_BUCKETS.index(1.0) + 1]
 
 
 class Board:
@@ -213,7 +219,7 @@ class Board:
         self.registry = registry
         self.snapshot = Snapshot(loop_time=time.time())
         self.batch_seconds = Timings(
-            "oddsmill_batch_seconds", "Time to process one block of messages.", DEFAULT_BUCKETS, registry
+            "oddsmill_batch_seconds", "Time to process one block of messages.", BLOCK_BUCKETS, registry
         )
         self.score_latency = Timings(
             "oddsmill_score_latency_seconds",

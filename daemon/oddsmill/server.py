@@ -283,7 +283,7 @@ class Server:
             from .offline import read_items, run_logs
 
             run_logs(self, read_items(warm_start))
-            log.info("warm start: learned %d events from %s", self.engine.learner.step, ", ".join(warm_start))
+            log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
         self.journal = self._open_journal()
         # journal positions of the checkpoints on disk, oldest first (retention reads the oldest)
         self.positions: list[dict[str, Any]] = [self._loaded_position] if self._loaded_position else []
