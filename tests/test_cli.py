@@ -94,9 +94,7 @@ def test_a_feature_the_learner_refuses_stops_a_file_at_its_line(tmp_path: Path, 
 def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     """A journal holds what a daemon received, the messages it refused included: replaying it (or
     warming up from it) counts them again, as the daemon did, and learns the rest."""
-    import msgpack
-    import zmq
-    from oddsmill.server import Server, ServerSettings
+    from tests.conftest import handled_once
 
     bodies = [
         {"x": {"route_km": 1.0}, "y": 1},
@@ -105,14 +103,7 @@ def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path
         {"id": "P-9", "y": 1},  # unknown_outcome (the stream)
         {"x": {"route_km": 3.0}, "y": 0},
     ]
-    ctx: zmq.Context[object] = zmq.Context()
-    pub = ctx.socket(zmq.PUB)
-    pub.bind("inproc://journal-with-refusals")
-    server = Server(ServerSettings(state_dir=tmp_path / "live", http="off"))
-    server.handle([[b"events", msgpack.packb(b)] for b in bodies], pub)
-    server.journal.close()
-    pub.close(0)
-    ctx.term()
+    server = handled_once(tmp_path / "live", bodies)
     live = server.engine.counters.rejected
     assert live == {"bad_label": 1, "bad_features": 1, "unknown_outcome": 1}
     code, out, err = run(["replay", str(tmp_path / "live"), "--state", str(tmp_path / "s")], capsys)

@@ -487,9 +487,10 @@ def test_the_score_latency_counts_each_message_a_block_answers(tmp_path: Path, m
     know yet) answers each training message and request with a score, and refuses an outcome
     for an id it never held. The histogram "from a message's arrival to its score being
     published" (PROTOCOL 8) counted such a block once."""
-    import msgpack
-    from oddsmill.server import Server, ServerSettings
+    from oddsmill.server import Server
     from prometheus_client import generate_latest
+
+    from tests.conftest import handled_once
 
     blocks: list[int] = []
     full_path = Server._block
@@ -502,14 +503,7 @@ def test_the_score_latency_counts_each_message_a_block_answers(tmp_path: Path, m
     rng = np.random.default_rng(2)
     bodies = [{"x": {"route_km": float(rng.normal(20, 5)), "express": bool(i % 2)}, "y": i % 3 == 0} for i in range(10)]
     bodies += [{"id": "P-1", "x": {"route_km": 4.0}}, {"id": "P-404", "y": 1}]
-    ctx: zmq.Context[Any] = zmq.Context()
-    pub = ctx.socket(zmq.PUB)
-    pub.bind("inproc://latency-count")
-    server = Server(ServerSettings(state_dir=tmp_path / "s", http="off"))
-    server.handle([[b"events", msgpack.packb(b)] for b in bodies], pub)
-    server.journal.close()
-    pub.close(0)
-    ctx.term()
+    server = handled_once(tmp_path / "s", bodies)
     assert blocks == [12]
     assert server.engine.counters.rejected == {"unknown_outcome": 1}
     server.board.score_latency.fold()

@@ -222,6 +222,10 @@ def diagnose(
     - aliased, absent: `aliased_columns`, split into features present in no labelled event and
       the others."""
     found: list[FitWarning] = []
+
+    def name(kind: str, columns: list[int], detail: str) -> None:
+        found.append(FitWarning(kind, tuple(names[j] for j in columns), detail))
+
     ones = y > 0.5
     penalty = f"their sizes, standard errors, z and p-values here are the penalty's (L2 = {l2:g}), not the data's"
     if bool(np.all(np.where(ones, z > 0.0, z < 0.0))):
@@ -254,34 +258,28 @@ def diagnose(
                 "has no maximum and their coefficients grow without bound; drop them, or give a small L2 penalty "
                 "(for example --l2 1e-4)"
             )
-        found.append(
-            FitWarning(
-                "one_outcome",
-                tuple(names[j] for j in lopsided),
-                "present only in events of one outcome, so without the L2 penalty their coefficients would grow "
-                f"without bound; {penalty}: {listed}",
-            )
+        name(
+            "one_outcome",
+            lopsided.tolist(),
+            "present only in events of one outcome, so without the L2 penalty their coefficients would grow "
+            f"without bound; {penalty}: {listed}",
         )
     absent = [j for j in aliased if not present[:, j].any()]
     if absent:
-        found.append(
-            FitWarning(
-                "absent",
-                tuple(names[j] for j in absent),
-                "present in no labelled event (scored only), so the data say nothing of their coefficients, "
-                f"which the L2 penalty holds at 0: {', '.join(names[j] for j in absent)}",
-            )
+        name(
+            "absent",
+            absent,
+            "present in no labelled event (scored only), so the data say nothing of their coefficients, "
+            f"which the L2 penalty holds at 0: {', '.join(names[j] for j in absent)}",
         )
     tied = [j for j in aliased if j not in absent]
     if tied:
-        found.append(
-            FitWarning(
-                "aliased",
-                tuple(names[j] for j in tied),
-                "aliased (each a linear combination of the intercept and the features before it): the data fix "
-                "only combinations of these coefficients with the intercept's and the others'; how they are split "
-                "comes from the L2 penalty, so one coefficient's z and p-value mean little: "
-                + ", ".join(names[j] for j in tied),
-            )
+        name(
+            "aliased",
+            tied,
+            "aliased (each a linear combination of the intercept and the features before it): the data fix "
+            "only combinations of these coefficients with the intercept's and the others'; how they are split "
+            "comes from the L2 penalty, so one coefficient's z and p-value mean little: "
+            + ", ".join(names[j] for j in tied),
         )
     return tuple(found)
