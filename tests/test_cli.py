@@ -401,6 +401,23 @@ def _parcels(path: Path, late_depot: int, all_late: bool = False) -> Path:
     return path
 
 
+def test_replay_and_inspect_say_when_the_vocabulary_was_full(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    log = tmp_path / "wide.jsonl"
+    log.write_text(
+        "".join(json.dumps({"x": {f"f{j}": float(i * j % 7) for j in range(6)}, "y": i % 2}) + "\n" for i in range(50))
+    )
+    line = (
+        "the vocabulary is full (max_features 3): 150 values of names not seen before were ignored (not learned);"
+        " raise --max-features"
+    )
+    code, out, _ = run(["replay", str(log), "--state", str(tmp_path / "s"), "--max-features", "3"], capsys)
+    assert code == 0 and line in out.splitlines()
+    code, out, _ = run(["inspect", str(tmp_path / "s")], capsys)
+    assert code == 0 and line in out.splitlines()
+    code, out, _ = run(["replay", str(log), "--state", str(tmp_path / "t")], capsys)  # room for all six
+    assert code == 0 and "vocabulary is full" not in out
+
+
 def test_fit_says_which_coefficients_the_penalty_holds(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     """A depot whose every parcel was late: at the default L2 its coefficient is finite, with a
     standard error and a p-value, but they are the penalty's. They were printed as if they were

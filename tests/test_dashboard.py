@@ -59,7 +59,7 @@ def test_the_page_shows_the_figures_of_api_status(fed: FedDaemon, tmp_path: Path
     f = page.figures
     for key in ("log_loss", "log_loss_window", "brier_window", "calibration_error_window", "learning_rate"):
         assert float(f[key]) == status[key], key  # JavaScript prints the shortest round-trip form
-    for key in ("step", "log_loss_count", "features", "pending_outcomes", "lost"):
+    for key in ("step", "log_loss_count", "features", "features_ignored", "pending_outcomes", "lost"):
         assert int(f[key]) == status[key], key
     assert int(f["rejected_total"]) == sum(status["rejected"].values())
     assert f["healthy"] == "true"

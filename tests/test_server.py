@@ -510,6 +510,33 @@ def test_the_score_latency_counts_each_message_a_block_answers(tmp_path: Path, m
     assert "oddsmill_score_latency_seconds_count 11.0" in generate_latest(server.board.registry).decode().splitlines()
 
 
+def test_a_full_vocabulary_is_counted_logged_once_and_shown(tmp_path: Path, caplog) -> None:  # type: ignore[no-untyped-def]
+    """Names past max_features get no slot and are not learned. That was counted only in
+    `inspect --json`: no metric, no log line, nothing on the dashboard, so a stream that outgrew
+    its vocabulary lost its new features in silence."""
+    import logging
+
+    from oddsmill.metrics import status_document
+    from prometheus_client import generate_latest
+
+    from tests.conftest import handled_once
+
+    bodies = [{"x": {f"f{j}": float(i + j) for j in range(5)}, "y": i % 2} for i in range(4)]
+    with caplog.at_level(logging.WARNING, logger="oddsmill"):
+        server = handled_once(tmp_path / "s", bodies, LearnerSettings(max_features=3))
+        server._refresh()
+        server._refresh()
+    assert server.engine.learner.n_features == 3
+    exposed = generate_latest(server.board.registry).decode().splitlines()
+    assert "oddsmill_features_ignored_total 8.0" in exposed  # f3 and f4 of four events
+    assert status_document(server.board.snapshot, time.time())["features_ignored"] == 8
+    said = [r.getMessage() for r in caplog.records if "vocabulary is full" in r.getMessage()]
+    assert said == [
+        "the vocabulary is full (max_features 3): feature names not seen before are ignored from now on"
+        " (8 values so far, oddsmill_features_ignored_total); raise --max-features, or send fewer names"
+    ]
+
+
 def test_the_block_time_histogram_tells_the_demos_blocks_apart(tmp_path: Path) -> None:
     """The demo's events through a live daemon, a block at a time (each message sent after the
     answer before): batches of 50, and lone events. Their times fall in several buckets of

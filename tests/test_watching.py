@@ -64,7 +64,7 @@ def test_the_shipped_rules_and_scrape_configuration_pass_promtool(tmp_path: Path
         [promtool, "check", "rules", "oddsmill-rules.yml"], cwd=tmp_path, capture_output=True, text=True
     )
     assert done.returncode == 0, done.stdout + done.stderr
-    assert "SUCCESS: 7 rules found" in done.stdout
+    assert "SUCCESS: 8 rules found" in done.stdout
     done = subprocess.run([promtool, "check", "config", "prometheus.yml"], cwd=tmp_path, capture_output=True, text=True)
     assert done.returncode == 0, done.stdout + done.stderr
 
@@ -96,6 +96,24 @@ tests:
               summary: "d: recent log-loss 0.600 is 25% above the long-run figure"
       - eval_time: 30m
         alertname: OddsmillMiscalibrated
+        exp_alerts: []
+  # a vocabulary that fills at 10 minutes: 40 values ignored in the next minute, then none
+  - interval: 1m
+    input_series:
+      - series: 'oddsmill_features_ignored_total{instance="d", job="oddsmill"}'
+        values: '0x10 40x40'
+    alert_rule_test:
+      - eval_time: 9m
+        alertname: OddsmillVocabularyFull
+        exp_alerts: []
+      - eval_time: 12m
+        alertname: OddsmillVocabularyFull
+        exp_alerts:
+          - exp_labels: {severity: warning, instance: d, job: oddsmill}
+            exp_annotations:
+              summary: "d: 40 feature values of new names ignored in 15 minutes: the vocabulary is full"
+      - eval_time: 40m
+        alertname: OddsmillVocabularyFull
         exp_alerts: []
   # a sequence gap, and checkpoints that stop at 10 minutes (alerting 15 + 5 minutes on)
   - interval: 1m

@@ -171,8 +171,22 @@ def cmd_replay(args: argparse.Namespace) -> int:
         print("no labelled events: no progressive log-loss")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
+    full = _vocabulary_full(engine.learner)
+    if full:
+        print(full)
     print(f"checkpoint {path}")
     return 0
+
+
+def _vocabulary_full(learner: Any) -> str:
+    """A line saying how many feature values found the vocabulary full, or "" when none did."""
+    v = learner.vocab
+    if not v.ignored:
+        return ""
+    return (
+        f"the vocabulary is full (max_features {v.max_features:,}): {v.ignored:,} values of names not seen before"
+        " were ignored (not learned); raise --max-features"
+    )
 
 
 def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) -> int:
@@ -411,6 +425,9 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
         f"pending outcomes {m['pending_outcomes']:,}"
     )
+    full = _vocabulary_full(engine.learner)
+    if full:
+        print(full)
     if race is not None:
         print(f"\nrace of {len(race.names)} candidates ({len(race.switches)} switches); the model below serves")
         print(f"  {'candidate':<28}{'log-loss':>10}{'recent':>10}")

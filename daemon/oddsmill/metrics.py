@@ -51,6 +51,7 @@ REASONS = (
 class Snapshot:
     step: int = 0
     features: int = 0
+    features_ignored: int = 0  # values of names that found the vocabulary full (max_features)
     log_loss: float = float("nan")
     log_loss_sum: float = 0.0
     log_loss_count: int = 0
@@ -90,6 +91,7 @@ class Snapshot:
         return cls(
             step=lr.step,
             features=lr.n_features,
+            features_ignored=lr.vocab.ignored,
             log_loss=m.log_loss,
             log_loss_sum=m.sum,
             log_loss_count=m.count,
@@ -306,6 +308,11 @@ class SnapshotCollector(Collector):
             "oddsmill_events_lost", "Sequence gaps seen (messages that never arrived).", value=s.lost
         )
         yield CounterMetricFamily("oddsmill_updates", "Events learned.", value=s.step)
+        yield CounterMetricFamily(
+            "oddsmill_features_ignored",
+            "Feature values whose names found the vocabulary full (max_features): no slot, not learned.",
+            value=s.features_ignored,
+        )
         yield CounterMetricFamily("oddsmill_log_loss_sum", "Sum of progressive log-loss.", value=s.log_loss_sum)
         yield CounterMetricFamily(
             "oddsmill_log_loss_count", "Labelled events in the progressive log-loss.", value=s.log_loss_count

@@ -316,6 +316,7 @@ class Server:
         self.last_retry = 0.0
         self.board = Board(CollectorRegistry())
         self.last_ranking = self.last_rate = -1e9
+        self.said_full = False  # whether the log has said the vocabulary is full
         self.reader = RunReader()  # blocks of numeric training events, read in compiled code
         self.known = Known()  # and the names of the last such block, learned in compiled code
         self.taking_in = False  # whether the next wake-up may be one compiled call (`_take_in`)
@@ -335,6 +336,14 @@ class Server:
         self.board.held = len(self.held)
         self.board.taken(snapshot)
         self.last_refresh = now
+        if snapshot.features_ignored and not self.said_full:
+            self.said_full = True
+            log.warning(
+                "the vocabulary is full (max_features %s): feature names not seen before are ignored from now on"
+                " (%s values so far, oddsmill_features_ignored_total); raise --max-features, or send fewer names",
+                f"{self.engine.learner.vocab.max_features:,}",
+                f"{snapshot.features_ignored:,}",
+            )
 
     def _chores_of_the_board(self) -> None:
         """The board's part of each round of chores: a snapshot when a scrape asks for one (or

@@ -100,9 +100,11 @@ def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
             f"events/s   training {_n(train)}   scoring {_n(score)}   outcomes {_n(outcome)}   (over the last second)"
         )
     rejected = sum((doc.get("rejected") or {}).values())
+    ignored = doc.get("features_ignored") or 0
     lines.append(
         f"rejected {_n(rejected)}   lost {_n(doc.get('lost'))}   awaiting an outcome "
         f"{_n(doc['pending_outcomes'])}   features {_n(doc['features'])}"
+        + (f" (vocabulary full: {_n(ignored)} values of new names ignored)" if ignored else "")
     )
     lines.append(
         f"learning rate {_f(doc['learning_rate'])}   last checkpoint {_age(doc.get('checkpoint_age_seconds'))}"
