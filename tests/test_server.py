@@ -537,6 +537,28 @@ def test_a_full_vocabulary_is_counted_logged_once_and_shown(tmp_path: Path, capl
     ]
 
 
+def test_the_journals_bytes_and_the_free_disk_are_exposed(tmp_path: Path) -> None:
+    """Every journal segment is kept unless --journal-keep says otherwise, and a full disk stops
+    the learning: the daemon now exposes both figures. Sources of the checks: the files' sizes
+    from os.path.getsize, and the free bytes from the standard library's shutil.disk_usage (the
+    same statvfs figure; other writers on this disk may move it a little between the two reads)."""
+    import shutil
+
+    from prometheus_client import generate_latest
+
+    from tests.conftest import handled_once
+
+    state = tmp_path / "s"
+    server = handled_once(state, [{"x": {"route_km": float(i)}, "y": i % 2} for i in range(50)])
+    server._refresh()
+    exposed = dict(
+        line.split(" ", 1) for line in generate_latest(server.board.registry).decode().splitlines() if line[:1] != "#"
+    )
+    segments = [p for p in state.iterdir() if p.name.startswith("journal-")]
+    assert segments and float(exposed["oddsmill_journal_bytes"]) == sum(os.path.getsize(p) for p in segments)
+    assert float(exposed["oddsmill_state_free_bytes"]) == pytest.approx(shutil.disk_usage(state).free, abs=64 << 20)
+
+
 def test_the_block_time_histogram_tells_the_demos_blocks_apart(tmp_path: Path) -> None:
     """The demo's events through a live daemon, a block at a time (each message sent after the
     answer before): batches of 50, and lone events. Their times fall in several buckets of

@@ -64,7 +64,7 @@ def test_the_shipped_rules_and_scrape_configuration_pass_promtool(tmp_path: Path
         [promtool, "check", "rules", "oddsmill-rules.yml"], cwd=tmp_path, capture_output=True, text=True
     )
     assert done.returncode == 0, done.stdout + done.stderr
-    assert "SUCCESS: 8 rules found" in done.stdout
+    assert "SUCCESS: 9 rules found" in done.stdout
     done = subprocess.run([promtool, "check", "config", "prometheus.yml"], cwd=tmp_path, capture_output=True, text=True)
     assert done.returncode == 0, done.stdout + done.stderr
 
@@ -115,6 +115,24 @@ tests:
       - eval_time: 40m
         alertname: OddsmillVocabularyFull
         exp_alerts: []
+  # a disk losing 1 GB an hour with 20 GB free, then (a second daemon) with 30 GB free: the first
+  # fills within a day at that pace and alerts once the pace has held 30 minutes, the second not
+  - interval: 10m
+    input_series:
+      - series: 'oddsmill_state_free_bytes{instance="d", job="oddsmill"}'
+        values: '20e9-166666667x60'
+      - series: 'oddsmill_state_free_bytes{instance="e", job="oddsmill"}'
+        values: '30e9-166666667x60'
+    alert_rule_test:
+      - eval_time: 20m
+        alertname: OddsmillDiskFilling
+        exp_alerts: []
+      - eval_time: 2h
+        alertname: OddsmillDiskFilling
+        exp_alerts:
+          - exp_labels: {severity: warning, instance: d, job: oddsmill}
+            exp_annotations:
+              summary: "d: the state directory's disk fills within a day at this pace"
   # a sequence gap, and checkpoints that stop at 10 minutes (alerting 15 + 5 minutes on)
   - interval: 1m
     input_series:

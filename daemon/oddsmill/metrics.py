@@ -52,6 +52,8 @@ class Snapshot:
     step: int = 0
     features: int = 0
     features_ignored: int = 0  # values of names that found the vocabulary full (max_features)
+    journal_bytes: float = float("nan")  # the journal's segments, their sizes (the daemon's only)
+    state_free_bytes: float = float("nan")  # free for the state directory's file system
     log_loss: float = float("nan")
     log_loss_sum: float = 0.0
     log_loss_count: int = 0
@@ -83,15 +85,19 @@ class Snapshot:
         writable: bool = True,
         coefficients: tuple[float, list[dict[str, Any]]] | None = None,
         race: Any = None,
+        disk: tuple[float, float] = (float("nan"), float("nan")),
     ) -> Snapshot:
         """The figures of `engine` now. `coefficients` reuses an earlier (intercept, top list): the
-        ranking costs a pass over the whole vocabulary, so the loop refreshes it less often."""
+        ranking costs a pass over the whole vocabulary, so the loop refreshes it less often.
+        `disk`: the journal's bytes and the bytes free for the state directory (the daemon's)."""
         m, c, lr = engine.metrics, engine.counters, engine.learner
         intercept, top = coefficients if coefficients is not None else lr.top_coefficients(TOP_COEFFICIENTS)
         return cls(
             step=lr.step,
             features=lr.n_features,
             features_ignored=lr.vocab.ignored,
+            journal_bytes=disk[0],
+            state_free_bytes=disk[1],
             log_loss=m.log_loss,
             log_loss_sum=m.sum,
             log_loss_count=m.count,
@@ -328,6 +334,12 @@ class SnapshotCollector(Collector):
             ),
             ("oddsmill_learning_rate", "The current learning rate eta_t.", s.learning_rate),
             ("oddsmill_features", "Vocabulary size.", float(s.features)),
+            ("oddsmill_journal_bytes", "Bytes of the journal's segments in the state directory.", s.journal_bytes),
+            (
+                "oddsmill_state_free_bytes",
+                "Bytes free to the daemon on the state directory's file system.",
+                s.state_free_bytes,
+            ),
             ("oddsmill_pending_outcomes", "Scoring requests awaiting their outcome.", float(s.pending_outcomes)),
             (
                 "oddsmill_checkpoint_last_success_timestamp_seconds",

@@ -331,7 +331,12 @@ class Server:
         else:
             self.last_ranking = now
         snapshot = Snapshot.of(
-            self.engine, self.last_checkpoint, writable=self.outage is None, coefficients=top, race=self.race
+            self.engine,
+            self.last_checkpoint,
+            writable=self.outage is None,
+            coefficients=top,
+            race=self.race,
+            disk=self._disk(),
         )
         self.board.held = len(self.held)
         self.board.taken(snapshot)
@@ -344,6 +349,21 @@ class Server:
                 f"{self.engine.learner.vocab.max_features:,}",
                 f"{snapshot.features_ignored:,}",
             )
+
+    def _disk(self) -> tuple[float, float]:
+        """The journal's bytes (its segments' sizes, as `ls` shows them) and the bytes free to the
+        daemon on the state directory's file system; NaN for one it cannot read."""
+        state = self.settings.state_dir
+        try:
+            journal = float(sum(p.stat().st_size for p in list_journal(state)))
+        except OSError:
+            journal = math.nan
+        try:
+            st = os.statvfs(state)
+            free = float(st.f_bavail * st.f_frsize)
+        except OSError:
+            free = math.nan
+        return journal, free
 
     def _chores_of_the_board(self) -> None:
         """The board's part of each round of chores: a snapshot when a scrape asks for one (or
