@@ -213,7 +213,7 @@ def diagnose(
     L2 = 0, where nothing holds the coefficients back):
     - separation: every event lies on its own side of the fitted boundary (z > 0 where y = 1, z < 0
       where y = 0). The boundary itself proves the data separable, and then the log-likelihood
-      grows without bound along it (Albert and Anderson, Biometrika 71, 1984). Separable data the
+      grows without bound along it (Albert and Anderson, Biometrika 71, 1984; cited from memory). Separable data the
       penalised boundary does not separate go unflagged;
     - one_outcome: a feature of one sign (>= 0 throughout, or <= 0) that is present (not 0) only in
       events of one outcome: raising its coefficient's size raises those events' likelihood and no
