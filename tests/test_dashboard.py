@@ -61,6 +61,10 @@ def test_the_page_shows_the_figures_of_api_status(fed: FedDaemon, tmp_path: Path
         assert float(f[key]) == status[key], key  # JavaScript prints the shortest round-trip form
     for key in ("step", "log_loss_count", "features", "features_ignored", "pending_outcomes", "lost"):
         assert int(f[key]) == status[key], key
+    assert float(f["journal_bytes"]) == status["journal_bytes"] > 0  # (whole: JavaScript prints it so)
+    assert "<div><dt>Journal on disk</dt>" in dom  # shown (a report hides it)
+    # read again for each snapshot, and other writers on this disk move it between two reads
+    assert float(f["state_free_bytes"]) == pytest.approx(status["state_free_bytes"], abs=64 << 20)
     assert int(f["rejected_total"]) == sum(status["rejected"].values())
     assert f["healthy"] == "true"
     assert 0 <= float(f["checkpoint_age_seconds"]) <= status["uptime_seconds"]

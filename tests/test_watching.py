@@ -340,6 +340,8 @@ def test_report_renders_a_checkpoint_self_contained_with_a_png(tmp_path: Path) -
     for key in ("log_loss", "log_loss_window", "brier_window", "calibration_error_window", "learning_rate"):
         assert float(page.figures[key]) == m[key], key
     assert int(page.figures["log_loss_count"]) == m["log_loss_count"]
+    for tile in ("Journal on disk", "Free on the state's disk"):  # a live daemon's figures, not a checkpoint's
+        assert f'<div hidden=""><dt>{tile}</dt>' in dom, tile
     assert page.series["since start"] > 50
     assert [b["data-feature"] for b in page.bars] == [c["feature"] for c in inspected["coefficients"][:12]]
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
