@@ -310,6 +310,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
     for w in res.warnings:
         print(f"warning: {w.detail}")
+    full = _vocabulary_full(design.learner)
+    if full:
+        print(f"warning: {full}")
     if args.against:
         a = out["against"]
         print(

@@ -219,8 +219,8 @@ def diagnose(
       events of one outcome: raising its coefficient's size raises those events' likelihood and no
       other's, so it too grows without bound (quasi-complete separation by one feature: a depot
       whose every parcel was late);
-    - aliased, absent: `aliased_columns`, split into features present in no labelled event and
-      the others."""
+    - aliased, absent: `aliased_columns`, split into features that are 0 in every labelled event
+      and the others."""
     found: list[FitWarning] = []
 
     def name(kind: str, columns: list[int], detail: str) -> None:
@@ -269,8 +269,8 @@ def diagnose(
         name(
             "absent",
             absent,
-            "present in no labelled event (scored only), so the data say nothing of their coefficients, "
-            f"which the L2 penalty holds at 0: {', '.join(names[j] for j in absent)}",
+            "0 in every labelled event (absent, sent as 0, or only in scoring requests), so the data say nothing "
+            f"of their coefficients, which the L2 penalty holds at 0: {', '.join(names[j] for j in absent)}",
         )
     tied = [j for j in aliased if j not in absent]
     if tied:
