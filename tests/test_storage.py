@@ -394,6 +394,18 @@ def test_pending_requests_expire_by_arrival_time_and_are_counted() -> None:
     assert "old" not in eng.pending and eng.counters.pending_expired == 1
     results = eng.process([(1062.0, it) for it in decode_body({"id": "old", "y": 1})])
     assert [r.reason for _, r in results] == ["unknown_outcome"]  # type: ignore[union-attr]
+    # the outcome is told it came too late (it was "no scoring request with id 'old' is held",
+    # which a late outcome and a wrong id both got), through either path, and an id never held is not
+    late = "the scoring request with id 'old' was held for the time-to-live (60 s) and dropped before this outcome came"
+    assert [r.detail for _, r in results] == [late]  # type: ignore[union-attr]
+    (only,) = decode_body({"id": "old", "y": 1})
+    assert eng.one(1063.0, only).detail == late  # type: ignore[union-attr, arg-type]
+    results = eng.process([(1064.0, it) for it in decode_body({"id": "never", "y": 0})])
+    assert [r.detail for _, r in results] == ["no scoring request with id 'never' is held"]  # type: ignore[union-attr]
+    # a request held again under the id is joined as usual, and its reason forgotten
+    eng.process([(1065.0, it) for it in decode_body({"id": "old", "x": {"a": 2.0}})])
+    assert "old" not in eng.dropped
+    assert [type(r).__name__ for _, r in eng.process([(1066.0, it) for it in decode_body({"id": "old", "y": 1})])] == []
 
 
 def test_the_pending_store_is_bounded_by_count_and_counts_evictions() -> None:
@@ -402,6 +414,25 @@ def test_the_pending_store_is_bounded_by_count_and_counts_evictions() -> None:
         eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "x": {"a": 1.0}})])
     assert list(eng.pending) == ["P1", "P2"]  # the oldest went first
     assert eng.counters.pending_evicted == 1
+    results = eng.process([(3.0, it) for it in decode_body({"id": "P0", "y": 1})])
+    assert [r.detail for _, r in results] == [  # type: ignore[union-attr]
+        "the scoring request with id 'P0' was pushed out of the pending store, full at 2 requests,"
+        " before this outcome came"
+    ]
+
+
+def test_the_reasons_of_dropped_requests_are_kept_for_the_last_few_only(monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    from oddsmill import engine
+
+    monkeypatch.setattr(engine, "DROPPED_KEPT", 3)
+    eng = Engine(Learner(), pending_limit=1)
+    for i in range(6):  # P0 to P4 pushed out in turn
+        eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "x": {"a": 1.0}})])
+    assert list(eng.dropped) == ["P2", "P3", "P4"]
+    details = [
+        r.detail for i in (1, 4) for _, r in eng.process([(9.0, it) for it in decode_body({"id": f"P{i}", "y": 1})])
+    ]
+    assert details[0] == "no scoring request with id 'P1' is held" and "P4' was pushed out" in details[1]  # type: ignore[attr-defined]
 
 
 def test_held_requests_keep_their_scores_and_leave_the_garbage_collectors_sight() -> None:

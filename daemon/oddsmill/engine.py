@@ -122,6 +122,7 @@ class Counters:
 
 
 DROP, JOIN, HOLD = 0, 1, 2  # what `prepare` did to the pending store, for `follow` to do the same
+DROPPED_KEPT = 10_000  # requests dropped from the pending store whose reason is kept (`Engine.dropped`)
 
 
 class Plan:
@@ -177,6 +178,10 @@ class Engine:
         self.pending: OrderedDict[Any, PendingEntry] = OrderedDict()
         self.pending_limit = pending_limit
         self.pending_ttl = pending_ttl
+        # why the last DROPPED_KEPT requests dropped from the store went ("expired" or "evicted"), so
+        # that an outcome that comes too late is told so (not kept in checkpoints; a candidate that
+        # follows a race's leader keeps none)
+        self.dropped: OrderedDict[Any, str] = OrderedDict()
         self.counters = Counters()
         self.last_seq: dict[str, int] = {}
 
@@ -211,7 +216,7 @@ class Engine:
         if ev.x is None:  # an outcome
             held = self.pending.pop(ev.id, None)
             if held is None:
-                return self._reject(ev.id, "unknown_outcome", f"no scoring request with id {ev.id!r} is held")
+                return self._unknown(ev.id)
             assert ev.y is not None
             y = float(ev.y)
             lr.run_one(held[E_SLOTS], held_values(held), K.OP_LEARN, y, held[E_W])
@@ -351,9 +356,7 @@ class Engine:
                 if ev.x is None:  # an outcome
                     held = self.pending.pop(ev.id, None)
                     if held is None:
-                        results.append(
-                            (n, self._reject(ev.id, "unknown_outcome", f"no scoring request with id {ev.id!r} is held"))
-                        )
+                        results.append((n, self._unknown(ev.id)))
                         continue
                     assert ev.y is not None
                     pos = len(b)
@@ -578,9 +581,11 @@ class Engine:
         """Hold a scoring request; returns how many of the oldest were evicted for room."""
         self.pending.pop(ident, None)
         self.pending[ident] = entry
+        if self.dropped:
+            self.dropped.pop(ident, None)
         evicted = 0
         while len(self.pending) > self.pending_limit:
-            self.pending.popitem(last=False)
+            self._dropped(self.pending.popitem(last=False)[0], "evicted")
             evicted += 1
         self.counters.pending_evicted += evicted
         return evicted
@@ -592,10 +597,33 @@ class Engine:
             first = next(iter(self.pending.values()))
             if first[E_CLOCK] >= now - self.pending_ttl:
                 break
-            self.pending.popitem(last=False)
+            self._dropped(self.pending.popitem(last=False)[0], "expired")
             expired += 1
         self.counters.pending_expired += expired
         return expired
+
+    def _dropped(self, ident: Any, why: str) -> None:
+        dropped = self.dropped
+        dropped[ident] = why
+        if len(dropped) > DROPPED_KEPT:
+            dropped.popitem(last=False)
+
+    def _unknown(self, ident: Any) -> Rejection:
+        """An outcome whose request is not held: said to have come too late when it was dropped."""
+        why = self.dropped.get(ident)
+        if why == "expired":
+            detail = (
+                f"the scoring request with id {ident!r} was held for the time-to-live ({self.pending_ttl:g} s)"
+                " and dropped before this outcome came"
+            )
+        elif why == "evicted":
+            detail = (
+                f"the scoring request with id {ident!r} was pushed out of the pending store, full at"
+                f" {self.pending_limit:,} requests, before this outcome came"
+            )
+        else:
+            detail = f"no scoring request with id {ident!r} is held"
+        return self._reject(ident, "unknown_outcome", detail)
 
     # -- state -----------------------------------------------------------------------------------
     def state_dict(self, compact: bool = False) -> dict[str, Any]:
