@@ -416,6 +416,8 @@ def test_replay_and_inspect_say_when_the_vocabulary_was_full(tmp_path: Path, cap
     assert code == 0 and line in out.splitlines()
     code, out, _ = run(["fit", str(log), "--max-features", "3"], capsys)  # the fit's features: the same three
     assert code == 0 and f"warning: {line}" in out.splitlines()
+    code, out, _ = run(["fit", str(log), "--max-features", "3", "--json"], capsys)
+    assert {"kind": "vocabulary_full", "features": [], "detail": line} in json.loads(out)["warnings"]
     code, out, _ = run(["replay", str(log), "--state", str(tmp_path / "t")], capsys)  # room for all six
     assert code == 0 and "vocabulary is full" not in out
 

@@ -171,22 +171,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
         print("no labelled events: no progressive log-loss")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
-    full = _vocabulary_full(engine.learner)
+    full = engine.learner.vocab.full_note()
     if full:
         print(full)
     print(f"checkpoint {path}")
     return 0
-
-
-def _vocabulary_full(learner: Any) -> str:
-    """A line saying how many feature values found the vocabulary full, or "" when none did."""
-    v = learner.vocab
-    if not v.ignored:
-        return ""
-    return (
-        f"the vocabulary is full (max_features {v.max_features:,}): {v.ignored:,} values of names not seen before"
-        " were ignored (not learned); raise --max-features"
-    )
 
 
 def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) -> int:
@@ -310,9 +299,6 @@ def cmd_fit(args: argparse.Namespace) -> int:
     print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
     for w in res.warnings:
         print(f"warning: {w.detail}")
-    full = _vocabulary_full(design.learner)
-    if full:
-        print(f"warning: {full}")
     if args.against:
         a = out["against"]
         print(
@@ -428,7 +414,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
         f"pending outcomes {m['pending_outcomes']:,}"
     )
-    full = _vocabulary_full(engine.learner)
+    full = engine.learner.vocab.full_note()
     if full:
         print(full)
     if race is not None:

@@ -6,6 +6,7 @@ would have learned from the same messages.
 
 from __future__ import annotations
 
+import dataclasses
 import sys
 import time
 from collections.abc import Callable, Iterable, Iterator
@@ -22,7 +23,7 @@ from .learner import Learner
 from .logs import is_journal_record, read_bodies
 from .progressive import ProgressiveMetrics
 from .protocol import Item, decode_body
-from .reference import FitResult, newton_fit
+from .reference import FitResult, FitWarning, newton_fit
 from .settings import LearnerSettings
 
 BLOCK_ITEMS = 4096
@@ -285,4 +286,7 @@ def fit_logs(paths: list[str], settings: LearnerSettings) -> tuple[FitResult, De
     except MemoryError:  # (the estimate above was short, or the system does not say what is free)
         events, features = design.X.shape
         raise _too_large(events, features, available_bytes()) from None
+    full = design.learner.vocab.full_note()
+    if full:  # the fit's features are those the vocabulary holds
+        fit = dataclasses.replace(fit, warnings=(*fit.warnings, FitWarning("vocabulary_full", (), full)))
     return fit, design

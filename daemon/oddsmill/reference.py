@@ -45,7 +45,7 @@ class NoOptimumError(OddsmillError):
 class FitWarning:
     """What makes some of a fit's figures the penalty's rather than the data's (`diagnose`)."""
 
-    kind: str  # "separation", "one_outcome", "aliased" or "absent"
+    kind: str  # "separation", "one_outcome", "aliased", "absent"; "vocabulary_full" (offline.fit_logs)
     features: tuple[str, ...]  # the features concerned (none for "separation")
     detail: str  # a sentence for a person
 

@@ -228,6 +228,16 @@ class Vocabulary:
             and self._blob[: int(self._starts[n])].tobytes() == other._blob[: int(other._starts[n])].tobytes()
         )
 
+    def full_note(self) -> str:
+        """A line saying how many feature values found the vocabulary full, or "" when none did
+        (`replay`, `inspect` and `fit` print it)."""
+        if not self.ignored:
+            return ""
+        return (
+            f"the vocabulary is full (max_features {self.max_features:,}): {self.ignored:,} values of names not"
+            " seen before were ignored (not learned); raise --max-features"
+        )
+
     def state(self) -> dict[str, Any]:
         """The names for a checkpoint: their UTF-8 bytes end to end, and where each ends."""
         n = self._n
