@@ -218,9 +218,17 @@ def test_a_pub_producer_that_waits_when_behind_loses_nothing(wait: bool) -> None
     sub.setsockopt(zmq.SUBSCRIBE, b"events")
     port = sub.bind_to_random_port("tcp://127.0.0.1")
     got: list[int] = []
+    sent = threading.Event()
 
     def read() -> None:
-        time.sleep(0.5)  # behind from the start
+        if wait:
+            time.sleep(0.5)  # behind from the start: the sends wait for room
+        else:  # behind for the whole stream (reading after half a second, it kept up on a fast
+            # host and got all 10,000 once, under CI): PUB drops what does not fit. The socket is
+            # asked for its events meanwhile, which reads nothing: ZeroMQ attaches a new connection
+            # (and sends the subscription the producer waits for) only when the socket is used.
+            while not sent.wait(0.01):
+                sub.getsockopt(zmq.EVENTS)
         while sub.poll(1000):
             got.append(msgpack.unpackb(sub.recv_multipart()[1])["id"])
 
@@ -230,6 +238,7 @@ def test_a_pub_producer_that_waits_when_behind_loses_nothing(wait: bool) -> None
     with Producer(f"tcp://127.0.0.1:{port}", wait_when_behind=wait, send_timeout=20, context=ctx) as out:
         for i in range(10_000):
             out.send({"id": i, "x": {"pad": pad}})
+        sent.set()
     reader.join(60)
     sub.close(0)
     ctx.term()
