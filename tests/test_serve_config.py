@@ -144,3 +144,112 @@ def test_serve_sets_the_allocator_before_it_loads_the_state(tmp_path: Path, monk
     monkeypatch.setattr(server, "Server", StandIn)
     assert main(["serve", "--state", str(tmp_path / "state"), "--http", "off"]) == 0
     assert order == ["mmap threshold", "trim threshold", "server built", "served"]
+
+
+def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(tmp_path: Path) -> None:
+    """A daemon with nothing new to learn writes no checkpoint (the one on disk already holds its
+    state), so idle intervals and the stop neither rewrite it nor push the older checkpoints out of
+    the positions retention reads: with --journal-keep 0, a segment is retired only when no
+    checkpoint left on disk starts in it. (Before, three idle intervals made the newest position
+    the only one remembered, and the segments the checkpoints before it needed were deleted; and
+    after a restart, the positions of the checkpoints older than the one it resumed from were not
+    known, and their segments went at its first checkpoint.)"""
+    import zmq
+    from oddsmill.storage import list_checkpoints, read_checkpoint
+
+    learner = LearnerSettings(scale_warmup=200)
+    settings = ServerSettings(state_dir=tmp_path, http="off", segment_bytes=4096, journal_keep=0)
+
+    def each_checkpoint_has_its_segment() -> None:
+        segments = {p.name for p in list_journal(tmp_path)}
+        assert len(list_checkpoints(tmp_path)) == 3
+        for path in list_checkpoints(tmp_path):
+            assert read_checkpoint(path)["journal"]["segment"] in segments, path.name
+
+    ctx: zmq.Context = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://idle-checkpoints")
+    seeds = iter(range(40, 60))
+
+    def block(server: Server, n: int) -> None:
+        server.handle([[b"events", msgpack.packb(b)] for b in bodies(n, seed=next(seeds))], pub)
+
+    server = Server(settings, learner)
+    try:
+        for _ in range(4):
+            block(server, 120)
+            assert server.checkpoint() is not None
+        written = {p.name: p.stat().st_mtime_ns for p in list_checkpoints(tmp_path)}
+        before = server.last_checkpoint
+        newest = server.checkpoint()  # three idle intervals' worth, as the loop and the stop call it
+        assert server.last_checkpoint > before  # the state counts as checkpointed (an alert reads when)
+        assert server.checkpoint() == newest and server.checkpoint() == newest
+        assert newest is not None and newest.name == max(written)
+        assert {p.name: p.stat().st_mtime_ns for p in list_checkpoints(tmp_path)} == written  # none rewritten
+        block(server, 120)  # (a new segment: the checkpoints before a restart start in three)
+        last = server.checkpoint()
+        assert last is not None and last != newest  # something new: a checkpoint again
+    finally:
+        server.journal.close()
+    each_checkpoint_has_its_segment()
+    kept = {p.name for p in list_journal(tmp_path)}
+    assert "journal-000000000000.omj" not in kept  # (retention did retire the segments no checkpoint needs)
+
+    server = Server(settings, learner)  # a restart: it knows the position of the newest only
+    try:
+        assert server.checkpoint() == last  # nothing new since: the checkpoint it resumed from
+        for _ in range(3):
+            block(server, 120)
+            assert server.checkpoint() is not None
+            each_checkpoint_has_its_segment()
+    finally:
+        server.journal.close()
+        pub.close(0)
+        ctx.term()
+    assert not kept <= {p.name for p in list_journal(tmp_path)}  # once it knows them all, it retires again
+
+
+def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
+    """A journal segment gone from the middle (deleted by hand, lost with a disk) leaves records the
+    restart cannot learn: it says which, in an error, and counts on from the next segment's number,
+    so the segments it writes next still sort after the ones on disk."""
+    import zmq
+    from oddsmill.storage import list_checkpoints, read_checkpoint, segment_first
+
+    settings = ServerSettings(state_dir=tmp_path, http="off", segment_bytes=4096)
+    ctx: zmq.Context = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://missing-segment")
+    server = Server(settings)
+    try:
+        server.handle([[b"events", msgpack.packb(b)] for b in bodies(120, seed=70)], pub)
+        assert server.checkpoint() is not None
+        for seed in (71, 72, 73):
+            server.handle([[b"events", msgpack.packb(b)] for b in bodies(120, seed=seed)], pub)
+        total = server.records
+    finally:
+        server.journal.close()
+    (checkpoint,) = list_checkpoints(tmp_path)
+    position = read_checkpoint(checkpoint)["journal"]
+    segments = list_journal(tmp_path)
+    k = [p.name for p in segments].index(position["segment"])
+    assert len(segments) >= k + 3
+    gone, after = segments[k + 1], segments[k + 2]  # (one after the checkpoint's: a replay reads it)
+    lost = segment_first(after) - segment_first(gone)  # the records it held
+    gone.unlink()
+    with caplog.at_level("ERROR", logger="oddsmill"):
+        again = Server(settings)
+    try:
+        errors = [r.getMessage() for r in caplog.records if r.levelname == "ERROR"]
+        first, last = segment_first(gone), segment_first(after) - 1
+        assert errors == [
+            f"the journal lacks records {first} to {last} (a segment before {after.name} is gone, or was "
+            "not read to its end): the state resumes without them"
+        ]
+        assert again.records == total  # counted as journaled, though not learned
+        assert again.engine.learner.step < server.engine.learner.step
+        assert lost > 0
+    finally:
+        again.journal.close()
+        pub.close(0)
+        ctx.term()

@@ -343,7 +343,7 @@ class SnapshotCollector(Collector):
             ("oddsmill_pending_outcomes", "Scoring requests awaiting their outcome.", float(s.pending_outcomes)),
             (
                 "oddsmill_checkpoint_last_success_timestamp_seconds",
-                "When the last checkpoint was written.",
+                "When a checkpoint last held the live state (written, or already on disk when nothing changed since).",
                 s.last_checkpoint,
             ),
             (

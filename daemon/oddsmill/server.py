@@ -51,12 +51,15 @@ from .storage import (
     KEEP,
     JournalWriter,
     Read,
+    checkpoint_step,
     good_record_after,
     hold_state_dir,
+    list_checkpoints,
     list_journal,
     load_newest,
     read_journal,
     release_state_dir,
+    segment_first,
     write_checkpoint,
 )
 from .vocabulary import Vocabulary
@@ -285,8 +288,16 @@ class Server:
             run_logs(self, read_items(warm_start))
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
         self.journal = self._open_journal()
-        # journal positions of the checkpoints on disk, oldest first (retention reads the oldest)
-        self.positions: list[dict[str, Any]] = [self._loaded_position] if self._loaded_position else []
+        # journal positions of the checkpoints on disk, by step (a checkpoint's name), oldest first:
+        # retention reads the oldest
+        self.positions: dict[int, dict[str, Any]] = {}
+        # (records, step, path) of the newest checkpoint: while the live state is still at its
+        # records and step, it holds that state, and another would only write it again
+        self.newest: tuple[int, int, Path] | None = None
+        if self._loaded_position is not None and self._loaded_path is not None:
+            step = checkpoint_step(self._loaded_path)
+            self.positions[step] = self._loaded_position
+            self.newest = (int(self._loaded_position["records"]), step, self._loaded_path)
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
         self.checkpoint_begun = self.last_checkpoint  # when the newest checkpoint, written or not, began
@@ -383,6 +394,7 @@ class Server:
         s = self.settings
         hold_state_dir(s.state_dir)  # before anything is read or cut: no other process serves it
         found = load_newest(s.state_dir)
+        self._loaded_path: Path | None = None
         if found is None:
             if s.candidates:
                 self.race = Race(
@@ -392,6 +404,7 @@ class Server:
             engine = Engine(Learner(learner), s.window, s.pending_limit, s.pending_ttl)
             return engine, 0, None
         state, path = found
+        self._loaded_path = path
         if "race" in state:
             self.race = Race.from_state_dict(state["race"])
             engine = self.race.engine
@@ -426,6 +439,18 @@ class Server:
             if start_segment is not None and seg.name < start_segment:
                 continue
             skip_to = start_offset if seg.name == start_segment else 0
+            if skip_to == 0 and segment_first(seg) > self.records:
+                # A segment before this one is gone, or its end was not read (a damaged record): the
+                # records between are not learned. Counted on from the segment's own number, so
+                # that the names of the segments to come go on rising.
+                log.error(
+                    "the journal lacks records %d to %d (a segment before %s is gone, or was not read to its "
+                    "end): the state resumes without them",
+                    self.records,
+                    segment_first(seg) - 1,
+                    seg.name,
+                )
+                self.records = segment_first(seg)
             batch: list[tuple[float, Item]] = []
             events = 0  # in the batch (a block read by the fast path counts its rows)
             good = max(skip_to, len(JOURNAL_MAGIC) + 4)
@@ -508,10 +533,29 @@ class Server:
 
     def checkpoint(self) -> Path | None:
         """Write a checkpoint now (after the one being written, if any), as the loop does but
-        waiting for it; None (and an outage begins) when the state directory refuses it."""
+        waiting for it; None (and an outage begins) when the state directory refuses it. When the
+        newest checkpoint already holds the live state, its path, and nothing is written."""
         self.collect_checkpoint(wait=True)
+        if self.outage is None and self._holds_the_state():
+            assert self.newest is not None
+            self._still_held()
+            return self.newest[2]
         self.checkpoint_soon()
         return self.collect_checkpoint(wait=True)
+
+    def _holds_the_state(self) -> bool:
+        """Whether the newest checkpoint holds the live state: nothing journaled or learned since.
+        The state changes only with a journaled message, or with the events a warm start learns
+        (which move the step); a pending request expires at a message's arrival, not with time."""
+        newest = self.newest
+        return newest is not None and (newest[0], newest[1]) == (self.records, self.engine.learner.step)
+
+    def _still_held(self) -> None:
+        """A checkpoint due while the newest already holds the state: none is written, and the
+        state counts as checkpointed now (oddsmill_checkpoint_last_success_timestamp_seconds, which
+        an alert watches, says when the state on disk was last known to be the live one)."""
+        self.last_checkpoint = self.checkpoint_begun = time.time()
+        self.last_checkpoint_step = self.engine.learner.step
 
     def checkpoint_soon(self) -> None:
         """The loop's checkpoints: the state is taken here (copies, the loop stopped for that only:
@@ -523,6 +567,9 @@ class Server:
         (`cktime.py`, scratch, eight each). `collect_checkpoint` takes the result; a failed write or
         fsync begins an outage as a failed write in the loop does."""
         if self.writing is not None or self.outage is not None:
+            return
+        if self._holds_the_state():  # an idle interval: the checkpoint on disk is this state
+            self._still_held()
             return
         try:
             synced = self.journal.sync_soon()
@@ -583,7 +630,11 @@ class Server:
         return position, state, self.engine.learner.step
 
     def _checkpoint_written(self, path: Path, position: dict[str, Any], step: int) -> None:
-        self.positions = (self.positions + [position])[-KEEP:]
+        self.positions.pop(step, None)  # (a checkpoint of the same step replaced its file)
+        self.positions[step] = position
+        for old in list(self.positions)[:-KEEP]:
+            del self.positions[old]
+        self.newest = (int(position["records"]), step, path)
         self._retire_segments()
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = max(self.last_checkpoint_step, step)
@@ -592,12 +643,15 @@ class Server:
         log.info("checkpoint %s (step %d)", path.name, step)
 
     def _retire_segments(self) -> None:
-        """Delete journal segments wholly before the oldest kept checkpoint, but `journal_keep`."""
+        """Delete journal segments wholly before the oldest checkpoint on disk, but `journal_keep`:
+        none while a checkpoint on disk has a position this process has not seen (one an earlier
+        run wrote before the one this run resumed from), since it may start in any segment."""
         keep = self.settings.journal_keep
-        if keep < 0 or not self.positions:
+        on_disk = [checkpoint_step(p) for p in list_checkpoints(self.settings.state_dir)]
+        if keep < 0 or not on_disk or not set(on_disk) <= set(self.positions):
             return
-        oldest = self.positions[0]["segment"]
-        behind = [p for p in list_journal(self.settings.state_dir) if p.name < oldest]
+        oldest_segment = min(self.positions[step]["segment"] for step in on_disk)
+        behind = [p for p in list_journal(self.settings.state_dir) if p.name < oldest_segment]
         for path in behind[: len(behind) - keep] if keep else behind:
             path.unlink(missing_ok=True)
             log.info("retired journal segment %s", path.name)

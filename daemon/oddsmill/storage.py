@@ -201,7 +201,15 @@ def write_checkpoint(state_dir: Path, step: int, state: dict[str, Any], keep: in
 def list_checkpoints(state_dir: Path) -> list[Path]:
     """Checkpoints oldest first (by step, then by modification order)."""
     found = [p for p in state_dir.iterdir() if CHECKPOINT_RE.match(p.name)] if state_dir.is_dir() else []
-    return sorted(found, key=lambda p: int(CHECKPOINT_RE.match(p.name).group(1)))  # type: ignore[union-attr]
+    return sorted(found, key=checkpoint_step)
+
+
+def checkpoint_step(path: Path) -> int:
+    """The step a checkpoint's name carries."""
+    found = CHECKPOINT_RE.match(path.name)
+    if found is None:
+        raise ValueError(f"{path.name} is not a checkpoint's name")
+    return int(found.group(1))
 
 
 def read_checkpoint(path: Path) -> dict[str, Any]:
@@ -622,7 +630,16 @@ def good_record_after(data: bytes, start: int) -> int | None:
 
 def list_journal(state_dir: Path) -> list[Path]:
     found = [p for p in state_dir.iterdir() if JOURNAL_RE.match(p.name)] if state_dir.is_dir() else []
-    return sorted(found, key=lambda p: int(JOURNAL_RE.match(p.name).group(1)))  # type: ignore[union-attr]
+    return sorted(found, key=segment_first)
+
+
+def segment_first(path: Path) -> int:
+    """The number of the first record a journal segment holds (its name carries it: the count of
+    records journaled before it)."""
+    found = JOURNAL_RE.match(path.name)
+    if found is None:
+        raise ValueError(f"{path.name} is not a journal segment's name")
+    return int(found.group(1))
 
 
 def is_journal(path: Path) -> bool:
