@@ -8,6 +8,7 @@ method; storage, the replay engine and the command line sit around them.
 from __future__ import annotations
 
 import hashlib
+import time
 from pathlib import Path
 from typing import Any
 
@@ -66,16 +67,33 @@ def _say_when_compiling() -> None:
 
     class FirstCompile(event.Listener):
         said = False
+        depth = 0  # (a compile may start others inside it)
+        began = 0.0
 
         def on_start(self, ev: Any) -> None:
             if not self.said:
                 self.said = True
                 logging.getLogger("oddsmill").info(COMPILING)
+            if self.depth == 0:
+                self.began = time.monotonic()
+            self.depth += 1
 
         def on_end(self, ev: Any) -> None:
-            pass
+            global _compiling
+            self.depth -= 1
+            if self.depth == 0:
+                _compiling += time.monotonic() - self.began
 
     event.register("numba:compile", FirstCompile())  # type: ignore[no-untyped-call]
+
+
+_compiling = 0.0
+
+
+def compile_seconds() -> float:
+    """The seconds this process has spent compiling numba's functions (not loading them from the
+    cache): what a command that reports a rate leaves out of it."""
+    return _compiling
 
 
 _say_when_compiling()

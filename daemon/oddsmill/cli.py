@@ -160,10 +160,11 @@ def cmd_replay(args: argparse.Namespace) -> int:
     path = write_checkpoint(state, engine.learner.step, checkpoint_state(engine))
     m = engine.metrics
     rej = sum(engine.counters.rejected.values())
+    compiled = f", and {report.compiling:.0f} s compiling first" if report.compiling >= 0.5 else ""
     print(
         f"learned {engine.learner.step:,} events from {report.events:,} messages in "
         f"{report.epochs} epoch(s), {report.seconds:.1f} s "
-        f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s)"
+        f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s){compiled}"
     )
     if m.count:
         print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")

@@ -15,6 +15,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from . import compile_seconds
 from . import kernel as K
 from .encoding import Block, Rows
 from .engine import Engine, Rejection
@@ -38,7 +39,8 @@ STREAM_REASONS = frozenset({"unknown_outcome", "duplicate"})
 class ReplayReport:
     epochs: int
     events: int
-    seconds: float
+    seconds: float  # the replay's, without `compiling`
+    compiling: float = 0.0  # seconds spent compiling numba's code on the way (the first run only)
 
 
 def read_items(paths: list[str]) -> Iterator[tuple[float, Item, str | None]]:
@@ -145,7 +147,7 @@ def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) ->
     as the daemon would have seen the stream. Later passes learn the same events in the same order
     again; their scores would be in-sample, so they do not enter the progressive metrics. They rerun
     the first pass's encoded blocks through the kernel when these fit in memory."""
-    t0 = time.monotonic()
+    t0, c0 = time.monotonic(), compile_seconds()
     lr = engine.learner
     blocks: list[list[Block | Rows]] | None = []
     kept = 0
@@ -182,7 +184,8 @@ def replay(engine: Engine, paths: list[str], epochs: int, tail_average: bool) ->
         items += first
         bar(0)
         bar.done()
-    return ReplayReport(epochs, items, time.monotonic() - t0)
+    compiling = compile_seconds() - c0
+    return ReplayReport(epochs, items, time.monotonic() - t0 - compiling, compiling)
 
 
 def new_engine(settings: LearnerSettings, epochs: int, average_start_given: bool, **kw: Any) -> tuple[Engine, bool]:
