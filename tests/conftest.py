@@ -79,16 +79,16 @@ def loopback(state_dir: Path, **settings: Any) -> Any:
     return ServerSettings(state_dir=state_dir, **{**defaults, **settings})
 
 
-def handled_once(state_dir: Path, bodies: list[dict[str, Any]], learner: Any = None) -> Any:
+def handled_once(state_dir: Path, bodies: list[dict[str, Any]], learner: Any = None, **settings: Any) -> Any:
     """A daemon's `Server` on a fresh state directory (no sockets bound, no HTTP; `learner`, its
-    LearnerSettings) that has handled the bodies as one block, published into an inproc PUB, its
-    journal closed; returned."""
+    LearnerSettings; `settings`, more of its ServerSettings) that has handled the bodies as one
+    block, published into an inproc PUB, its journal closed; returned."""
     from oddsmill.server import Server, ServerSettings
 
     ctx: zmq.Context[Any] = zmq.Context()
     pub = ctx.socket(zmq.PUB)
     pub.bind(f"inproc://handled-once-{id(bodies)}")
-    server = Server(ServerSettings(state_dir=state_dir, http="off"), learner)
+    server = Server(ServerSettings(state_dir=state_dir, http="off", **settings), learner)
     try:
         server.handle([[b"events", msgpack.packb(b)] for b in bodies], pub)
     finally:

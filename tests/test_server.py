@@ -549,13 +549,15 @@ def test_the_journals_bytes_and_the_free_disk_are_exposed(tmp_path: Path) -> Non
     from tests.conftest import handled_once
 
     state = tmp_path / "s"
-    server = handled_once(state, [{"x": {"route_km": float(i)}, "y": i % 2} for i in range(50)])
+    # a block larger than a segment: the segment it went to, and the next one begun after it
+    server = handled_once(state, [{"x": {"route_km": float(i)}, "y": i % 2} for i in range(50)], segment_bytes=512)
     server._refresh()
     exposed = dict(
         line.split(" ", 1) for line in generate_latest(server.board.registry).decode().splitlines() if line[:1] != "#"
     )
-    segments = [p for p in state.iterdir() if p.name.startswith("journal-")]
-    assert segments and float(exposed["oddsmill_journal_bytes"]) == sum(os.path.getsize(p) for p in segments)
+    sizes = sorted(os.path.getsize(p) for p in state.iterdir() if p.name.startswith("journal-"))
+    assert len(sizes) == 2 and sizes[0] < sizes[1]  # (so neither alone is the sum)
+    assert float(exposed["oddsmill_journal_bytes"]) == sum(sizes)
     assert float(exposed["oddsmill_state_free_bytes"]) == pytest.approx(shutil.disk_usage(state).free, abs=64 << 20)
 
 
