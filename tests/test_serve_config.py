@@ -146,7 +146,9 @@ def test_serve_sets_the_allocator_before_it_loads_the_state(tmp_path: Path, monk
     assert order == ["mmap threshold", "trim threshold", "server built", "served"]
 
 
-def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(tmp_path: Path) -> None:
+def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
     """A daemon with nothing new to learn writes no checkpoint (the one on disk already holds its
     state), so idle intervals and the stop neither rewrite it nor push the older checkpoints out of
     the positions retention reads: with --journal-keep 0, a segment is retired only when no
@@ -181,8 +183,14 @@ def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(t
             assert server.checkpoint() is not None
         written = {p.name: p.stat().st_mtime_ns for p in list_checkpoints(tmp_path)}
         before = server.last_checkpoint
-        newest = server.checkpoint()  # three idle intervals' worth, as the loop and the stop call it
+        with caplog.at_level("INFO", logger="oddsmill"):
+            newest = server.checkpoint()  # three idle intervals' worth, as the loop and the stop call it
         assert server.last_checkpoint > before  # the state counts as checkpointed (an alert reads when)
+        assert newest is not None
+        assert (
+            caplog.messages[-1]
+            == f"checkpoint {newest.name} holds the state already (step {server.engine.learner.step})"
+        )
         assert server.checkpoint() == newest and server.checkpoint() == newest
         assert newest is not None and newest.name == max(written)
         assert {p.name: p.stat().st_mtime_ns for p in list_checkpoints(tmp_path)} == written  # none rewritten

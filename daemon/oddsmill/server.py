@@ -539,6 +539,7 @@ class Server:
         if self.outage is None and self._holds_the_state():
             assert self.newest is not None
             self._still_held()
+            log.info("checkpoint %s holds the state already (step %d)", self.newest[2].name, self.newest[1])
             return self.newest[2]
         self.checkpoint_soon()
         return self.collect_checkpoint(wait=True)
