@@ -25,6 +25,8 @@ class Page(HTMLParser):
         self.series: dict[str, int] = {}
         self.bins: list[dict[str, str]] = []
         self.bars: list[dict[str, str]] = []
+        self.bin_counts: list[tuple[float, float, str]] = []  # (x, y, text) of the counts beside the bins
+        self._count_at: tuple[float, float] | None = None
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         a = {k: v or "" for k, v in attrs}
@@ -38,6 +40,41 @@ class Page(HTMLParser):
             self.bins.append(a)
         if "bar" in a.get("class", "").split():
             self.bars.append(a)
+        if "bin-count" in a.get("class", "").split():
+            self._count_at = (float(a["x"]), float(a["y"]))
+
+    def handle_data(self, data: str) -> None:
+        if self._count_at is not None:
+            self.bin_counts.append((*self._count_at, data))
+            self._count_at = None
+
+
+def counts_apart(page: Page, counts: list[int]) -> int:
+    """The counts written beside the reliability chart's bins: the largest band's among them, each
+    a band's, none over another count or another band's circle (a count's box is about 7 units a
+    character wide and 12 high at the page's legend size). Returns how many bands went without one."""
+    labels = page.bin_counts
+    assert labels and labels[0][2] == f"{max(counts):,}"
+    assert {text for _, _, text in labels} <= {f"{n:,}" for n in counts}
+    boxes = [(x, y - 12, x + 7 * len(text), y) for x, y, text in labels]
+    circles = [
+        (
+            float(c["cx"]) - float(c["r"]),
+            float(c["cy"]) - float(c["r"]),
+            float(c["cx"]) + float(c["r"]),
+            float(c["cy"]) + float(c["r"]),
+        )
+        for c in page.bins
+    ]
+
+    def cross(p: tuple[float, ...], q: tuple[float, ...]) -> bool:
+        return p[0] < q[2] and q[0] < p[2] and p[1] < q[3] and q[1] < p[3]
+
+    for i, box in enumerate(boxes):
+        assert not any(cross(box, q) for q in boxes[:i]), f"the count {labels[i][2]} crosses another"
+        # (its own circle ends 10 units before it, left of the box: crossing none is the test)
+        assert not any(cross(box, c) for c in circles), f"the count {labels[i][2]} crosses a circle"
+    return len(counts) - len(labels)
 
 
 @pytest.fixture(scope="module")
@@ -78,6 +115,7 @@ def test_the_page_shows_the_figures_of_api_status(fed: FedDaemon, tmp_path: Path
     for drawn, b in zip(page.bins, used, strict=True):
         assert float(drawn["data-predicted"]) == b["mean_predicted"]
         assert float(drawn["data-observed"]) == b["observed_rate"]
+    counts_apart(page, [b["count"] for b in used])
     assert [b["data-feature"] for b in page.bars] == [c["feature"] for c in status["coefficients"]]
     assert len(page.bars) == min(12, status["features"])
 
