@@ -191,6 +191,9 @@ def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(
             caplog.messages[-1]
             == f"checkpoint {newest.name} holds the state already (step {server.engine.learner.step})"
         )
+        before = server.last_checkpoint
+        server.checkpoint_soon()  # the loop's call, when --checkpoint-seconds have passed
+        assert server.writing is None and server.last_checkpoint > before
         assert server.checkpoint() == newest and server.checkpoint() == newest
         assert newest is not None and newest.name == max(written)
         assert {p.name: p.stat().st_mtime_ns for p in list_checkpoints(tmp_path)} == written  # none rewritten
