@@ -223,7 +223,8 @@ def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(
 def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:
     """A journal segment gone from the middle (deleted by hand, lost with a disk) leaves records the
     restart cannot learn: it says which, in an error, and counts on from the next segment's number,
-    so the segments it writes next still sort after the ones on disk."""
+    so the segments it writes next still sort after the ones on disk. Reading the directory as a
+    replay's input says so too."""
     import zmq
     from oddsmill.storage import list_checkpoints, read_checkpoint, segment_first
 
@@ -264,3 +265,26 @@ def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, capl
         again.journal.close()
         pub.close(0)
         ctx.term()
+
+    # `replay` and `fit` reading the directory say the same, and that its journal starts late once
+    # its first segment is gone too (as --journal-keep retires them)
+    from oddsmill.logs import read_bodies
+
+    segments[0].unlink()
+    caplog.clear()
+    with caplog.at_level("WARNING", logger="oddsmill"):
+        read = sum(1 for _ in read_bodies([str(tmp_path)]))
+    start = segment_first(segments[1])
+    assert read == total - start - lost
+    assert [(r.levelname, r.getMessage()) for r in caplog.records] == [
+        (
+            "WARNING",
+            f"{tmp_path}: its journal starts at record {start} (the segments before were retired by "
+            "--journal-keep, or removed): the events before it are not read",
+        ),
+        (
+            "ERROR",
+            f"{tmp_path}: its journal lacks records {first} to {last} (a segment before {after.name} is gone, "
+            "or was not read to its end): they are not read",
+        ),
+    ]

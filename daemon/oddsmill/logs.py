@@ -9,13 +9,16 @@ from __future__ import annotations
 
 import gzip
 import json
+import logging
 import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
 from .errors import InputFileError, JournalError
-from .storage import is_journal, list_journal, read_journal
+from .storage import is_journal, list_journal, read_journal, segment_first
+
+log = logging.getLogger("oddsmill")
 
 
 def read_bodies(paths: list[str]) -> Iterator[tuple[float, Any, str]]:
@@ -25,8 +28,28 @@ def read_bodies(paths: list[str]) -> Iterator[tuple[float, Any, str]]:
             segments = list_journal(path)
             if not segments:
                 raise InputFileError(name, None, "a directory with no journal segments")
+            if segment_first(segments[0]) > 0:
+                log.warning(
+                    "%s: its journal starts at record %d (the segments before were retired by --journal-keep, "
+                    "or removed): the events before it are not read",
+                    name,
+                    segment_first(segments[0]),
+                )
+            read = segment_first(segments[0])  # records read so far, counted as the segments' names count them
             for seg in segments:
-                yield from _journal(seg)
+                if segment_first(seg) > read:
+                    log.error(
+                        "%s: its journal lacks records %d to %d (a segment before %s is gone, or was not read to "
+                        "its end): they are not read",
+                        name,
+                        read,
+                        segment_first(seg) - 1,
+                        seg.name,
+                    )
+                read = segment_first(seg)
+                for item in _journal(seg):
+                    read += 1
+                    yield item
         elif not path.exists():
             raise InputFileError(name, None, "no such file")
         elif name.endswith((".jsonl", ".jsonl.gz", ".json.gz", ".ndjson")):
