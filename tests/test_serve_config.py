@@ -81,6 +81,47 @@ def test_score_body_bytes() -> None:
     assert body["p"] == pytest.approx(p, rel=1e-15)
 
 
+def test_a_warm_start_is_checkpointed_at_once_and_not_applied_again(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    """A daemon whose command line or configuration names --warm-start logs learned them again at
+    every restart (56,000 events after the second start on the demo's 28,000). The warm start
+    begins a new state only: a state directory with a model says so and learns nothing again. Its
+    events are in no journal, so a checkpoint holds them before anything is served: a daemon
+    killed before its first checkpoint lost them, and a restart then learned the journal first."""
+    import zmq
+    from oddsmill.storage import list_checkpoints
+
+    learner = LearnerSettings()
+    settings = ServerSettings(state_dir=tmp_path, http="off")
+    first = Server(settings, learner, [str(DEMO)])
+    assert [p.name for p in list_checkpoints(tmp_path)] == ["checkpoint-000000028000.omc"]
+    ctx: zmq.Context = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://warm-again")
+    try:
+        first.handle([[b"events", msgpack.packb(b)] for b in bodies(60, seed=3)], pub)
+    finally:
+        first.journal.close()  # and then kill -9: no checkpoint after the warm start's
+        pub.close(0)
+        ctx.term()
+    with caplog.at_level("WARNING", logger="oddsmill"):
+        again = Server(settings, learner, [str(DEMO)])
+    try:
+        live, resumed = first.engine.state_dict(), again.engine.state_dict()
+        assert again.engine.learner.step == first.engine.learner.step > 28_000
+        for key in ("scalars", "slots", "flags"):
+            assert resumed["learner"][key].tobytes() == live["learner"][key].tobytes(), key
+        assert resumed["metrics"]["sum"] == live["metrics"]["sum"]
+        assert caplog.messages == [
+            f"the state directory {tmp_path} holds a model already (step {again.engine.learner.step:,}): "
+            "--warm-start begins a new state and is not applied again (send the logs to the daemon to learn "
+            "them on top)"
+        ]
+    finally:
+        again.journal.close()
+
+
 def test_journal_record_bytes() -> None:
     # PROTOCOL 6: u32 LE length | u32 LE CRC-32 of the payload | msgpack [arrival_time, body as received]
     raw = msgpack.packb({"x": {"a": 1}})

@@ -282,11 +282,22 @@ class Server:
         self._loaded_position = position
         self._journal_end: tuple[Path, int] | None = None
         self._replay_journal(position)
-        if warm_start:
+        warmed = False
+        if warm_start and (self._loaded_path is not None or self.records):
+            # A warm start begins a state: on one that exists it would learn the logs again at
+            # every restart of a daemon whose command line or configuration names them.
+            log.warning(
+                "the state directory %s holds a model already (step %s): --warm-start begins a new state "
+                "and is not applied again (send the logs to the daemon to learn them on top)",
+                settings.state_dir,
+                f"{self.engine.learner.step:,}",
+            )
+        elif warm_start:
             from .offline import read_items, run_logs
 
             run_logs(self, read_items(warm_start))
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
+            warmed = True
         self.journal = self._open_journal()
         # journal positions of the checkpoints on disk, by step (a checkpoint's name), oldest first:
         # retention reads the oldest
@@ -333,6 +344,10 @@ class Server:
         self.taking_in = False  # whether the next wake-up may be one compiled call (`_take_in`)
         self.columns = columnar.ColumnReader()  # blocks of columnar messages, read in compiled code
         self._refresh()
+        if warmed:
+            # The warm start's events are in no journal: a checkpoint holds them before anything is
+            # served, so that a crash cannot lose them, nor a restart learn the journal before them.
+            self.checkpoint()
 
     def _refresh(self) -> None:
         now = time.monotonic()
