@@ -329,3 +329,32 @@ def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, capl
             "or was not read to its end): they are not read",
         ),
     ]
+
+
+def test_serve_refuses_settings_other_than_the_states_and_changes_nothing(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A state keeps the settings it was created with (its journal replays with them); `serve` on
+    it with another --l2, --window or --pending-ttl used the state's and said nothing. It now
+    refuses (exit 2) naming each, before the directory is touched; the same values, or none, go."""
+    state = tmp_path / "s"
+    assert main(["replay", str(DEMO), "--state", str(state), "--l2", "0.001"]) == 0
+    capsys.readouterr()
+    before = {p.name: p.stat().st_mtime_ns for p in state.iterdir()}
+    cfg = tmp_path / "oddsmill.toml"
+    cfg.write_text("[server]\npending_ttl = 3600.0\n")
+    code = main(
+        ["serve", "--state", str(state), "--http", "off", "--l2", "0.01", "--window", "500", "--config", str(cfg)]
+    )
+    assert code == 2
+    err = capsys.readouterr().err
+    assert err.strip() == (
+        f"oddsmill: the state in {state} (from checkpoint-000000028000.omc) keeps the settings it was created "
+        "with, so that its journal replays exactly: window = 10000, not 500, pending_ttl = 604800.0, not 3600.0, "
+        "l2 = 0.001, not 0.01. Serve it without them, or learn with them in a new state directory (replay its "
+        "logs there)"
+    )
+    assert {p.name: p.stat().st_mtime_ns for p in state.iterdir()} == before
+    # the same values, given or not: it resumes (and the directory is free again after the refusal)
+    for asked in ({"l2": 0.001, "window": 10_000}, {}):
+        server = Server(ServerSettings(state_dir=state, http="off"), LearnerSettings(), asked=asked)
+        assert server.engine.learner.settings.l2 == 0.001
+        server.close()

@@ -73,8 +73,16 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
     """(LearnerSettings, whether average_start was given, window) from --config and flags."""
     from .settings import LearnerSettings
 
+    values, window = learner_values(args)
+    return LearnerSettings(**values), "average_start" in values, 10_000 if window is None else window
+
+
+def learner_values(args: argparse.Namespace) -> tuple[dict[str, Any], int | None]:
+    """(the learner settings given by --config and flags, by name; the window, None if not given)."""
+    from .settings import LearnerSettings
+
     values: dict[str, Any] = {}
-    window = 10_000
+    window = None
     if args.config:
         table = read_config(args.config).get("learner", {})
         known = {f.name for f in fields(LearnerSettings)} | {"window"}
@@ -91,9 +99,9 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
             values[flag] = v
     if args.window is not None:
         window = args.window
-    if isinstance(window, bool) or not isinstance(window, int) or window < 1:
+    if window is not None and (isinstance(window, bool) or not isinstance(window, int) or window < 1):
         raise ConfigError(f"window must be an integer >= 1, got {window!r}")
-    return LearnerSettings(**values), "average_start" in values, window
+    return values, window
 
 
 def candidates_of(args: argparse.Namespace, base: Any) -> list[Any]:
@@ -460,11 +468,15 @@ SERVER_KEYS = {  # TOML key in [server] -> its flag's dest (the same name)
 }
 
 
-def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None]:
-    """(ServerSettings, LearnerSettings, warm-start logs) from defaults, the [server] table, flags."""
+def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None, dict[str, Any]]:
+    """(ServerSettings, LearnerSettings, warm-start logs, the settings given that a state keeps:
+    see `Server`'s `asked`) from defaults, the [server] table, flags."""
     from .server import ServerSettings
 
     learner, _, window = learner_settings(args)
+    asked, given_window = learner_values(args)
+    if given_window is not None:
+        asked["window"] = given_window
     values: dict[str, Any] = {"state": "state", "warm_start": None}
     if args.config:
         for key, value in read_config(args.config).get("server", {}).items():
@@ -486,7 +498,9 @@ def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None
     state = values.pop("state")
     warm = values.pop("warm_start")
     candidates = tuple(candidates_of(args, learner))
-    return ServerSettings(state_dir=Path(state), window=window, candidates=candidates, **values), learner, warm
+    asked.update({k: values[k] for k in ("pending_limit", "pending_ttl") if k in values})
+    server = ServerSettings(state_dir=Path(state), window=window, candidates=candidates, **values)
+    return server, learner, warm, asked
 
 
 def print_config(server: Any, learner: Any) -> None:
@@ -526,13 +540,13 @@ def cmd_serve(args: argparse.Namespace) -> int:
     from .learner import give_back_large_frees, keep_freed_heap
     from .server import Server
 
-    settings, learner, warm = serve_settings(args)
+    settings, learner, warm, asked = serve_settings(args)
     if args.print_config:
         print_config(settings, learner)
         return 0
     give_back_large_frees()  # before the state is loaded: its arrays then leave no free heap behind
     keep_freed_heap()  # and the heap's free top kept for the allocations that follow
-    server = Server(settings, learner, warm)
+    server = Server(settings, learner, warm, asked)
     stop = threading.Event()
 
     def on_signal(signum: int, _frame: object) -> None:

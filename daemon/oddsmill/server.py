@@ -12,6 +12,7 @@ uninterrupted run on the same messages, bit for bit.
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import ipaddress
 import logging
@@ -273,11 +274,21 @@ def check_bind(name: str, address: str, allow_insecure: bool, curve: bool = Fals
 
 class Server:
     def __init__(
-        self, settings: ServerSettings, learner: LearnerSettings | None = None, warm_start: list[str] | None = None
+        self,
+        settings: ServerSettings,
+        learner: LearnerSettings | None = None,
+        warm_start: list[str] | None = None,
+        asked: dict[str, Any] | None = None,
     ) -> None:
+        """`asked`: the settings the user gave (flags, --config), by name: learner settings, and
+        `window`, `pending_limit`, `pending_ttl`. A state that exists keeps those it was created
+        with, so that its journal replays exactly; one asked for with another value is refused
+        (ConfigError) before anything in the directory changes."""
         self.settings = settings
         self.race: Race | None = None
         self.engine, self.records, position = self._load(learner or LearnerSettings())
+        if asked and self._loaded_path is not None:
+            self._refuse_other_settings(asked)
         warm_up(self.engine.learner.settings)
         self._loaded_position = position
         self._journal_end: tuple[Path, int] | None = None
@@ -428,6 +439,35 @@ class Server:
         position = state.get("journal")
         log.info("resuming from %s at step %d", path.name, engine.learner.step)
         return engine, int(position["records"]) if position else 0, position
+
+    def _refuse_other_settings(self, asked: dict[str, Any]) -> None:
+        """ConfigError, and the directory let go of, when a setting asked for differs from the
+        loaded state's. (A race's learner settings are its candidates'; only its engine-wide ones
+        are compared.)"""
+        engine = self.engine
+        kept: dict[str, Any] = {
+            "window": engine.metrics.window,
+            "pending_limit": engine.pending_limit,
+            "pending_ttl": engine.pending_ttl,
+        }
+        learner_keys = {f.name for f in dataclasses.fields(LearnerSettings)}
+        wanted = {k: v for k, v in asked.items() if k in kept}
+        if self.race is None:
+            given = {k: v for k, v in asked.items() if k in learner_keys}
+            normal = LearnerSettings(**given)  # (validated, and each value as the state keeps it)
+            kept.update({k: getattr(engine.learner.settings, k) for k in given})
+            wanted.update({k: getattr(normal, k) for k in given})
+        differ = [k for k in wanted if wanted[k] != kept[k]]
+        if not differ:
+            return
+        release_state_dir(self.settings.state_dir)
+        assert self._loaded_path is not None
+        raise ConfigError(
+            f"the state in {self.settings.state_dir} (from {self._loaded_path.name}) keeps "
+            "the settings it was created with, so that its journal replays exactly: "
+            + ", ".join(f"{k} = {kept[k]!r}, not {wanted[k]!r}" for k in differ)
+            + ". Serve it without them, or learn with them in a new state directory (replay its logs there)"
+        )
 
     def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Score and learn a block: the engine's results, or in a race the serving candidate's."""
