@@ -364,8 +364,9 @@ def test_ctrl_c_while_serve_compiles_stops_it_without_a_traceback(tmp_path: Path
     """The first start compiles numba's code for about two minutes. Ctrl-C then raised
     KeyboardInterrupt wherever the interpreter was, and when that was a callback of numba's
     compiler it came out as a page of traceback (a RuntimeError, "no compiled object yet": one of
-    three interrupts at 10, 25 and 40 s here). It now stops the daemon at once, saying so in one
-    line, with 130 as the shell expects of an interrupt. (The traceback depends on where the
+    three interrupts at 10, 25 and 40 s here). While numba compiles, an interrupt now stops the
+    process at once, saying so in one line, with 130 as the shell expects of an interrupt (every
+    command: `serve` is the one tried here). (The traceback depends on where the
     interrupt lands, so this test cannot provoke it each time; the line fails it without the
     handler. A cache directory of its own, empty, makes this start compile.)"""
     import os
@@ -393,4 +394,4 @@ def test_ctrl_c_while_serve_compiles_stops_it_without_a_traceback(tmp_path: Path
     finally:
         proc.kill()
     assert "Traceback" not in rest and "Error" not in rest, rest
-    assert rest.strip().splitlines()[-1] == "oddsmill: signal 2 while starting: stopped before serving"
+    assert rest.strip().splitlines()[-1] == "oddsmill: interrupted while compiling: stopped"

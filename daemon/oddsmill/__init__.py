@@ -8,6 +8,8 @@ method; storage, the replay engine and the command line sit around them.
 from __future__ import annotations
 
 import hashlib
+import signal
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -69,6 +71,7 @@ def _say_when_compiling() -> None:
         said = False
         depth = 0  # (a compile may start others inside it)
         began = 0.0
+        handler: Any = None  # SIGINT's handler before the compile, in the main thread
 
         def on_start(self, ev: Any) -> None:
             if not self.said:
@@ -76,6 +79,8 @@ def _say_when_compiling() -> None:
                 logging.getLogger("oddsmill").info(COMPILING)
             if self.depth == 0:
                 self.began = time.monotonic()
+                if threading.current_thread() is threading.main_thread():
+                    self.handler = signal.signal(signal.SIGINT, _interrupted_compiling)
             self.depth += 1
 
         def on_end(self, ev: Any) -> None:
@@ -83,11 +88,27 @@ def _say_when_compiling() -> None:
             self.depth -= 1
             if self.depth == 0:
                 _compiling += time.monotonic() - self.began
+                if self.handler is not None:
+                    signal.signal(signal.SIGINT, self.handler)
+                    self.handler = None
 
     event.register("numba:compile", FirstCompile())  # type: ignore[no-untyped-call]
 
 
 _compiling = 0.0
+
+
+def _interrupted_compiling(signum: int, _frame: Any) -> None:
+    """Ctrl-C while numba compiles (the first command's two minutes): raised there, the interrupt
+    could land in a callback of numba's compiler and come out as a page of traceback ("no compiled
+    object yet"). The process stops at once instead, as a kill would stop it (every file the
+    package writes is safe against that), with 130, as the shell expects of an interrupt."""
+    import logging
+    import os
+
+    logging.getLogger("oddsmill").info("interrupted while compiling: stopped")
+    logging.shutdown()
+    os._exit(128 + signum)
 
 
 def compile_seconds() -> float:

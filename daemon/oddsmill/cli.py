@@ -9,7 +9,6 @@ import argparse
 import gc
 import json
 import logging
-import os
 import sys
 import tomllib
 from collections.abc import Iterator
@@ -547,16 +546,6 @@ def cmd_serve(args: argparse.Namespace) -> int:
         return 0
     give_back_large_frees()  # before the state is loaded: its arrays then leave no free heap behind
     keep_freed_heap()  # and the heap's free top kept for the allocations that follow
-
-    def starting(signum: int, _frame: object) -> None:
-        # Ctrl-C while the state loads or numba compiles (the first start's two minutes): the
-        # interrupt, raised inside numba's compiler, came out as a page of traceback. Nothing is
-        # served yet and the state directory is crash-safe: stop at once, as a kill would.
-        log.info("signal %d while starting: stopped before serving", signum)
-        logging.shutdown()
-        os._exit(128 + signum)
-
-    signal.signal(signal.SIGINT, starting)
     server = Server(settings, learner, warm, asked)
     stop = threading.Event()
 
