@@ -176,7 +176,7 @@ def test_serve_sets_the_allocator_before_it_loads_the_state(tmp_path: Path, monk
     class StandIn:
         clean_exit = True
 
-        def __init__(self, settings: object, learner_settings: object, warm: object) -> None:
+        def __init__(self, settings: object, learner_settings: object, warm: object, asked: object) -> None:
             order.append("server built")
 
         def serve(self, stop: object) -> None:
