@@ -74,7 +74,10 @@ def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
     from .settings import LearnerSettings
 
     values, window = learner_values(args)
-    return LearnerSettings(**values), "average_start" in values, 10_000 if window is None else window
+    return LearnerSettings(**values), "average_start" in values, WINDOW if window is None else window
+
+
+WINDOW = 10_000  # labelled events in the metrics' window, unless --window or [learner] window says
 
 
 def learner_values(args: argparse.Namespace) -> tuple[dict[str, Any], int | None]:
@@ -472,9 +475,11 @@ def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None
     """(ServerSettings, LearnerSettings, warm-start logs, the settings given that a state keeps:
     see `Server`'s `asked`) from defaults, the [server] table, flags."""
     from .server import ServerSettings
+    from .settings import LearnerSettings
 
-    learner, _, window = learner_settings(args)
     asked, given_window = learner_values(args)
+    learner = LearnerSettings(**asked)
+    window = WINDOW if given_window is None else given_window
     if given_window is not None:
         asked["window"] = given_window
     values: dict[str, Any] = {"state": "state", "warm_start": None}
