@@ -113,6 +113,45 @@ def test_a_daemon_journal_with_refused_messages_replays_and_counts_them(tmp_path
     assert json.loads(out)["step"] == server.engine.learner.step == 2
 
 
+def test_replay_refuses_a_directory_that_holds_a_state_and_changes_nothing(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """`replay LOG --state DIR` on a directory a daemon had served wrote its checkpoint beside the
+    daemon's, and the next `serve` resumed from it and learned the daemon's whole journal again on
+    top: the demo's 28,000 events became 84,000 after a replay of two epochs (run by hand). Beside
+    a checkpoint of a later step it would be passed over, saying nothing. A replay now refuses a
+    directory with a checkpoint or a journal segment (exit 2), and leaves its files as they were."""
+    from oddsmill.server import Server, ServerSettings
+
+    from tests.conftest import handled_once
+
+    served = tmp_path / "served"
+    handled_once(served, [{"x": {"route_km": float(k)}, "y": k % 2} for k in range(40)])
+    replayed = tmp_path / "replayed"
+    assert run(["replay", str(DEMO), "--state", str(replayed)], capsys)[0] == 0
+    for state, held in (
+        (served, "a journal of 1 segment"),
+        (replayed, "checkpoint-000000028000.omc"),
+    ):
+        before = {p.name: p.stat().st_mtime_ns for p in state.iterdir() if p.name != "lock"}
+        for extra in ([], ["--candidates", "auto"]):
+            code, out, err = run(["replay", str(DEMO), "--state", str(state), "--epochs", "1", *extra], capsys)
+            assert code == 2 and out == ""
+            assert err.strip() == (
+                f"oddsmill: {state} holds a state already ({held}): replay begins a new one. Give a new or "
+                "empty directory (to learn a state's journal again with other settings: replay DIR --state "
+                "NEW-DIR), or send the logs to the daemon that serves it"
+            )
+            assert {p.name: p.stat().st_mtime_ns for p in state.iterdir() if p.name != "lock"} == before
+    # the served state resumes as it was: its 40 events, learned once (and the directory is free)
+    server = Server(ServerSettings(state_dir=served, http="off"))
+    try:
+        assert server.engine.learner.step == 40
+    finally:
+        server.close()
+    # a directory that exists but holds no state (made by hand, or a lock left) is taken
+    (tmp_path / "empty").mkdir()
+    assert run(["replay", str(DEMO), "--state", str(tmp_path / "empty")], capsys)[0] == 0
+
+
 @pytest.mark.parametrize(
     "argv,needle",
     [

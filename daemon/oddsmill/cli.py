@@ -163,6 +163,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     state = Path(args.state)
     if state.exists():  # a directory a daemon serves is refused before the replay, not after it
         hold_state_dir(state)
+        refuse_a_state(state)
     if candidates:
         return replay_race(args, candidates, window)
     engine, tail = new_engine(settings, args.epochs, given, window=window)
@@ -188,6 +189,29 @@ def cmd_replay(args: argparse.Namespace) -> int:
         print(full)
     print(f"checkpoint {path}")
     return 0
+
+
+def refuse_a_state(state: Path) -> None:
+    """ConfigError, and the directory let go of, when `state` holds a state already. A replay
+    begins a state: its checkpoint beside another state's would be resumed from with that state's
+    journal learned again on top (a served directory's whole journal: every event twice), or be
+    passed over for a checkpoint of a later step, and it could push that state's checkpoints out."""
+    from .storage import list_checkpoints, list_journal, release_state_dir
+
+    checkpoints, segments = list_checkpoints(state), list_journal(state)
+    if not checkpoints and not segments:
+        return
+    release_state_dir(state)
+    held = []
+    if checkpoints:
+        held.append(f"checkpoints to {checkpoints[-1].name}" if len(checkpoints) > 1 else checkpoints[0].name)
+    if segments:
+        held.append(f"a journal of {len(segments)} segment{'s' if len(segments) > 1 else ''}")
+    raise ConfigError(
+        f"{state} holds a state already ({', '.join(held)}): replay begins a new one. Give a new or "
+        "empty directory (to learn a state's journal again with other settings: replay DIR --state "
+        "NEW-DIR), or send the logs to the daemon that serves it"
+    )
 
 
 def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) -> int:
