@@ -360,6 +360,76 @@ def test_serve_refuses_settings_other_than_the_states_and_changes_nothing(tmp_pa
         server.close()
 
 
+def test_serve_refuses_a_race_other_than_the_states_and_changes_nothing(  # type: ignore[no-untyped-def]
+    tmp_path: Path, capsys, monkeypatch
+) -> None:
+    """A race keeps its candidates and its rule for switching as a single learner keeps its
+    settings. `serve --candidates auto` on a single learner's state served the single learner, and
+    other candidates, margin or patience on a race's state were dropped for the state's, all in
+    silence; `--race-margin` on a new state with no race was ignored. Each is now refused (exit 2)
+    naming what differs, before the directory is touched; the state's own values, or none, go."""
+    import oddsmill.server
+    from oddsmill.race import auto_candidates
+
+    served: list[Server] = []
+
+    def serve_not(self: Server, stop: object) -> None:  # resuming is all the passing cases need
+        served.append(self)
+        self.close()
+
+    monkeypatch.setattr(oddsmill.server.Server, "serve", serve_not)
+    monkeypatch.setattr("signal.signal", lambda *a: None)
+    monkeypatch.setattr("gc.freeze", lambda: None)
+    single, race, named = tmp_path / "single", tmp_path / "race", tmp_path / "named"
+    cfg = tmp_path / "named.toml"
+    cfg.write_text('[candidates.steady]\neta0 = 0.5\n\n[candidates.quick]\nschedule = "constant"\neta0 = 0.05\n')
+    assert main(["replay", str(DEMO), "--state", str(single)]) == 0
+    assert main(["replay", str(DEMO), "--state", str(race), "--candidates", "auto"]) == 0
+    assert main(["replay", str(DEMO), "--state", str(named), "--config", str(cfg)]) == 0
+    capsys.readouterr()
+    auto = [c.name for c in auto_candidates(LearnerSettings())]
+    quicker = tmp_path / "quicker.toml"
+    quicker.write_text(cfg.read_text().replace("eta0 = 0.05", "eta0 = 0.1"))
+    refused = [
+        (single, ["--candidates", "auto"], f"candidates = none (a single learner), not {auto!r}"),
+        (single, ["--race-patience", "500"], "race_patience = none (a single learner), not 500"),
+        (race, ["--candidates", "auto", "--eta0", "0.25"], f"candidates = {auto!r}, not ["),
+        (race, ["--config", str(cfg)], f"candidates = {auto!r}, not ['steady', 'quick']"),
+        (race, ["--candidates", "auto", "--race-margin", "0.05"], "race_margin = 0.02, not 0.05"),
+        (race, ["--l2", "0.001"], f"candidates = {auto!r}, not none (a single learner)"),
+        (named, ["--config", str(quicker)], "candidates.quick.eta0 = 0.05, not 0.1"),
+    ]
+    for state, flags, says in refused:
+        # (the file "lock" takes the pid of each process that holds the directory, refused or not)
+        before = {p.name: p.stat().st_mtime_ns for p in state.iterdir() if p.name != "lock"}
+        assert main(["serve", "--state", str(state), "--http", "off", *flags]) == 2, flags
+        err = capsys.readouterr().err.strip()
+        assert err.startswith(f"oddsmill: the state in {state} (from checkpoint-000000028000.omc) keeps"), err
+        assert says in err and err.count(" = ") == 1, (flags, err)
+        assert {p.name: p.stat().st_mtime_ns for p in state.iterdir() if p.name != "lock"} == before
+    # a new state: a margin or patience without candidates, refused before the directory is made
+    assert main(["serve", "--state", str(tmp_path / "new"), "--http", "off", "--race-margin", "0.05"]) == 2
+    assert capsys.readouterr().err.strip() == (
+        "oddsmill: race_margin set when a race switches: give --candidates auto or [candidates.NAME] tables in "
+        "--config as well, or leave them out"
+    )
+    assert not (tmp_path / "new").exists()
+    # the state's own values, or none: each resumes what it holds
+    resumed = [
+        (single, ["--l2", "0.0001"], None),
+        (race, ["--candidates", "auto", "--race-margin", "0.02", "--race-patience", "2000"], auto),
+        (race, [], auto),
+        (named, ["--config", str(cfg)], ["steady", "quick"]),
+        (named, [], ["steady", "quick"]),
+    ]
+    for state, flags, names in resumed:
+        argv = ["serve", "--state", str(state), "--http", "off", "--ingest", "tcp://127.0.0.1:*"]
+        assert main([*argv, "--scores", "tcp://127.0.0.1:*", *flags]) == 0, capsys.readouterr().err
+        server = served.pop()
+        assert (server.race.names if server.race else None) == names
+        assert server.engine.learner.step == 28_000
+
+
 def test_ctrl_c_while_serve_compiles_stops_it_without_a_traceback(tmp_path: Path) -> None:
     """The first start compiles numba's code for about two minutes. Ctrl-C then raised
     KeyboardInterrupt wherever the interpreter was, and when that was a callback of numba's

@@ -527,7 +527,11 @@ def serve_settings(args: argparse.Namespace) -> tuple[Any, Any, list[str] | None
     state = values.pop("state")
     warm = values.pop("warm_start")
     candidates = tuple(candidates_of(args, learner))
-    asked.update({k: values[k] for k in ("pending_limit", "pending_ttl") if k in values})
+    asked.update(
+        {k: values[k] for k in ("pending_limit", "pending_ttl", "race_margin", "race_patience") if k in values}
+    )
+    if candidates:
+        asked["candidates"] = candidates
     server = ServerSettings(state_dir=Path(state), window=window, candidates=candidates, **values)
     return server, learner, warm, asked
 

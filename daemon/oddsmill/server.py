@@ -69,6 +69,8 @@ log = logging.getLogger("oddsmill")
 
 # a columnar message's first key, as the client library and most producers pack it (cols, then rows)
 COLUMNAR_FIRST = (b"\xa4cols", b"\xa4rows")
+RACE_RULE = {"race_margin", "race_patience"}  # when a race switches: settings of a race alone
+SINGLE = "none (a single learner)"  # what a state that is no race keeps of a race's settings
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
 POLL_MS = 100  # the loop wakes at least this often to see a stop request or a due checkpoint
 CHORES_SECONDS = 0.01  # the loop's checks of time run at most this often (a few us each wake-up)
@@ -283,9 +285,16 @@ class Server:
         """`asked`: the settings the user gave (flags, --config), by name: learner settings, and
         `window`, `pending_limit`, `pending_ttl`. A state that exists keeps those it was created
         with, so that its journal replays exactly; one asked for with another value is refused
-        (ConfigError) before anything in the directory changes."""
+        (ConfigError) before anything in the directory changes. `race_margin` and
+        `race_patience` are refused on a new state that is no race, and `candidates` are given
+        when a race is asked for."""
         self.settings = settings
         self.race: Race | None = None
+        if asked and not settings.candidates and RACE_RULE & asked.keys() and not list_checkpoints(settings.state_dir):
+            raise ConfigError(
+                f"{' and '.join(sorted(RACE_RULE & asked.keys()))} set when a race switches: give --candidates auto "
+                "or [candidates.NAME] tables in --config as well, or leave them out"
+            )
         self.engine, self.records, position = self._load(learner or LearnerSettings())
         if asked and self._loaded_path is not None:
             self._refuse_other_settings(asked)
@@ -442,9 +451,10 @@ class Server:
 
     def _refuse_other_settings(self, asked: dict[str, Any]) -> None:
         """ConfigError, and the directory let go of, when a setting asked for differs from the
-        loaded state's. (A race's learner settings are its candidates'; only its engine-wide ones
-        are compared.)"""
-        engine = self.engine
+        loaded state's. A single learner's learner settings are compared one by one; a race's are
+        its candidates', compared whole when candidates are given (learner settings given without
+        them ask for a single learner)."""
+        engine, race = self.engine, self.race
         kept: dict[str, Any] = {
             "window": engine.metrics.window,
             "pending_limit": engine.pending_limit,
@@ -452,20 +462,42 @@ class Server:
         }
         learner_keys = {f.name for f in dataclasses.fields(LearnerSettings)}
         wanted = {k: v for k, v in asked.items() if k in kept}
-        if self.race is None:
-            given = {k: v for k, v in asked.items() if k in learner_keys}
+        given = {k: v for k, v in asked.items() if k in learner_keys}
+        rule = {k: asked[k] for k in sorted(RACE_RULE & asked.keys())}
+        candidates: tuple[Candidate, ...] | None = asked.get("candidates")
+        if race is None:
             normal = LearnerSettings(**given)  # (validated, and each value as the state keeps it)
             kept.update({k: getattr(engine.learner.settings, k) for k in given})
             wanted.update({k: getattr(normal, k) for k in given})
+            kept.update({k: SINGLE for k in rule})
+            wanted.update(rule)
+            if candidates:
+                kept["candidates"], wanted["candidates"] = SINGLE, [c.name for c in candidates]
+        else:
+            kept.update({"race_margin": race.margin, "race_patience": race.patience})
+            wanted.update(rule)
+            if candidates and [c.name for c in candidates] != race.names:
+                kept["candidates"], wanted["candidates"] = list(race.names), [c.name for c in candidates]
+            elif candidates:
+                for c, e in zip(candidates, race.engines, strict=True):
+                    have, want = e.learner.settings.to_dict(), c.settings.to_dict()
+                    for k in (k for k in have if have[k] != want[k]):
+                        kept[f"candidates.{c.name}.{k}"], wanted[f"candidates.{c.name}.{k}"] = have[k], want[k]
+            elif given:  # learner settings without candidates: a single learner is asked for
+                kept["candidates"], wanted["candidates"] = list(race.names), SINGLE
         differ = [k for k in wanted if wanted[k] != kept[k]]
         if not differ:
             return
         release_state_dir(self.settings.state_dir)
         assert self._loaded_path is not None
+
+        def shown(v: Any) -> str:
+            return v if v is SINGLE else repr(v)
+
         raise ConfigError(
             f"the state in {self.settings.state_dir} (from {self._loaded_path.name}) keeps "
             "the settings it was created with, so that its journal replays exactly: "
-            + ", ".join(f"{k} = {kept[k]!r}, not {wanted[k]!r}" for k in differ)
+            + ", ".join(f"{k} = {shown(kept[k])}, not {shown(wanted[k])}" for k in differ)
             + ". Serve it without them, or learn with them in a new state directory (replay its logs there)"
         )
 
