@@ -331,10 +331,19 @@ def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, capl
     ]
 
 
-def test_serve_refuses_settings_other_than_the_states_and_changes_nothing(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+def test_serve_refuses_settings_other_than_the_states_and_changes_nothing(  # type: ignore[no-untyped-def]
+    tmp_path: Path, capsys, monkeypatch
+) -> None:
     """A state keeps the settings it was created with (its journal replays with them); `serve` on
     it with another --l2, --window or --pending-ttl used the state's and said nothing. It now
     refuses (exit 2) naming each, before the directory is touched; the same values, or none, go."""
+    import oddsmill.server
+
+    def serve_not(self: Server, stop: object) -> None:  # a refusal missed fails here, not hangs
+        self.close()
+        raise AssertionError("served a state whose settings differ from those asked for")
+
+    monkeypatch.setattr(oddsmill.server.Server, "serve", serve_not)
     state = tmp_path / "s"
     assert main(["replay", str(DEMO), "--state", str(state), "--l2", "0.001"]) == 0
     capsys.readouterr()
