@@ -196,9 +196,9 @@ def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(
     checkpoint left on disk starts in it. (Before, three idle intervals made the newest position
     the only one remembered, and the segments the checkpoints before it needed were deleted; and
     after a restart, the positions of the checkpoints older than the one it resumed from were not
-    known, and their segments went at its first checkpoint.)"""
+    known, and their segments went at its first checkpoint.) A restart reads those positions."""
     import zmq
-    from oddsmill.storage import list_checkpoints, read_checkpoint
+    from oddsmill.storage import checkpoint_step, list_checkpoints, read_checkpoint
 
     learner = LearnerSettings(scale_warmup=200)
     settings = ServerSettings(state_dir=tmp_path, http="off", segment_bytes=4096, journal_keep=0)
@@ -247,18 +247,37 @@ def test_checkpoints_of_an_idle_daemon_keep_every_older_checkpoint_restartable(
     kept = {p.name for p in list_journal(tmp_path)}
     assert "journal-000000000000.omj" not in kept  # (retention did retire the segments no checkpoint needs)
 
-    server = Server(settings, learner)  # a restart: it knows the position of the newest only
+    # a restart reads the positions of the checkpoints the run before left (it waited for three
+    # checkpoints of its own before, and retired nothing meanwhile), or of none it cannot read
+    server = Server(settings, learner)
     try:
         assert server.checkpoint() == last  # nothing new since: the checkpoint it resumed from
-        for _ in range(3):
+        assert sorted(server.positions) == [checkpoint_step(p) for p in list_checkpoints(tmp_path)]
+        for path in list_checkpoints(tmp_path):  # (read without the model, as a whole read has them)
+            assert server.positions[checkpoint_step(path)] == read_checkpoint(path)["journal"]
+        block(server, 120)
+        assert server.checkpoint() is not None
+        each_checkpoint_has_its_segment()
+        assert not kept <= {p.name for p in list_journal(tmp_path)}  # retired at its first checkpoint
+        for _ in range(2):
             block(server, 120)
             assert server.checkpoint() is not None
             each_checkpoint_has_its_segment()
     finally:
         server.journal.close()
+    middle = list_checkpoints(tmp_path)[1]
+    middle.write_bytes(middle.read_bytes()[:-1])  # damaged: its position cannot be read
+    kept = {p.name for p in list_journal(tmp_path)}
+    server = Server(settings, learner)
+    try:
+        assert checkpoint_step(middle) not in server.positions
+        block(server, 120)
+        assert server.checkpoint() is not None  # (the oldest goes: three checkpoints are kept)
+        assert kept <= {p.name for p in list_journal(tmp_path)}  # nothing retired on a position unknown
+    finally:
+        server.journal.close()
         pub.close(0)
         ctx.term()
-    assert not kept <= {p.name for p in list_journal(tmp_path)}  # once it knows them all, it retires again
 
 
 def test_a_restart_names_the_records_a_missing_segment_held(tmp_path: Path, caplog: pytest.LogCaptureFixture) -> None:

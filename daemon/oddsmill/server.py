@@ -52,6 +52,7 @@ from .storage import (
     KEEP,
     JournalWriter,
     Read,
+    checkpoint_position,
     checkpoint_step,
     good_record_after,
     hold_state_dir,
@@ -329,6 +330,13 @@ class Server:
             step = checkpoint_step(self._loaded_path)
             self.positions[step] = self._loaded_position
             self.newest = (int(self._loaded_position["records"]), step, self._loaded_path)
+        if settings.journal_keep >= 0:  # the positions of the checkpoints an earlier run left
+            for path in list_checkpoints(settings.state_dir):
+                if checkpoint_step(path) not in self.positions:
+                    found = checkpoint_position(path)  # (None: unreadable, and retention waits)
+                    if found is not None:
+                        self.positions[checkpoint_step(path)] = found
+            self.positions = dict(sorted(self.positions.items()))
         self.last_checkpoint = time.time()
         self.last_checkpoint_step = self.engine.learner.step
         self.checkpoint_begun = self.last_checkpoint  # when the newest checkpoint, written or not, began
@@ -732,8 +740,8 @@ class Server:
 
     def _retire_segments(self) -> None:
         """Delete journal segments wholly before the oldest checkpoint on disk, but `journal_keep`:
-        none while a checkpoint on disk has a position this process has not seen (one an earlier
-        run wrote before the one this run resumed from), since it may start in any segment."""
+        none while a checkpoint on disk has a position this process does not know (one it could
+        not read, or a replay's, which has none), since it may start in any segment."""
         keep = self.settings.journal_keep
         on_disk = [checkpoint_step(p) for p in list_checkpoints(self.settings.state_dir)]
         if keep < 0 or not on_disk or not set(on_disk) <= set(self.positions):

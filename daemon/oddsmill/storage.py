@@ -86,6 +86,20 @@ def encode_checkpoint(state: dict[str, Any]) -> bytes:
 
 
 def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
+    payload = _verified_payload(data, name)
+    try:
+        state = msgpack.unpackb(payload, ext_hook=_ext_hook, raw=False, strict_map_key=False)
+    except CheckpointError:
+        raise
+    except Exception as e:
+        raise CheckpointError(f"{name}: payload does not parse ({e})") from None
+    if not isinstance(state, dict):
+        raise CheckpointError(f"{name}: payload is not a map")
+    return state
+
+
+def _verified_payload(data: bytes, name: str) -> bytes:
+    """A checkpoint's payload, once its magic string, version, length and SHA-256 are right."""
     if not data.startswith(MAGIC):
         raise CheckpointError(f"{name}: not an oddsmill checkpoint (no magic string)")
     head = data[len(MAGIC) : len(MAGIC) + _HEADER.size]
@@ -99,15 +113,7 @@ def decode_checkpoint(data: bytes, name: str = "checkpoint") -> dict[str, Any]:
         raise CheckpointError(f"{name}: payload is {len(payload)} bytes, header says {length} (truncated?)")
     if hashlib.sha256(payload).digest() != digest:
         raise CheckpointError(f"{name}: checksum mismatch (the file is damaged)")
-    try:
-        state = msgpack.unpackb(payload, ext_hook=_ext_hook, raw=False, strict_map_key=False)
-    except CheckpointError:
-        raise
-    except Exception as e:
-        raise CheckpointError(f"{name}: payload does not parse ({e})") from None
-    if not isinstance(state, dict):
-        raise CheckpointError(f"{name}: payload is not a map")
-    return state
+    return payload
 
 
 # -- the state directory's holder ------------------------------------------------------------------
@@ -218,6 +224,28 @@ def read_checkpoint(path: Path) -> dict[str, Any]:
     except OSError as e:
         raise CheckpointError(f"{path}: cannot read ({e.strerror})") from None
     return decode_checkpoint(data, str(path))
+
+
+def checkpoint_position(path: Path) -> dict[str, Any] | None:
+    """The journal position a checkpoint covers (its "journal": segment, offset, records), read
+    without building its model: the file is verified whole, then only the top map's "journal"
+    value is unpacked (the model's arrays are skipped). None when it holds none (a replay's) or
+    cannot be read (retention then waits, as for a position it never saw)."""
+    try:
+        payload = _verified_payload(path.read_bytes(), str(path))
+        unpacker = msgpack.Unpacker(raw=False, strict_map_key=False, max_buffer_size=max(len(payload), 1))
+        unpacker.feed(payload)
+        for _ in range(unpacker.read_map_header()):
+            if unpacker.unpack() != "journal":
+                unpacker.skip()
+                continue
+            position = unpacker.unpack()
+            if not isinstance(position, dict) or not isinstance(position.get("segment"), str):
+                return None
+            return position if isinstance(position.get("records"), int) else None
+    except (OSError, CheckpointError, ValueError, msgpack.UnpackException):
+        return None
+    return None
 
 
 def load_newest(state_dir: Path) -> tuple[dict[str, Any], Path] | None:
