@@ -156,6 +156,35 @@ def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
     again.journal.close()
 
 
+def test_a_port_taken_stops_serve_with_its_journal_closed(tmp_path: Path) -> None:
+    """`serve` opens its journal, reserving a segment's 64 MiB, before it binds. When a port was
+    taken it stopped with the error and the reservation held (`du` 64 MiB for a 6 MB segment, seen
+    by hand), and the journal was never closed. Now it is closed however `serve` ends: the room is
+    given back and the directory let go of."""
+    import fcntl
+    import socket
+    import threading
+
+    from oddsmill.errors import ConfigError
+
+    from tests.conftest import handled_once
+
+    handled = tmp_path / "s"
+    handled_once(handled, bodies(50, seed=3)).close()
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", 0))
+        taken.listen()
+        port = taken.getsockname()[1]
+        server = Server(loopback(handled, http=f"127.0.0.1:{port}"))
+        (segment,) = list_journal(handled)
+        assert segment.stat().st_blocks * 512 >= 64 << 20  # reserved while open
+        with pytest.raises(ConfigError, match=f"cannot serve HTTP on 127.0.0.1:{port} .Address already in use"):
+            server.serve(threading.Event())
+    assert segment.stat().st_blocks * 512 < 1 << 20  # given back
+    with open(handled / "lock") as lock:  # the directory is free: another holder's flock is granted
+        fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+
+
 def test_serve_sets_the_allocator_before_it_loads_the_state(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
     """`oddsmill serve` sets glibc's two thresholds (learner.give_back_large_frees, then
     learner.keep_freed_heap) before it builds the server, which loads the state: set after, the

@@ -754,6 +754,15 @@ class Server:
 
     # -- the loop ----------------------------------------------------------------------------------
     def serve(self, stop: threading.Event, context: zmq.Context[Any] | None = None) -> None:
+        """Bind, then learn and answer until `stop` is set. The journal is closed however this
+        ends (a port taken, an error in the loop): its segment gives back the room it reserved, and
+        the directory is let go of."""
+        try:
+            self._serve(stop, context)
+        finally:
+            self.close()
+
+    def _serve(self, stop: threading.Event, context: zmq.Context[Any] | None) -> None:
         s = self.settings
         ctx = context or zmq.Context.instance()
         kind = zmq.SUB if s.ingest_kind == "sub" else zmq.PULL
@@ -876,7 +885,6 @@ class Server:
                 httpd.server_close()
             if auth is not None:
                 auth.stop()
-        self.close()
 
     def close(self) -> None:
         """Close the journal (unless an outage has abandoned it) and let go of the state directory:
