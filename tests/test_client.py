@@ -102,6 +102,45 @@ def test_send_command_streams_a_log(daemon, tmp_path: Path) -> None:  # type: ig
     assert server.engine.counters.lost == 0
 
 
+def test_send_reads_a_file_whole_before_it_sends_any_of_it(daemon, tmp_path: Path, capsys, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """`send` of a file with a bad line sent the lines before it, then stopped (exit 2): sent again
+    once mended, those were learned twice (one of two lines learned, by hand). A file is now read
+    whole first, and a line that is not JSON or not a map stops it with nothing sent. stdin is
+    sent as it comes, so there the lines before are sent, and the error says how many."""
+    import io
+    import json
+    import time
+
+    from oddsmill.cli import main
+
+    server, ctx = daemon
+    good = [json.dumps({"x": x, "y": y}) for x, y in sparse_stream(30, seed=8)]
+
+    def learned(n: int) -> None:
+        deadline = time.monotonic() + 10
+        while server.engine.learner.step < n and time.monotonic() < deadline:
+            time.sleep(0.05)  # waiting on another thread's progress, with a hard deadline
+        time.sleep(0.3)  # (room for any more to arrive)
+        assert server.engine.learner.step == n
+
+    for bad, says in (('{"x": ', "not JSON (Expecting value at column 7)"), ("[1, 2]", "a message must be a map")):
+        log = tmp_path / "dispatches.jsonl"
+        log.write_text("\n".join([*good, bad, *good]) + "\n")
+        assert main(["send", str(log), "--to", server.bound["ingest"]]) == 2
+        assert capsys.readouterr().err.strip() == f"oddsmill: {log}:31: {says}"
+    log.write_text("\n".join(good[:5]) + "\n")
+    assert main(["send", str(log), "--to", server.bound["ingest"]]) == 0
+    assert capsys.readouterr().err.startswith("sent 5 events")
+    learned(5)  # the mended file's five, and none of the refused files'
+    monkeypatch.setattr("sys.stdin", io.StringIO("\n".join([*good[:3], "{", *good]) + "\n"))
+    assert main(["send", "-", "--to", server.bound["ingest"]]) == 2
+    assert capsys.readouterr().err.strip() == (
+        "oddsmill: stdin:4: not JSON (Expecting property name enclosed in double quotes at column 2); "
+        "the 3 messages before it were sent"
+    )
+    learned(8)
+
+
 def test_listen_command_prints_scores_as_json(daemon, capsys) -> None:  # type: ignore[no-untyped-def]
     import json
 

@@ -604,9 +604,10 @@ def _stdin_bodies() -> Iterator[tuple[float, Any, str]]:
     for n, line in enumerate(sys.stdin, 1):
         if line.strip():
             try:
-                yield 0.0, json.loads(line), f"stdin:{n}"
+                body = json.loads(line.rstrip("\r\n"))  # (without it, an error at the end is put on a line after)
             except json.JSONDecodeError as e:
                 raise InputFileError("stdin", n, f"not JSON ({e.msg} at column {e.colno})") from None
+            yield 0.0, body, f"stdin:{n}"
 
 
 def cmd_send(args: argparse.Namespace) -> int:
@@ -622,9 +623,11 @@ def cmd_send(args: argparse.Namespace) -> int:
         raise UsageError(f"--batch must be >= 1, got {args.batch}")
     if args.wait <= 0:
         raise UsageError(f"--wait must be > 0, got {args.wait}")
+    if args.file != "-":
+        _check_messages(args.file)
     source = _stdin_bodies() if args.file == "-" else read_bodies([args.file])
-    # the first body before connecting: a file that is missing or not a log is said at once, not
-    # after --wait seconds without a daemon
+    # the first body before connecting: stdin that is not a log is said at once, not after --wait
+    # seconds without a daemon
     first = next(source, None)
     curve = _client_curve(args)
     t0 = time.monotonic()
@@ -662,8 +665,32 @@ def cmd_send(args: argparse.Namespace) -> int:
                         time.sleep(ahead)
     except TimeoutError:
         raise nobody from None
+    except InputFileError as e:  # (stdin, read as it comes: what came before the bad line is sent)
+        before = "the message before it was" if sent == 1 else f"the {sent:,} messages before it were"
+        raise InputFileError(e.path, e.line, f"{e.problem}; {before} sent") from None
     print(f"sent {sent:,} events to {args.to} in {time.monotonic() - t0:.1f} s", file=sys.stderr)
     return 0
+
+
+def _check_messages(name: str) -> None:
+    """Read a file whole before `send` sends any of it: a line that is not a message stops it
+    with nothing sent (sent up to that line, the file sent again once mended would repeat the
+    lines before it). The pass that sends says what the reading logs (a state directory's
+    journal with segments missing), so this one keeps quiet."""
+    from .logs import read_bodies
+
+    quiet = logging.getLogger("oddsmill")
+
+    def silent(_record: logging.LogRecord) -> bool:
+        return False
+
+    quiet.addFilter(silent)
+    try:
+        for _, body, where in read_bodies([name]):
+            if not isinstance(body, dict):
+                raise InputFileError(where, None, "a message must be a map")
+    finally:
+        quiet.removeFilter(silent)
 
 
 def _client_curve(args: argparse.Namespace) -> Any:

@@ -69,7 +69,7 @@ def _jsonl(path: Path) -> Iterator[tuple[float, Any, str]]:
                 if not line.strip():
                     continue
                 try:
-                    body = json.loads(line)
+                    body = json.loads(line.rstrip("\r\n"))  # (without it, an error at the end is put on a line after)
                 except json.JSONDecodeError as e:
                     raise InputFileError(str(path), lineno, f"not JSON ({e.msg} at column {e.colno})") from None
                 yield now, body, f"{path}:{lineno}"
