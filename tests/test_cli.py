@@ -520,6 +520,27 @@ def test_a_fit_too_large_for_the_memory_says_so(free: int | None, monkeypatch, c
     )
 
 
+def test_inspect_of_a_daemon_before_its_first_checkpoint_says_what_is_there(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """A daemon writes its first checkpoint after --checkpoint-seconds or at its stop; before that
+    (or killed before it), `inspect`, `report` and `fit --against` said only "no checkpoint in this
+    directory", as of an empty one, though the journal holds what it learned."""
+    from tests.conftest import handled_once
+
+    handled_once(tmp_path / "live", [{"x": {"route_km": float(k)}, "y": k % 2} for k in range(40)]).close()
+    size = (tmp_path / "live" / "journal-000000000000.omj").stat().st_size
+    for argv in (["inspect", str(tmp_path / "live")], ["report", str(tmp_path / "live"), "--out", "r.html"]):
+        code, out, err = run(argv, capsys)
+        assert code == 2 and out == ""
+        assert err.strip() == (
+            f"oddsmill: {tmp_path / 'live'}: no checkpoint yet, but a journal (1 segment, {size:,} bytes): "
+            "`serve` learns it when it starts on this directory, and writes a checkpoint every "
+            "--checkpoint-seconds and when it stops"
+        )
+    (tmp_path / "empty").mkdir()
+    code, _, err = run(["inspect", str(tmp_path / "empty")], capsys)
+    assert code == 2 and err.strip() == f"oddsmill: {tmp_path / 'empty'}: no checkpoint in this directory"
+
+
 def test_inspect_says_how_far_the_journal_is_ahead_of_the_checkpoint(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     """A state directory inspected while its daemon serves: the newest checkpoint's model, which
     showed step 0 after a start with nothing to say that the daemon had learned more. Now the

@@ -264,12 +264,21 @@ def load_state(target: str) -> tuple[Any, float, Any, dict[str, Any] | None]:
     or None) of a state directory or a checkpoint file; in a race, the engine is the serving
     candidate's."""
     from .engine import Engine
-    from .storage import load_newest, read_checkpoint
+    from .storage import list_journal, load_newest, read_checkpoint
 
     p = Path(target)
     if p.is_dir():
         found = load_newest(p)
         if found is None:
+            segments = list_journal(p)
+            if segments:  # a daemon that has not written its first checkpoint yet, or was killed first
+                size = sum(seg.stat().st_size for seg in segments)
+                raise CheckpointError(
+                    f"{target}: no checkpoint yet, but a journal ({len(segments)} segment"
+                    f"{'s' if len(segments) > 1 else ''}, {size:,} bytes): `serve` learns it when it "
+                    "starts on this directory, and writes a checkpoint every --checkpoint-seconds and "
+                    "when it stops"
+                )
             raise CheckpointError(f"{target}: no checkpoint in this directory")
         state, _ = found
     elif p.exists():
