@@ -434,6 +434,23 @@ def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer,
     class Handler(BaseHTTPRequestHandler):
         head = False
 
+        def version_string(self) -> str:
+            """The Server header: not Python's version, which tells a scanner more."""
+            return "oddsmill"
+
+        def _read_only(self) -> None:
+            """Any other method: 405 with the methods allowed (http.server's own answer is 501,
+            "not implemented", which says the server could, some day)."""
+            body = b"read only: GET or HEAD\n"
+            self.send_response(405)
+            self.send_header("Allow", "GET, HEAD")
+            self.send_header("Content-Type", "text/plain; charset=utf-8")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        do_POST = do_PUT = do_DELETE = do_PATCH = do_OPTIONS = _read_only  # noqa: N815 (the names http.server calls)
+
         def do_HEAD(self) -> None:  # noqa: N802
             """GET's status and headers without the body: load balancers and uptime checks ask
             /healthz this way."""
