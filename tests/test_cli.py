@@ -541,6 +541,30 @@ def test_inspect_of_a_daemon_before_its_first_checkpoint_says_what_is_there(tmp_
     assert code == 2 and err.strip() == f"oddsmill: {tmp_path / 'empty'}: no checkpoint in this directory"
 
 
+def test_a_replay_whose_checkpoint_cannot_be_written_says_so_in_one_line(  # type: ignore[no-untyped-def]
+    tmp_path: Path, capsys, monkeypatch
+) -> None:
+    """A full disk under `replay`'s checkpoint gave a traceback ending in OSError (ENOSPC, seen on a
+    100 KiB tmpfs). Now one line (exit 1) says the events learned are not saved, and no partial
+    file is left. (The disk is filled here by an fsync that fails as a full disk's does.)"""
+    import errno
+    import os
+
+    def full(fd: int) -> None:
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(os, "fsync", full)
+    for extra in ([], ["--candidates", "auto"]):
+        state = tmp_path / f"s{len(extra)}"
+        code, out, err = run(["replay", str(DEMO), "--state", str(state), *extra], capsys)
+        assert code == 1 and "checkpoint" not in out
+        assert err.strip() == (
+            f"oddsmill: cannot write the checkpoint into {state} (No space left on device): the 28,000 events "
+            "learned are not saved"
+        )
+        assert sorted(p.name for p in state.iterdir()) == ["lock"]
+
+
 def test_inspect_says_how_far_the_journal_is_ahead_of_the_checkpoint(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     """A state directory inspected while its daemon serves: the newest checkpoint's model, which
     showed step 0 after a start with nothing to say that the daemon had learned more. Now the

@@ -154,7 +154,7 @@ def read_config(path: str) -> dict[str, Any]:
 # -- replay ----------------------------------------------------------------------------------------
 def cmd_replay(args: argparse.Namespace) -> int:
     from .offline import new_engine, replay
-    from .storage import hold_state_dir, write_checkpoint
+    from .storage import hold_state_dir
 
     if args.epochs < 1:
         raise UsageError(f"--epochs must be >= 1, got {args.epochs}")
@@ -169,7 +169,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     engine, tail = new_engine(settings, args.epochs, given, window=window)
     report = replay(engine, args.logs, args.epochs, tail)
     hold_state_dir(state)
-    path = write_checkpoint(state, engine.learner.step, checkpoint_state(engine))
+    path = save_replay(state, engine.learner.step, checkpoint_state(engine))
     m = engine.metrics
     rej = sum(engine.counters.rejected.values())
     compiled = f", and {report.compiling:.0f} s compiling first" if report.compiling >= 0.5 else ""
@@ -214,11 +214,25 @@ def refuse_a_state(state: Path) -> None:
     )
 
 
+def save_replay(state_dir: Path, step: int, state: dict[str, Any]) -> Path:
+    """A replay's checkpoint, written; a failure (a full disk, a directory not writable) is one
+    line (OddsmillError: exit 1), not a traceback, and leaves no partial file."""
+    from .storage import write_checkpoint
+
+    try:
+        return write_checkpoint(state_dir, step, state)
+    except OSError as e:
+        raise OddsmillError(
+            f"cannot write the checkpoint into {state_dir} ({e.strerror or e}): the {step:,} events learned "
+            "are not saved"
+        ) from None
+
+
 def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) -> int:
     """`replay --candidates`: the race on a log, offline; the table, and a checkpoint serve resumes."""
     from .offline import read_items, run_logs
     from .race import Race
-    from .storage import hold_state_dir, write_checkpoint
+    from .storage import hold_state_dir
 
     if args.epochs != 1:
         raise UsageError("--candidates races over one pass of the logs: leave out --epochs")
@@ -227,7 +241,7 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
     state = checkpoint_state(race.engine)
     state["race"] = race.state_dict(compact=True)
     hold_state_dir(Path(args.state))
-    path = write_checkpoint(Path(args.state), race.engine.learner.step, state)
+    path = save_replay(Path(args.state), race.engine.learner.step, state)
     if args.json:
         print(json.dumps({"candidates": race.table(), "switches": race.switches}, indent=2))
         return 0
