@@ -565,6 +565,26 @@ def test_a_replay_whose_checkpoint_cannot_be_written_says_so_in_one_line(  # typ
         assert sorted(p.name for p in state.iterdir()) == ["lock"]
 
 
+def test_a_reader_that_stops_early_ends_the_command_quietly(tmp_path: Path) -> None:
+    """`oddsmill inspect STATE | head -2` printed a traceback (BrokenPipeError) once `head` had its
+    lines, and so did `fit` (seen by hand). A command whose stdout reader has gone now stops with
+    exit 1 and nothing on stderr, as the Python documentation advises (the signal module's note on
+    SIGPIPE). The reader here is gone before the first line is written."""
+    import subprocess
+    import sys
+
+    assert main(["replay", str(DEMO), "--state", str(tmp_path / "s")]) == 0
+    for argv in (["prometheus", "rules"], ["inspect", str(tmp_path / "s"), "--top", "50"]):
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "oddsmill.cli", *argv], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True
+        )
+        assert proc.stdout is not None and proc.stderr is not None
+        proc.stdout.close()
+        err = proc.stderr.read()
+        assert proc.wait(120) == 1, err
+        assert "Traceback" not in err and "Exception ignored" not in err, err
+
+
 def test_inspect_says_how_far_the_journal_is_ahead_of_the_checkpoint(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     """A state directory inspected while its daemon serves: the newest checkpoint's model, which
     showed step 0 after a start with nothing to say that the daemon had learned more. Now the

@@ -9,6 +9,7 @@ import argparse
 import gc
 import json
 import logging
+import os
 import sys
 import tomllib
 from collections.abc import Iterator
@@ -1043,6 +1044,13 @@ def main(argv: list[str] | None = None) -> int:
         return 1
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # the reader of stdout went away (`oddsmill inspect STATE | head`): stop quietly, as the
+        # Python documentation advises (the signal module's note on SIGPIPE), with stdout pointed
+        # at the null device so that the interpreter's flush at exit does not fail once more
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
 
 
 if __name__ == "__main__":
