@@ -467,8 +467,8 @@ def test_serve_refuses_a_race_other_than_the_states_and_changes_nothing(  # type
     # a new state: a margin or patience without candidates, refused before the directory is made
     assert main(["serve", "--state", str(tmp_path / "new"), "--http", "off", "--race-margin", "0.05"]) == 2
     assert capsys.readouterr().err.strip() == (
-        "oddsmill: race_margin set when a race switches: give --candidates auto or [candidates.NAME] tables in "
-        "--config as well, or leave them out"
+        "oddsmill: race_margin sets when a race switches, and without candidates there is no race: give "
+        "--candidates auto or [candidates.NAME] tables in --config as well, or leave it out"
     )
     assert not (tmp_path / "new").exists()
     # the state's own values, or none: each resumes what it holds

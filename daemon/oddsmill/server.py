@@ -291,10 +291,13 @@ class Server:
         when a race is asked for."""
         self.settings = settings
         self.race: Race | None = None
-        if asked and not settings.candidates and RACE_RULE & asked.keys() and not list_checkpoints(settings.state_dir):
+        rule = sorted(RACE_RULE & (asked or {}).keys())
+        if rule and not settings.candidates and not list_checkpoints(settings.state_dir):
+            one = len(rule) == 1
             raise ConfigError(
-                f"{' and '.join(sorted(RACE_RULE & asked.keys()))} set when a race switches: give --candidates auto "
-                "or [candidates.NAME] tables in --config as well, or leave them out"
+                f"{' and '.join(rule)} {'sets' if one else 'set'} when a race switches, and without candidates "
+                "there is no race: give --candidates auto or [candidates.NAME] tables in --config as well, or "
+                f"leave {'it' if one else 'them'} out"
             )
         self.engine, self.records, position = self._load(learner or LearnerSettings())
         if asked and self._loaded_path is not None:
