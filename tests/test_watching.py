@@ -384,3 +384,31 @@ def test_report_to_a_directory_that_takes_no_file_is_one_line(tmp_path: Path, ca
     assert capsys.readouterr().err.strip() == (
         "oddsmill: --out '/proc/oddsmill-report.html': cannot write (No such file or directory)"
     )
+
+
+def test_a_report_the_disk_cannot_hold_leaves_the_earlier_one(tmp_path: Path, capsys, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """On a full disk (a 100 KiB tmpfs, by hand) `report` said so in one line, but left an empty
+    file where the earlier report had been. It now writes beside it and puts the file in place
+    only when whole: the earlier report stays, and no part of a file is left. (The disk is
+    filled here by a write that stops half way, as a full disk's does.)"""
+    import errno
+    import os
+
+    log = tmp_path / "few.jsonl"
+    log.write_text("".join(f'{{"x": {{"stops": {k % 5}}}, "y": {k % 2}}}\n' for k in range(50)))
+    assert run_cli("replay", str(log), "--state", str(tmp_path / "s"))[0] == 0
+    out = tmp_path / "r.html"
+    assert run_cli("report", str(tmp_path / "s"), "--out", str(out))[0] == 0
+    earlier = out.read_bytes()
+    capsys.readouterr()
+    real = Path.write_bytes
+
+    def full(self: Path, data: bytes) -> int:
+        real(self, data[: len(data) // 2])
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(Path, "write_bytes", full)
+    assert run_cli("report", str(tmp_path / "s"), "--out", str(out))[0] == 2
+    assert capsys.readouterr().err.strip() == f"oddsmill: --out {str(out)!r}: cannot write (No space left on device)"
+    assert out.read_bytes() == earlier
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["few.jsonl", "r.html", "s"]

@@ -9,7 +9,9 @@ matplotlib (the optional `report` extra), for documents that cannot hold a web p
 from __future__ import annotations
 
 import json
+import os
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -35,7 +37,19 @@ def write_html(doc: dict[str, Any], out: Path) -> None:
     # "</" cannot appear inside a script element, so the JSON escapes it
     data = json.dumps(doc).replace("</", "<\\/").encode()
     embedded = b"<script>window.ODDSMILL_STATUS = " + data + b";</script>\n"
-    out.write_bytes(page.replace(MARKER, embedded + MARKER, 1))
+    page = page.replace(MARKER, embedded + MARKER, 1)
+    _write_whole(out, lambda tmp: tmp.write_bytes(page))
+
+
+def _write_whole(out: Path, write: Callable[[Path], object]) -> None:
+    """`write` a file beside `out`, then put it in `out`'s place: a failure (a full disk) leaves
+    no part of a file, and an earlier report at `out` as it was."""
+    tmp = out.with_name(f".{out.name}.tmp")
+    try:
+        write(tmp)
+        os.replace(tmp, out)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
 def write_png(doc: dict[str, Any], out: Path) -> None:
@@ -92,5 +106,7 @@ def write_png(doc: dict[str, Any], out: Path) -> None:
     written = time.strftime("%Y-%m-%d %H:%M", time.localtime(doc["report"]["written"]))
     fig.suptitle(f"oddsmill model at step {doc['step']:,} (checkpoint of {written})")
     fig.tight_layout()
-    fig.savefig(out, format="png")
-    plt.close(fig)
+    try:
+        _write_whole(out, lambda tmp: fig.savefig(tmp, format="png"))
+    finally:
+        plt.close(fig)
