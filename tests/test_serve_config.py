@@ -156,11 +156,13 @@ def test_journal_retention_keeps_what_restarts_need(tmp_path: Path) -> None:
     again.journal.close()
 
 
-def test_a_port_taken_stops_serve_with_its_journal_closed(tmp_path: Path) -> None:
-    """`serve` opens its journal, reserving a segment's 64 MiB, before it binds. When a port was
-    taken it stopped with the error and the reservation held (`du` 64 MiB for a 6 MB segment, seen
-    by hand), and the journal was never closed. Now it is closed however `serve` ends: the room is
-    given back and the directory let go of."""
+def test_a_port_taken_is_found_before_the_state_is_loaded(tmp_path: Path) -> None:
+    """`serve` bound its ports only after it had loaded the state and replayed the journal
+    (seconds, for a large state), and a port taken then raised with the journal open: the segment
+    kept its 64 MiB reservation (`du` 64 MiB for a 6 MB segment, by hand). A fixed port that is
+    taken is now found first, with the directory untouched (a new one not even made); and a port
+    taken between that check and the bind stops `serve` with its journal closed, the room given
+    back and the directory let go of."""
     import fcntl
     import socket
     import threading
@@ -171,13 +173,32 @@ def test_a_port_taken_stops_serve_with_its_journal_closed(tmp_path: Path) -> Non
 
     handled = tmp_path / "s"
     handled_once(handled, bodies(50, seed=3)).close()
+    before = {p.name: p.stat().st_mtime_ns for p in handled.iterdir() if p.name != "lock"}
     with socket.socket() as taken:
         taken.bind(("127.0.0.1", 0))
         taken.listen()
         port = taken.getsockname()[1]
-        server = Server(loopback(handled, http=f"127.0.0.1:{port}"))
-        (segment,) = list_journal(handled)
-        assert segment.stat().st_blocks * 512 >= 64 << 20  # reserved while open
+        for kw, says in (
+            ({"http": f"127.0.0.1:{port}"}, f"cannot serve HTTP on 127.0.0.1:{port} (Address already in use)"),
+            ({"ingest": f"tcp://127.0.0.1:{port}"}, f"cannot bind ingest to tcp://127.0.0.1:{port} (Address already"),
+            ({"scores": f"tcp://localhost:{port}"}, f"cannot bind scores to tcp://localhost:{port} (Address already"),
+        ):
+            for state in (handled, tmp_path / "new"):
+                with pytest.raises(ConfigError) as refused:
+                    Server(loopback(state, **kw))
+                assert str(refused.value).startswith(says), refused.value
+        assert not (tmp_path / "new").exists()
+        assert {p.name: p.stat().st_mtime_ns for p in handled.iterdir() if p.name != "lock"} == before
+    # taken after the check: the bind itself fails, and the journal is closed
+    with socket.socket() as free:
+        free.bind(("127.0.0.1", 0))
+        port = free.getsockname()[1]
+    server = Server(loopback(handled, http=f"127.0.0.1:{port}"))
+    (segment,) = list_journal(handled)
+    assert segment.stat().st_blocks * 512 >= 64 << 20  # reserved while open
+    with socket.socket() as taken:
+        taken.bind(("127.0.0.1", port))
+        taken.listen()
         with pytest.raises(ConfigError, match=f"cannot serve HTTP on 127.0.0.1:{port} .Address already in use"):
             server.serve(threading.Event())
     assert segment.stat().st_blocks * 512 < 1 << 20  # given back

@@ -19,6 +19,7 @@ import logging
 import math
 import os
 import shutil
+import socket
 import threading
 import time
 from collections.abc import Callable
@@ -193,6 +194,39 @@ class ServerSettings:
                 raise ConfigError(f"http must be HOST:PORT or off, got {self.http!r}")
 
 
+def check_ports_free(settings: ServerSettings) -> None:
+    """ConfigError when a port the daemon will bind is taken (another daemon, a second `serve`),
+    found before the state is loaded: loading a large state and replaying its journal take
+    seconds, and the directory is not touched. Each fixed TCP port is bound and let go at once,
+    as the daemon will bind it (address reuse on, so a port left in TIME_WAIT is not taken);
+    ports chosen by the system (`*`, 0), other transports and interface names are left to the
+    bind itself. (Another process can still take a port between this and the bind, which then
+    fails as it did before.)"""
+    wanted: list[tuple[str, str, str]] = []  # (what a failure says, host, port)
+    for name in ("ingest", "scores"):
+        address = getattr(settings, name)
+        if address.startswith("tcp://"):
+            host, _, port = urlsplit(address).netloc.rpartition(":")
+            wanted.append((f"cannot bind {name} to {address}", host.strip("[]"), port))
+    if settings.http != "off":
+        host, _, port = settings.http.rpartition(":")
+        wanted.append((f"cannot serve HTTP on {settings.http}", host, port))
+    for says, host, port in wanted:
+        host = {"*": "0.0.0.0", "localhost": "127.0.0.1"}.get(host, host)
+        try:
+            family = socket.AF_INET6 if ipaddress.ip_address(host).version == 6 else socket.AF_INET
+        except ValueError:
+            continue  # an interface's name: ZeroMQ's to resolve
+        if not port.isdigit() or int(port) == 0:
+            continue  # a port the system chooses
+        with socket.socket(family, socket.SOCK_STREAM) as probe:
+            probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            try:
+                probe.bind((host, int(port)))
+            except OSError as e:
+                raise ConfigError(f"{says} ({e.strerror})") from None
+
+
 def warm_up(settings: LearnerSettings) -> None:
     """Load every compiled function the loop calls (about a second from numba's cache) before
     serving, so that the first event is not answered a second late, nor the first block of a kind
@@ -291,6 +325,7 @@ class Server:
         when a race is asked for."""
         self.settings = settings
         self.race: Race | None = None
+        check_ports_free(settings)
         rule = sorted(RACE_RULE & (asked or {}).keys())
         if rule and not settings.candidates and not list_checkpoints(settings.state_dir):
             one = len(rule) == 1
