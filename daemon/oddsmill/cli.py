@@ -207,12 +207,17 @@ def refuse_a_state(state: Path) -> None:
     if checkpoints:
         held.append(f"checkpoints to {checkpoints[-1].name}" if len(checkpoints) > 1 else checkpoints[0].name)
     if segments:
-        held.append(f"a journal of {len(segments)} segment{'s' if len(segments) > 1 else ''}")
+        held.append(f"a journal of {segments_of(segments)}")
     raise ConfigError(
         f"{state} holds a state already ({', '.join(held)}): replay begins a new one. Give a new or "
         "empty directory (to learn a state's journal again with other settings: replay DIR --state "
         "NEW-DIR), or send the logs to the daemon that serves it"
     )
+
+
+def segments_of(segments: list[Path]) -> str:
+    """A journal's size in segments, for a message: "1 segment", "3 segments"."""
+    return f"{len(segments)} segment{'' if len(segments) == 1 else 's'}"
 
 
 def save_replay(state_dir: Path, step: int, state: dict[str, Any]) -> Path:
@@ -289,10 +294,9 @@ def load_state(target: str) -> tuple[Any, float, Any, dict[str, Any] | None]:
             if segments:  # a daemon that has not written its first checkpoint yet, or was killed first
                 size = sum(seg.stat().st_size for seg in segments)
                 raise CheckpointError(
-                    f"{target}: no checkpoint yet, but a journal ({len(segments)} segment"
-                    f"{'s' if len(segments) > 1 else ''}, {size:,} bytes): `serve` learns it when it "
-                    "starts on this directory, and writes a checkpoint every --checkpoint-seconds and "
-                    "when it stops"
+                    f"{target}: no checkpoint yet, but a journal ({segments_of(segments)}, {size:,} bytes): "
+                    "`serve` learns it when it starts on this directory, and writes a checkpoint every "
+                    "--checkpoint-seconds and when it stops"
                 )
             raise CheckpointError(f"{target}: no checkpoint in this directory")
         state, _ = found
