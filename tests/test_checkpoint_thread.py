@@ -121,6 +121,61 @@ def test_a_failed_checkpoint_write_on_its_thread_begins_an_outage(
     server.journal.close()
 
 
+def test_an_outage_whose_checkpoints_fail_goes_on_without_flapping(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    """On a full disk the journal takes writes (its segment's blocks are reserved) while a
+    checkpoint does not. Each retry journaled and learned the held messages, said "writes succeed
+    again", then failed its checkpoint and began the outage again with its error: two lines and a
+    counted failure every second. Now the outage ends only with a checkpoint written; meanwhile
+    what it holds is journaled and learned at each retry, and the log says so once."""
+    import errno
+
+    server = Server(ServerSettings(state_dir=tmp_path, http="off"))
+    pub = Recorder()
+    for m in messages(50, 3):
+        server.handle([m], pub)  # type: ignore[arg-type]
+    real = server_module.write_checkpoint
+
+    def full(*args: Any, **kwargs: Any) -> Path:
+        raise OSError(errno.ENOSPC, "No space left on device (injected)")
+
+    monkeypatch.setattr(server_module, "write_checkpoint", full)
+    with caplog.at_level("INFO", logger="oddsmill"):
+        server.checkpoint()
+        steps = [server.engine.learner.step]
+        for seed in (4, 5, 6):
+            for m in messages(50, seed):
+                server.handle([m], pub)  # type: ignore[arg-type]
+            assert server.held
+            server._recover()
+            assert server.outage is not None and not server.held
+            steps.append(server.engine.learner.step)
+        assert steps[0] < steps[1] < steps[2] < steps[3]  # learned at each retry
+        assert server.board.write_failures._value.get() == 1
+        lines = [(r.levelname, r.getMessage().split(":")[0]) for r in caplog.records]
+        assert lines == [
+            ("ERROR", f"cannot write the state directory {tmp_path}"),
+            (
+                "WARNING",
+                "the journal takes writes again, but a checkpoint cannot be written (No space left on device (injected) (OSError))",
+            ),
+        ], lines
+        caplog.clear()
+        monkeypatch.setattr(server_module, "write_checkpoint", real)
+        held = len(messages(50, 7))
+        for m in messages(50, 7):
+            server.handle([m], pub)  # type: ignore[arg-type]
+        server._recover()
+    assert server.outage is None
+    assert caplog.messages[-1] == (
+        f"writes succeed again: journaled and learned {3 * len(messages(50, 4)) + held} messages held during the outage"
+    )
+    state, _ = load_newest(tmp_path)  # type: ignore[misc]
+    assert state["journal"]["records"] == server.records
+    server.journal.close()
+
+
 def test_the_loop_does_not_wait_on_the_disk_for_a_checkpoint(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     """The journal's fsync before a checkpoint runs on the background thread (`sync_soon`): the
     loop takes the state and goes on while the disk is slow, and the checkpoint is written only

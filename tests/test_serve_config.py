@@ -12,7 +12,7 @@ from oddsmill.cli import main
 from oddsmill.engine import Score
 from oddsmill.server import Server, ServerSettings, _score_body
 from oddsmill.settings import LearnerSettings
-from oddsmill.storage import journal_record, list_journal, load_newest
+from oddsmill.storage import journal_record, list_journal, load_newest, read_journal
 
 from tests.conftest import DEMO, RunningServer, loopback
 from tests.test_server import Client, bodies
@@ -120,6 +120,50 @@ def test_a_warm_start_is_checkpointed_at_once_and_not_applied_again(
         ]
     finally:
         again.journal.close()
+
+
+def test_a_warm_start_whose_checkpoint_cannot_be_written_serves_nothing(  # type: ignore[no-untyped-def]
+    tmp_path: Path, capsys, monkeypatch
+) -> None:
+    """A warm start's events are in no journal. When its first checkpoint failed (a full disk), the
+    daemon served in an outage and its recovery journaled the held messages on top: killed then,
+    it left a journal and no checkpoint, and a restart learned the journal alone (step 98 where the
+    live model was at 28,098), refusing the warm start since the directory held a model. Now
+    `serve` stops before serving (exit 1, one line) and the directory keeps no model: the same
+    command, once there is room, warm-starts."""
+    import errno
+
+    import oddsmill.server
+    from oddsmill.storage import list_checkpoints
+
+    real = oddsmill.server.write_checkpoint
+
+    def full(*args: object, **kwargs: object) -> Path:
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    def serve_not(self: Server, stop: object) -> None:  # a start that is not stopped fails here, not hangs
+        self.close()
+        raise AssertionError("served with a warm start that no checkpoint holds")
+
+    monkeypatch.setattr(oddsmill.server, "write_checkpoint", full)
+    monkeypatch.setattr(oddsmill.server.Server, "serve", serve_not)
+    state = tmp_path / "s"
+    argv = ["serve", "--state", str(state), "--http", "off", "--warm-start", str(DEMO)]
+    assert main(argv) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err[-1] == (
+        f"oddsmill: cannot write the warm start's checkpoint to {state}: No space left on device (OSError). "
+        "Nothing was served and nothing was kept; make room (or give another --state) and start again"
+    )
+    assert not any("Scoring goes on" in line for line in err), err  # (the outage's line: nothing is served)
+    assert not list_checkpoints(state) and not [r for p in list_journal(state) for r in read_journal(p)]
+    monkeypatch.setattr(oddsmill.server, "write_checkpoint", real)  # room again: the same start warm-starts
+    server = Server(ServerSettings(state_dir=state, http="off"), LearnerSettings(), [str(DEMO)])
+    try:
+        assert server.engine.learner.step == 28_000 and server.outage is None
+        assert [p.name for p in list_checkpoints(state)] == ["checkpoint-000000028000.omc"]
+    finally:
+        server.close()
 
 
 def test_journal_record_bytes() -> None:

@@ -49,3 +49,8 @@ class InputFileError(OddsmillError):
         self.path = path
         self.line = line
         self.problem = problem
+
+
+class StateWriteError(OddsmillError):
+    """The state directory refused a write that must succeed before anything is served (a warm
+    start's first checkpoint)."""

@@ -39,7 +39,7 @@ from . import columnar, intake
 from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
-from .errors import ConfigError, ProtocolError
+from .errors import ConfigError, ProtocolError, StateWriteError
 from .fastpath import NOT_SUCH, READ, RunReader, read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
@@ -402,6 +402,11 @@ class Server:
         self.held_bytes = 0
         self.dropping = False
         self.last_retry = 0.0
+        # While set, a failed write goes on with the outage there is (or ends the start) without a
+        # line or a count of its own: the recovery's checkpoint, and the warm start's.
+        self.going_on = False
+        self.said_checkpoint_fails = False  # whether this outage's log says its checkpoints fail
+        self.learned_in_outage = 0  # held messages journaled and learned by this outage's recoveries
         self.board = Board(CollectorRegistry())
         self.last_ranking = self.last_rate = -1e9
         self.said_full = False  # whether the log has said the vocabulary is full
@@ -413,7 +418,21 @@ class Server:
         if warmed:
             # The warm start's events are in no journal: a checkpoint holds them before anything is
             # served, so that a crash cannot lose them, nor a restart learn the journal before them.
-            self.checkpoint()
+            # Without it nothing is served: an outage would have journaled what came on top of a
+            # model only memory held, and a crash then left a journal that a restart learned alone,
+            # refusing the warm start (the directory held a model).
+            self.going_on = True  # (the outage's line would say that scoring goes on)
+            try:
+                self.checkpoint()
+            finally:
+                self.going_on = False
+            if self.outage is not None:
+                reason = self.outage
+                self.close()
+                raise StateWriteError(
+                    f"cannot write the warm start's checkpoint to {settings.state_dir}: {reason}. Nothing was "
+                    "served and nothing was kept; make room (or give another --state) and start again"
+                )
 
     def _refresh(self) -> None:
         now = time.monotonic()
@@ -1321,6 +1340,11 @@ class Server:
         self.journal.abandon()
         self.outage = f"{e.strerror or e} ({type(e).__name__})"
         self.last_retry = time.monotonic()
+        self.held, self.held_bytes = [], 0
+        if self.going_on:
+            self._refresh()
+            return
+        self.said_checkpoint_fails, self.learned_in_outage = False, 0
         self.board.write_failures.inc()
         log.error(
             "cannot write the state directory %s: %s. Scoring goes on; learning and journaling pause "
@@ -1329,7 +1353,6 @@ class Server:
             self.outage,
             RETRY_SECONDS,
         )
-        self.held, self.held_bytes = [], 0
         self._refresh()
 
     def _hold(self, arrival: float, raws: list[bytes]) -> None:
@@ -1368,8 +1391,28 @@ class Server:
         items = [(arrival, item) for arrival, raw in held for item in _items(raw)]
         for lo in range(0, len(items), REPLAY_BLOCK):
             self.learn(items[lo : lo + REPLAY_BLOCK])
-        log.warning("writes succeed again: journaled and learned %d messages held during the outage", len(held))
-        self.checkpoint()
+        self.learned_in_outage += len(held)
+        # The outage ends with a checkpoint written. The journal takes writes before a checkpoint
+        # does on a full disk (its segment's blocks are reserved): the log said "writes succeed
+        # again" and then the outage's error, every RETRY_SECONDS, for as long as it lasted.
+        self.going_on = True
+        try:
+            self.checkpoint()
+        finally:
+            self.going_on = False
+        if self.outage is not None:
+            if not self.said_checkpoint_fails:
+                self.said_checkpoint_fails = True
+                log.warning(
+                    "the journal takes writes again, but a checkpoint cannot be written (%s): the outage goes "
+                    "on, and what it holds is journaled and learned every %g s",
+                    self.outage,
+                    RETRY_SECONDS,
+                )
+            return
+        log.warning(
+            "writes succeed again: journaled and learned %d messages held during the outage", self.learned_in_outage
+        )
         self._refresh()
 
     def _persist(self, arrival: float, raws: list[bytes]) -> bool:
