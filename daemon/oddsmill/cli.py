@@ -358,7 +358,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
         lo, hi = r["ci95"]
         print(
             f"{name[:27]:<28}{r['coef']:>11.4f}{r['se']:>10.4f}{r['z']:>8.2f}{_pval(r['p_value']):>10}  "
-            f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>11.4g}':>11}"
+            f"[{lo:>9.4f}, {hi:>9.4f}]{'' if odds is None else f'{odds:>#11.4g}':>11}"
         )
     print(f"z and intervals are Wald statistics (+-{Z95:.3f} standard errors).")
     for w in res.warnings:
@@ -464,15 +464,11 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     else:
         print("no labelled events yet: no progressive log-loss")
     bins = [b for b in m["calibration_bins"] if b["count"]]
-    if bins:
-        print(
-            "reliability (window): "
-            + "  ".join(
-                f"{b['low']:.1f}-{b['high']:.1f}: predicted {b['mean_predicted']:.2f} observed "
-                f"{b['observed_rate']:.2f} (n={b['count']})"
-                for b in bins
-            )
-        )
+    if bins:  # (a table, as `watch` shows it: on one line it ran to 500 characters)
+        print(f"reliability of the window's scores\n  {'band':<10}{'predicted':>10}{'observed':>10}{'events':>10}")
+        for b in bins:
+            band = f"{b['low']:.1f}-{b['high']:.1f}"
+            print(f"  {band:<10}{b['mean_predicted']:>10.3f}{b['observed_rate']:>10.3f}{b['count']:>10,}")
     print(
         f"events: train {m['events_train']:,}, scored {m['events_score']:,}, outcomes {m['events_outcome']:,}, "
         f"lost {m['events_lost']:,}, rejected {sum(m['events_rejected'].values()):,}; "
@@ -488,9 +484,9 @@ def cmd_inspect(args: argparse.Namespace) -> int:
             mark = "  <- serves" if row["serving"] else ""
             print(f"  {row['candidate']:<28}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}{mark}")
     print(f"\n{'feature':<32}{'coef (raw units)':>18}{'odds ratio':>12}")
-    print(f"{'(intercept)':<32}{doc['intercept']['coef']:>18.5g}")
+    print(f"{'(intercept)':<32}{doc['intercept']['coef']:>#18.5g}")
     for r in doc["coefficients"]:
-        print(f"{r['feature'][:31]:<32}{r['coef']:>18.5g}{r['odds_ratio']:>12.4g}")
+        print(f"{r['feature'][:31]:<32}{r['coef']:>#18.5g}{r['odds_ratio']:>#12.4g}")
     return 0
 
 
