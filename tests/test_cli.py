@@ -672,3 +672,20 @@ def test_replay_leaves_the_time_spent_compiling_out_of_its_rate(tmp_path: Path, 
     seconds = float(line.split(" epoch(s), ")[1].split(" s ")[0])
     assert seconds < wall - 1.4  # the compiling is not in the replay's time
     assert line.endswith(f", and {spent:.0f} s compiling first")
+
+
+def test_every_option_and_argument_says_what_it_is() -> None:
+    """`--help` listed 40 options and arguments (each command's own) with no word on them (--warm-start, --scaling,
+    --max-features, send's --to, fit's LOG, ...): each now has a line."""
+    import argparse
+
+    from oddsmill.cli import build_parser
+
+    sub = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
+    bare = [
+        f"{name} {'/'.join(action.option_strings) or action.dest}"
+        for name, parser in sub.choices.items()
+        for action in parser._actions
+        if not isinstance(action, argparse._HelpAction) and not action.help
+    ]
+    assert bare == []

@@ -48,12 +48,16 @@ class _Parser(argparse.ArgumentParser):
 def _learner_options(p: argparse.ArgumentParser) -> None:
     g = p.add_argument_group("learner")
     g.add_argument("--config", help="a TOML file of settings (its [learner] table); flags win")
-    g.add_argument("--schedule", choices=["constant", "inverse-time", "power", "adagrad"])
+    g.add_argument(
+        "--schedule",
+        choices=["constant", "inverse-time", "power", "adagrad"],
+        help="the learning rate's (default power)",
+    )
     g.add_argument("--eta0", type=float, help="initial learning rate (default 0.5)")
     g.add_argument("--l2", type=float, help="L2 penalty lambda on standardised coefficients (default 1e-4)")
     g.add_argument("--decay", type=float, help="the power schedule's a (default 0.03)")
     g.add_argument("--power", type=float, help="the power schedule's c (default 0.75)")
-    g.add_argument("--adagrad-delta", dest="adagrad_delta", type=float)
+    g.add_argument("--adagrad-delta", dest="adagrad_delta", type=float, metavar="D", help="AdaGrad's delta (default 1)")
     g.add_argument(
         "--average",
         dest="average",
@@ -61,13 +65,37 @@ def _learner_options(p: argparse.ArgumentParser) -> None:
         default=None,
         help="Polyak-Ruppert averaging (default on)",
     )
-    g.add_argument("--no-average", dest="average", action="store_false")
-    g.add_argument("--average-start", dest="average_start", type=int)
-    g.add_argument("--scaling", choices=["standardize", "none"])
-    g.add_argument("--scale-warmup", dest="scale_warmup", type=int)
-    g.add_argument("--max-features", dest="max_features", type=int)
-    g.add_argument("--max-centred", dest="max_centred", type=int)
-    g.add_argument("--window", type=int, default=None, help="events in the metrics window (default 10000)")
+    g.add_argument("--no-average", dest="average", action="store_false", help="score with the last iterate")
+    g.add_argument(
+        "--average-start", dest="average_start", type=int, metavar="STEP", help="average from this step on (default 0)"
+    )
+    g.add_argument(
+        "--scaling",
+        choices=["standardize", "none"],
+        help="divide each numeric feature by its standard deviation (default standardize), or learn on raw values",
+    )
+    g.add_argument(
+        "--scale-warmup",
+        dest="scale_warmup",
+        type=int,
+        metavar="N",
+        help="values a feature's standard deviation is taken over, then frozen (default 1000)",
+    )
+    g.add_argument(
+        "--max-features",
+        dest="max_features",
+        type=int,
+        metavar="N",
+        help="the vocabulary's cap; later new names are ignored and counted (default 1000000)",
+    )
+    g.add_argument(
+        "--max-centred",
+        dest="max_centred",
+        type=int,
+        metavar="N",
+        help="frequent features the optimiser may centre (default 64)",
+    )
+    g.add_argument("--window", type=int, default=None, metavar="N", help="events in the metrics window (default 10000)")
 
 
 def learner_settings(args: argparse.Namespace) -> tuple[Any, bool, int]:
@@ -873,25 +901,31 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     r = sub.add_parser("replay", help="learn offline from logs and write a checkpoint")
-    r.add_argument("logs", nargs="+", metavar="LOG")
-    r.add_argument("--state", required=True, metavar="DIR")
-    r.add_argument("--epochs", type=int, default=1)
+    r.add_argument(
+        "logs", nargs="+", metavar="LOG", help="JSON Lines (.jsonl, .jsonl.gz), journal segments or state directories"
+    )
+    r.add_argument("--state", required=True, metavar="DIR", help="a new state directory for the checkpoint")
+    r.add_argument("--epochs", type=int, default=1, metavar="N", help="passes over the logs (default 1)")
     r.add_argument("--candidates", metavar="auto", help="race a grid of settings (or [candidates.NAME] in --config)")
     r.add_argument("--json", action="store_true", help="with candidates: the race's table as JSON")
     _learner_options(r)
     r.set_defaults(func=cmd_replay)
 
     f = sub.add_parser("fit", help="the batch Newton reference fit, with standard errors")
-    f.add_argument("logs", nargs="+", metavar="LOG")
-    f.add_argument("--json", action="store_true")
+    f.add_argument(
+        "logs", nargs="+", metavar="LOG", help="JSON Lines (.jsonl, .jsonl.gz), journal segments or state directories"
+    )
+    f.add_argument("--json", action="store_true", help="the fit as JSON")
     f.add_argument("--against", metavar="STATE", help="compare a state's coefficients with the optimum")
     _learner_options(f)
     f.set_defaults(func=cmd_fit)
 
     i = sub.add_parser("inspect", help="show a model: coefficients, odds ratios, settings, metrics")
-    i.add_argument("state", metavar="STATE-OR-CHECKPOINT")
-    i.add_argument("--json", action="store_true")
-    i.add_argument("--top", type=int, default=None, metavar="K")
+    i.add_argument(
+        "state", metavar="STATE-OR-CHECKPOINT", help="a state directory (its newest checkpoint) or a checkpoint file"
+    )
+    i.add_argument("--json", action="store_true", help="the model as JSON")
+    i.add_argument("--top", type=int, default=None, metavar="K", help="only the K strongest coefficients")
     i.set_defaults(func=cmd_inspect)
 
     s = sub.add_parser("serve", help="run the daemon: learn from a live stream, publish scores")
@@ -900,14 +934,31 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--ingest-kind", dest="ingest_kind", choices=["sub", "pull"], help="default sub")
     s.add_argument("--scores", metavar="ADDR", help="default tcp://127.0.0.1:7572")
     s.add_argument("--http", metavar="HOST:PORT", help="/metrics, /healthz, /api/status (default 127.0.0.1:7573; off)")
-    s.add_argument("--warm-start", dest="warm_start", nargs="+", metavar="LOG")
-    s.add_argument("--checkpoint-events", dest="checkpoint_events", type=int, help="default 1000000")
-    s.add_argument("--checkpoint-seconds", dest="checkpoint_seconds", type=float, help="default 60")
-    s.add_argument("--segment-bytes", dest="segment_bytes", type=int, help="journal segment size (default 64 MiB)")
+    s.add_argument(
+        "--warm-start", dest="warm_start", nargs="+", metavar="LOG", help="a new state learns these logs first"
+    )
+    s.add_argument(
+        "--checkpoint-events",
+        dest="checkpoint_events",
+        type=int,
+        metavar="N",
+        help="checkpoint every N (default 1000000)",
+    )
+    s.add_argument(
+        "--checkpoint-seconds",
+        dest="checkpoint_seconds",
+        type=float,
+        metavar="SECONDS",
+        help="and at least this often (default 60)",
+    )
+    s.add_argument(
+        "--segment-bytes", dest="segment_bytes", type=int, metavar="BYTES", help="journal segment size (default 64 MiB)"
+    )
     s.add_argument(
         "--journal-keep",
         dest="journal_keep",
         type=int,
+        metavar="N",
         help="journal segments kept behind the oldest checkpoint (default: all)",
     )
     s.add_argument(
@@ -915,11 +966,12 @@ def build_parser() -> argparse.ArgumentParser:
         choices=["block", "interval", "os"],
         help="fsync the journal every block, every --fsync-ms (default), or leave it to the OS",
     )
-    s.add_argument("--fsync-ms", dest="fsync_ms", type=float, help="with --fsync interval (default 1000)")
+    s.add_argument("--fsync-ms", dest="fsync_ms", type=float, metavar="MS", help="with --fsync interval (default 1000)")
     s.add_argument(
         "--outage-hold-bytes",
         dest="outage_hold_bytes",
         type=int,
+        metavar="BYTES",
         help="while the state directory cannot be written, hold this much to learn later (default 256 MiB)",
     )
     s.add_argument(
@@ -934,15 +986,39 @@ def build_parser() -> argparse.ArgumentParser:
         metavar="DIR",
         help="directory of the public certificates (*.key) of the clients allowed to connect",
     )
-    s.add_argument("--ingest-hwm", dest="ingest_hwm", type=int, help="ingest queue, messages (default 1000)")
-    s.add_argument("--scores-hwm", dest="scores_hwm", type=int, help="queue per subscriber, messages (default 1000)")
+    s.add_argument(
+        "--ingest-hwm", dest="ingest_hwm", type=int, metavar="N", help="ingest queue, messages (default 1000)"
+    )
+    s.add_argument(
+        "--scores-hwm",
+        dest="scores_hwm",
+        type=int,
+        metavar="N",
+        help="queue per subscriber, messages (default 1000); a subscriber further behind misses scores",
+    )
     s.add_argument("--candidates", metavar="auto", help="race a grid of settings (or [candidates.NAME] in --config)")
-    s.add_argument("--race-margin", dest="race_margin", type=float, help="relative lead a challenger needs (0.02)")
-    s.add_argument("--race-patience", dest="race_patience", type=int, help="labelled events it must hold it (2000)")
-    s.add_argument("--block-max", dest="block_max", type=int, help="messages a block at most (default 4096)")
-    s.add_argument("--block-bytes", dest="block_bytes", type=int, help="bytes a block at most (default 4 MiB)")
-    s.add_argument("--pending-limit", dest="pending_limit", type=int, help="held scoring requests (default 1e6)")
-    s.add_argument("--pending-ttl", dest="pending_ttl", type=float, help="seconds a request is held (default 7 days)")
+    s.add_argument(
+        "--race-margin", dest="race_margin", type=float, metavar="R", help="relative lead a challenger needs (0.02)"
+    )
+    s.add_argument(
+        "--race-patience", dest="race_patience", type=int, metavar="N", help="labelled events it must hold it (2000)"
+    )
+    s.add_argument(
+        "--block-max", dest="block_max", type=int, metavar="N", help="messages a block at most (default 4096)"
+    )
+    s.add_argument(
+        "--block-bytes", dest="block_bytes", type=int, metavar="BYTES", help="bytes a block at most (default 4 MiB)"
+    )
+    s.add_argument(
+        "--pending-limit", dest="pending_limit", type=int, metavar="N", help="held scoring requests (default 1e6)"
+    )
+    s.add_argument(
+        "--pending-ttl",
+        dest="pending_ttl",
+        type=float,
+        metavar="SECONDS",
+        help="how long a request is held (default 7 days)",
+    )
     s.add_argument(
         "--allow-insecure-bind",
         dest="allow_insecure_bind",
@@ -961,7 +1037,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     se = sub.add_parser("send", help="stream JSON Lines or a journal to a daemon")
     se.add_argument("file", nargs="?", default="-", metavar="FILE", help="a .jsonl(.gz) file, a journal, or - (stdin)")
-    se.add_argument("--to", default="tcp://127.0.0.1:7571", metavar="ADDR")
+    se.add_argument(
+        "--to", default="tcp://127.0.0.1:7571", metavar="ADDR", help="the daemon's ingest (default %(default)s)"
+    )
     se.add_argument("--kind", choices=["pub", "push"], default="pub", help="push for a daemon with --ingest-kind pull")
     se.add_argument("--rate", type=float, default=0.0, help="events a second (0: as fast as possible)")
     se.add_argument("--src", default=None, help="number the messages under this producer name")
@@ -973,7 +1051,13 @@ def build_parser() -> argparse.ArgumentParser:
     se.set_defaults(func=cmd_send)
 
     li = sub.add_parser("listen", help="print live scores")
-    li.add_argument("--from", dest="source", default="tcp://127.0.0.1:7572", metavar="ADDR")
+    li.add_argument(
+        "--from",
+        dest="source",
+        default="tcp://127.0.0.1:7572",
+        metavar="ADDR",
+        help="the daemon's scores (default %(default)s)",
+    )
     li.add_argument("--json", action="store_true", help="one JSON object a line")
     li.add_argument("--count", type=int, default=None, help="stop after this many messages")
     li.add_argument("--timeout", type=float, default=None, help="stop after this many seconds of silence")
@@ -1002,8 +1086,10 @@ def build_parser() -> argparse.ArgumentParser:
     w.set_defaults(func=cmd_watch)
 
     rp = sub.add_parser("report", help="a checkpoint's dashboard as one self-contained HTML file")
-    rp.add_argument("state", metavar="STATE-OR-CHECKPOINT")
-    rp.add_argument("--out", required=True, metavar="FILE.html")
+    rp.add_argument(
+        "state", metavar="STATE-OR-CHECKPOINT", help="a state directory (its newest checkpoint) or a checkpoint file"
+    )
+    rp.add_argument("--out", required=True, metavar="FILE.html", help="the page to write")
     rp.add_argument("--png", action="store_true", help="also FILE.png: the log-loss and reliability charts")
     rp.set_defaults(func=cmd_report)
 
@@ -1016,11 +1102,11 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--rate", type=float, default=10_000.0, help="offered load for the latency, events/s")
     b.add_argument("--seconds", type=float, default=3.0, help="of latency load, per run (four runs each)")
     b.add_argument("--shapes", default="one,batch,cols", help="any of one, batch, cols, comma-separated")
-    b.add_argument("--json", action="store_true")
+    b.add_argument("--json", action="store_true", help="the figures as JSON")
     b.set_defaults(func=cmd_bench)
 
     pm = sub.add_parser("prometheus", help="print an example Prometheus scrape configuration or alert rules")
-    pm.add_argument("what", choices=["rules", "scrape"])
+    pm.add_argument("what", choices=["rules", "scrape"], help="alert rules, or a scrape configuration")
     pm.add_argument("--http", default="127.0.0.1:7573", metavar="HOST:PORT", help="the daemon to scrape")
     pm.set_defaults(func=cmd_prometheus)
     return p
