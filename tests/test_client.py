@@ -159,8 +159,9 @@ def test_send_command_streams_a_log(daemon, tmp_path: Path) -> None:  # type: ig
 def test_send_reads_a_file_whole_before_it_sends_any_of_it(daemon, tmp_path: Path, capsys, monkeypatch) -> None:  # type: ignore[no-untyped-def]
     """`send` of a file with a bad line sent the lines before it, then stopped (exit 2): sent again
     once mended, those were learned twice (one of two lines learned, by hand). A file is now read
-    whole first, and a line that is not JSON or not a map stops it with nothing sent. stdin is
-    sent as it comes, so there the lines before are sent, and the error says how many."""
+    whole first, and a line that is not JSON, or that the daemon would refuse (a label of 2: sent, it
+    was refused there and the lines around it learned), stops it with nothing sent. stdin is sent
+    as it comes, so there the lines before are sent, and the error says how many."""
     import io
     import json
     import time
@@ -177,7 +178,12 @@ def test_send_reads_a_file_whole_before_it_sends_any_of_it(daemon, tmp_path: Pat
         time.sleep(0.3)  # (room for any more to arrive)
         assert server.engine.learner.step == n
 
-    for bad, says in (('{"x": ', "not JSON (Expecting value at column 7)"), ("[1, 2]", "a message must be a map")):
+    for bad, says in (
+        ('{"x": ', "not JSON (Expecting value at column 7)"),
+        ("[1, 2]", "not_a_map: a body must be a map, got list"),
+        ('{"x": {"route_km": 3.5}, "y": 2}', "bad_label: y must be 0, 1, true or false, got 2"),
+        ('{"x": {"route_km": NaN}, "y": 1}', "non_finite: feature 'route_km' is nan"),
+    ):
         log = tmp_path / "dispatches.jsonl"
         log.write_text("\n".join([*good, bad, *good]) + "\n")
         assert main(["send", str(log), "--to", server.bound["ingest"]]) == 2
@@ -193,6 +199,12 @@ def test_send_reads_a_file_whole_before_it_sends_any_of_it(daemon, tmp_path: Pat
         "the 3 messages before it were sent"
     )
     learned(8)
+    monkeypatch.setattr("sys.stdin", io.StringIO("\n".join([*good[:2], '{"x": {"a": 1}, "y": 2}', *good]) + "\n"))
+    assert main(["send", "-", "--to", server.bound["ingest"]]) == 2
+    assert capsys.readouterr().err.strip() == (
+        "oddsmill: stdin:3: bad_label: y must be 0, 1, true or false, got 2; the 2 messages before it were sent"
+    )
+    learned(10)
 
 
 def test_listen_command_prints_scores_as_json(daemon, capsys) -> None:  # type: ignore[no-untyped-def]

@@ -668,6 +668,7 @@ def cmd_send(args: argparse.Namespace) -> int:
     from oddsmill_client import Producer
 
     from .logs import read_bodies
+    from .offline import checked_bodies
 
     if args.rate < 0:
         raise UsageError(f"--rate must be >= 0, got {args.rate}")
@@ -677,7 +678,7 @@ def cmd_send(args: argparse.Namespace) -> int:
         raise UsageError(f"--wait must be > 0, got {args.wait}")
     if args.file != "-":
         _check_messages(args.file)
-    source = _stdin_bodies() if args.file == "-" else read_bodies([args.file])
+    source = checked_bodies(_stdin_bodies()) if args.file == "-" else read_bodies([args.file])
     # the first body before connecting: stdin that is not a log is said at once, not after --wait
     # seconds without a daemon
     first = next(source, None)
@@ -706,9 +707,7 @@ def cmd_send(args: argparse.Namespace) -> int:
         raise nobody from None
     try:
         with producer as out:
-            for _, body, where in chain([] if first is None else [first], source):
-                if not isinstance(body, dict):
-                    raise InputFileError(where, None, "a message must be a map")
+            for _, body, _where in chain([] if first is None else [first], source):
                 out.send(body)
                 sent += 1
                 if args.rate:
@@ -725,11 +724,13 @@ def cmd_send(args: argparse.Namespace) -> int:
 
 
 def _check_messages(name: str) -> None:
-    """Read a file whole before `send` sends any of it: a line that is not a message stops it
-    with nothing sent (sent up to that line, the file sent again once mended would repeat the
-    lines before it). The pass that sends says what the reading logs (a state directory's
-    journal with segments missing), so this one keeps quiet."""
+    """Read a file whole before `send` sends any of it: a line that is not a message, or one the
+    daemon would refuse (a label of 2, a value of NaN), stops it with nothing sent (sent up to that
+    line, the file sent again once mended would repeat the lines before it). The pass that sends
+    says what the reading logs (a state directory's journal with segments missing), so this one
+    keeps quiet."""
     from .logs import read_bodies
+    from .offline import checked_bodies
 
     quiet = logging.getLogger("oddsmill")
 
@@ -738,9 +739,8 @@ def _check_messages(name: str) -> None:
 
     quiet.addFilter(silent)
     try:
-        for _, body, where in read_bodies([name]):
-            if not isinstance(body, dict):
-                raise InputFileError(where, None, "a message must be a map")
+        for _ in checked_bodies(read_bodies([name])):
+            pass
     finally:
         quiet.removeFilter(silent)
 

@@ -17,7 +17,7 @@ import numpy as np
 
 from . import compile_seconds
 from . import kernel as K
-from .encoding import Block, Rows
+from .encoding import Block, Rows, encode_features
 from .engine import Engine, Rejection
 from .errors import InputFileError, OddsmillError, ProtocolError
 from .learner import Learner
@@ -26,6 +26,7 @@ from .progressive import ProgressiveMetrics
 from .protocol import Item, decode_body
 from .reference import FitResult, FitWarning, newton_fit
 from .settings import LearnerSettings
+from .vocabulary import Vocabulary
 
 BLOCK_ITEMS = 4096
 CACHE_ENTRIES = 50_000_000  # encoded features kept between epochs (16 bytes each)
@@ -52,9 +53,33 @@ def read_items(paths: list[str]) -> Iterator[tuple[float, Item, str | None]]:
     for arrival, body, where in read_bodies(paths):
         line = None if is_journal_record(where) else where
         for item in decode_body(body):
-            if line is not None and isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
-                raise _bad_line(line, item.reason, item.detail)
+            if line is not None:
+                _refuse_a_bad_line(item, line)
             yield arrival, item, line
+
+
+def checked_bodies(bodies: Iterable[tuple[float, Any, str]]) -> Iterator[tuple[float, Any, str]]:
+    """The bodies of `read_bodies`, each line of a file checked first as the daemon checks it (its
+    fields, then its features' names and values): what `send` sends. A line the daemon would
+    refuse raises InputFileError naming it (a journal's records go as they are, since it holds what
+    a daemon received, refused messages included)."""
+    names = Vocabulary(max_features=1_000_000)  # (as the learner's own: a known set of names is checked fastest)
+    for arrival, body, where in bodies:
+        if not is_journal_record(where):
+            for item in decode_body(body):
+                _refuse_a_bad_line(item, where)
+                x = getattr(item, "x", None)
+                if x is not None:
+                    try:
+                        encode_features(x, names)
+                    except ProtocolError as e:
+                        _refuse_a_bad_line(e, where)
+        yield arrival, body, where
+
+
+def _refuse_a_bad_line(item: Item | ProtocolError, line: str) -> None:
+    if isinstance(item, ProtocolError) and item.reason not in STREAM_REASONS:
+        raise _bad_line(line, item.reason, item.detail)
 
 
 def _bad_line(where: str, reason: str, detail: str) -> InputFileError:
