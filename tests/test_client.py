@@ -381,3 +381,32 @@ def test_the_send_command_waits_rather_than_drop(monkeypatch, tmp_path: Path) ->
     assert main(["send", str(log), "--to", "tcp://127.0.0.1:1", "--wait", "3"]) == 0
     assert made[0]["wait_when_behind"] is True and made[0]["send_timeout"] == 3
     assert [b["x"]["a"] for b in sent] == [1.0, 2.0]
+
+
+NO_NUMPY = r"""
+import sys
+sys.modules["numpy"] = None  # (an import of numpy now fails)
+import msgpack
+from oddsmill_client import Producer, ScoreSubscriber
+out = Producer("tcp://127.0.0.1:9", kind="push")
+packed = out._packed({"id": 7, "x": {"route_km": 25.5, "depot": "Harbourside", "express": False}})
+print(msgpack.unpackb(packed)["x"]["route_km"])
+try:
+    out._packed({"x": {"when": object()}})
+except TypeError as e:
+    print("TypeError")
+out._sock.close(0)
+ScoreSubscriber("tcp://127.0.0.1:9").close()
+"""
+
+
+def test_the_client_needs_only_pyzmq_and_msgpack() -> None:
+    """The README and the package say so, and the producer imported numpy at its top: an
+    application without numpy could not import the client. numpy is needed only by send_columns,
+    whose rows are numpy's (here numpy cannot be imported at all)."""
+    import subprocess
+    import sys
+
+    run = subprocess.run([sys.executable, "-c", NO_NUMPY], capture_output=True, text=True, timeout=60)
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.split() == ["25.5", "TypeError"]

@@ -4,24 +4,25 @@ from __future__ import annotations
 
 import time
 from collections.abc import Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import msgpack
-import numpy as np
 import zmq
 
 from .keys import CurveKeys
 from .sockets import connect
+
+if TYPE_CHECKING:
+    import numpy as np
 
 _HEAD = msgpack.Packer(use_bin_type=True)  # packs a batch's head (its events are packed already)
 
 
 def _plain(value: object) -> object:
     """msgpack's hook for a value it cannot pack itself: numpy's scalars and arrays as the Python
-    numbers and lists they hold."""
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
+    numbers and lists they hold (`tolist`, as both have it). numpy is not imported for it: the
+    client needs only pyzmq and msgpack, and an application without numpy sends none of its values."""
+    if type(value).__module__.partition(".")[0] == "numpy" and hasattr(value, "tolist"):
         return value.tolist()
     raise TypeError(f"a value of type {type(value).__name__} ({value!r:.40}) is not a number, string, boolean or None")
 
@@ -156,7 +157,9 @@ class Producer:
     ) -> None:
         """Send a columnar block of numeric features: `rows` is n x len(cols); `y` (0, 1, or None for
         a row to score only) and `ids`, when given, one a row. ValueError, with nothing sent, for a
-        block the daemon would refuse for its shape."""
+        block the daemon would refuse for its shape. (Needs numpy, as its `rows` do.)"""
+        import numpy as np
+
         matrix = np.ascontiguousarray(rows, dtype="<f8")
         if matrix.ndim != 2 or matrix.shape[1] != len(cols):
             raise ValueError(f"rows must be n x {len(cols)}, got shape {matrix.shape}")
