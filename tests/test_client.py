@@ -273,11 +273,12 @@ def test_an_event_that_is_not_a_mapping_and_a_timeout_below_zero() -> None:
     """send([...]) said "cannot convert dictionary update sequence element #0"; receive(timeout=-1)
     waited for ever (ZeroMQ's poll takes a negative timeout as no limit)."""
     ctx: zmq.Context[Any] = zmq.Context()
-    with Producer("tcp://127.0.0.1:9", kind="push", context=ctx) as out:
+    daemon, address = a_pull(ctx)
+    with Producer(address, kind="push", context=ctx) as out:
         with pytest.raises(TypeError, match="an event is a mapping .PROTOCOL 2., got list"):
             out.send([("x", {"stops": 1.0})])  # type: ignore[arg-type]
         assert out.sent == 0
-        out._sock.setsockopt(zmq.LINGER, 0)  # (nothing listens: close need not wait)
+    daemon.close()
     sub = ScoreSubscriber("tcp://127.0.0.1:9", context=ctx)
     for timeout in (-1.0, 0.0):
         with pytest.raises(TimeoutError):
@@ -286,27 +287,36 @@ def test_an_event_that_is_not_a_mapping_and_a_timeout_below_zero() -> None:
     ctx.term()
 
 
+def a_pull(ctx: zmq.Context[Any]) -> tuple[zmq.Socket[Any], str]:
+    """A PULL bound on loopback that takes nothing unless asked: a daemon with `--ingest-kind
+    pull` that has fallen behind."""
+    sock = ctx.socket(zmq.PULL)
+    sock.setsockopt(zmq.LINGER, 0)
+    sock.setsockopt(zmq.RCVHWM, 10)
+    sock.bind("tcp://127.0.0.1:*")
+    return sock, sock.getsockopt(zmq.LAST_ENDPOINT).decode()
+
+
 def test_a_push_producer_with_a_send_timeout_says_when_no_daemon_takes_its_messages() -> None:
-    """Without a daemon a PUSH queues up to its high-water mark, then waits for ever; with
-    `send_timeout` that wait ends in TimeoutError, the batch still waiting, and leaving the block
-    does not wait again."""
-    import socket
+    """A PUSH to a daemon that takes nothing queues up to its high-water marks, then waits for
+    ever; with `send_timeout` that wait ends in TimeoutError, the batch still waiting, and leaving
+    the block does not wait again. (With nothing listening at all, the producer is refused when
+    made: test_curve.)"""
     import time
 
-    with socket.socket() as s:  # a port nothing listens on
-        s.bind(("127.0.0.1", 0))
-        address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
     ctx: zmq.Context[Any] = zmq.Context()
+    daemon, address = a_pull(ctx)
     out = Producer(address, kind="push", batch=10, send_timeout=0.2, context=ctx)
     t0 = time.monotonic()
     with pytest.raises(TimeoutError, match="the daemon took no message within 0.2 s"):
         with out:
-            for i in range(100_000):
-                out.send({"id": i, "x": {"stops": 1.0}})
+            for i in range(100_000):  # (100 MB: more than loopback's TCP buffers take)
+                out.send({"id": i, "x": {"stops": 1.0, "route": "R" * 1000}})
     assert time.monotonic() - t0 < 10
-    assert 0 < out.sent < 10_000  # (the queue took some messages before it was full)
+    assert 0 < out.sent < 10_000  # (the queues took some messages before they were full)
     assert len(out._pending) == 10  # the batch that timed out was not dropped from the producer
-    ctx.term()  # (the socket is closed: term returns at once)
+    daemon.close()
+    ctx.term()  # (the sockets are closed: term returns at once)
 
 
 @pytest.mark.parametrize("wait", [True, False], ids=["waits when behind", "ZeroMQ's own: drops"])
@@ -388,7 +398,10 @@ import sys
 sys.modules["numpy"] = None  # (an import of numpy now fails)
 import msgpack
 from oddsmill_client import Producer, ScoreSubscriber
-out = Producer("tcp://127.0.0.1:9", kind="push")
+import zmq
+daemon = zmq.Context.instance().socket(zmq.PULL)
+daemon.bind("tcp://127.0.0.1:*")
+out = Producer(daemon.getsockopt(zmq.LAST_ENDPOINT).decode(), kind="push")
 packed = out._packed({"id": 7, "x": {"route_km": 25.5, "depot": "Harbourside", "express": False}})
 print(msgpack.unpackb(packed)["x"]["route_km"])
 try:
@@ -396,6 +409,7 @@ try:
 except TypeError as e:
     print("TypeError")
 out._sock.close(0)
+daemon.close(0)
 ScoreSubscriber("tcp://127.0.0.1:9").close()
 """
 

@@ -121,3 +121,74 @@ def test_the_send_and_listen_commands_take_client_keys(keys: dict[str, Path]) ->
     assert code == 2  # --curve-server missing
     args: Any = ["listen", "--curve-secret", str(keys["alice"]), "--curve-server", str(keys["daemon_public"])]
     assert run_cli(*args, "--timeout", "0.2", "--count", "1")[0] == 1  # nobody there: silence, short of --count
+
+
+def test_a_client_that_gets_nothing_is_told_why(tmp_path: Path, keys: dict[str, Path], capsys) -> None:  # type: ignore[no-untyped-def]
+    """ZeroMQ retries a failed connection without a word: a producer or `send` without keys, with
+    a key the daemon does not allow, or with the wrong daemon key said only "no daemon subscribed",
+    as if nothing listened; `listen` said "0 messages, then silence" and exited 0. And a push
+    producer queued its messages on a connection never made: `send --kind push` to an address
+    where nothing listened printed "sent 100 events" and exited 0, the events gone. Each now says
+    what ZeroMQ's handshake found (its monitor's events)."""
+    from oddsmill_client import NoAnswer
+
+    from tests.test_watching import free_port
+
+    settings = ServerSettings(
+        state_dir=tmp_path / "state",
+        ingest="tcp://127.0.0.1:*",
+        scores="tcp://127.0.0.1:*",
+        http="off",
+        curve_secret=str(keys["daemon_secret"]),
+        curve_clients=str(keys["allowed"]),
+    )
+    running = RunningServer(settings, LearnerSettings())
+    ctx, ingest, scores = running.ctx, running.server.bound["ingest"], running.server.bound["scores"]
+    alice = CurveKeys.load(keys["alice"], keys["daemon_public"])
+    mallory = CurveKeys.load(keys["mallory"], keys["daemon_public"])
+    alice_wrong_daemon = CurveKeys.load(keys["alice"], keys["alice"].with_suffix(".key"))
+    plain_pull = ctx.socket(zmq.PULL)  # a daemon's ingest of the other kind, without CURVE: no pub producers
+    plain_pull.setsockopt(zmq.LINGER, 0)
+    plain_pull.bind("tcp://127.0.0.1:*")
+    other_kind = plain_pull.getsockopt(zmq.LAST_ENDPOINT).decode()
+    nowhere = f"tcp://127.0.0.1:{free_port()}"
+    try:
+        cases = [
+            (ingest, "pub", None, "the daemon requires CURVE keys, and this client has none"),
+            (ingest, "pub", mallory, "the daemon refused this client's key"),
+            (ingest, "pub", alice_wrong_daemon, "the CURVE handshake failed"),
+            (nowhere, "push", None, "nothing accepts connections there"),
+            (nowhere, "pub", None, "nothing accepts connections there"),
+        ]
+        for address, kind, curve, says in cases:
+            with pytest.raises(NoAnswer) as caught:
+                Producer(address, kind=kind, curve=curve, wait_for_daemon=1.0, context=ctx)
+            assert caught.value.why is not None and caught.value.why.startswith(says), (kind, caught.value.why)
+        with pytest.raises(NoAnswer, match="does not take this kind of client"):
+            Producer(other_kind, kind="pub", curve=None, wait_for_daemon=1.0, context=ctx)
+        with Producer(ingest, curve=alice, context=ctx) as out:  # the right keys: no complaint
+            out.send({"x": {"route_km": 3.0}, "y": 1})
+        for curve, says in ((None, "the daemon requires CURVE keys"), (mallory, "the daemon refused"), (alice, None)):
+            with ScoreSubscriber(scores, curve=curve, context=ctx) as sub:
+                why = sub.why_silent()
+            assert (why is None) if says is None else (why is not None and why.startswith(says)), why
+
+        log = tmp_path / "parcels.jsonl"
+        log.write_text('{"x": {"route_km": 3.0}, "y": 1}\n' * 100)
+        for argv, says in (
+            (
+                ["--kind", "push", "--to", nowhere],
+                f"no daemon took the stream at {nowhere} within 1 s: nothing accepts",
+            ),
+            (["--to", ingest], "the daemon requires CURVE keys, and this client has none (--curve-secret and"),
+        ):
+            assert run_cli("send", str(log), "--wait", "1", *argv)[0] == 1
+            assert says in capsys.readouterr().err
+        assert run_cli("listen", "--from", scores, "--timeout", "0.5")[0] == 1
+        assert capsys.readouterr().err.strip() == (
+            f"oddsmill listen: 0 messages from {scores}, then 0.5 s of silence: the daemon requires CURVE keys, "
+            "and this client has none (--curve-secret and --curve-server)"
+        )
+    finally:
+        plain_pull.close()
+        running.close()

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 from .keys import CurveKeys
 from .producer import Producer
+from .sockets import NoAnswer
 from .subscriber import ScoreSubscriber
 
-__all__ = ["CurveKeys", "Producer", "ScoreSubscriber"]
+__all__ = ["CurveKeys", "NoAnswer", "Producer", "ScoreSubscriber"]

@@ -10,7 +10,7 @@ import msgpack
 import zmq
 
 from .keys import CurveKeys
-from .sockets import connect
+from .sockets import Handshake, NoAnswer, connect, why_nothing
 
 if TYPE_CHECKING:
     import numpy as np
@@ -45,7 +45,10 @@ class Producer:
     daemon that requires CURVE ignores a producer without an allowed key).
 
     Raises ValueError for a bad address, kind or batch, and TimeoutError when a pub producer's
-    daemon has not subscribed within `wait_for_daemon` seconds (the socket is closed either way).
+    daemon has not subscribed within `wait_for_daemon` seconds, or a push producer's has not
+    taken the connection (the socket is closed either way):
+    a `NoAnswer`, whose `why` says what a probe of the connection found (nothing listening, a
+    daemon that requires CURVE, a key it refuses), or None when the connection works.
     With `send_timeout`, a send that waits that long for the daemon (push, or pub with
     `wait_when_behind`) raises TimeoutError, the event not sent (without it a send waits as long as
     the daemon is behind).
@@ -79,7 +82,18 @@ class Producer:
             self._sock.setsockopt(zmq.SNDTIMEO, max(0, int(send_timeout * 1000)))
         if curve is not None:
             curve.apply(self._sock)
-        connect(self._sock, address)
+        # a push producer's messages queue on a connection before it is made, and went nowhere
+        # when none could be (nothing listening, a daemon of the other kind, a key refused): `send`
+        # said "sent" of a file the daemon never saw. It waits for a handshake first, as a pub
+        # producer waits for the daemon's subscription.
+        handshake = Handshake(self._sock) if kind == "push" else None
+        try:
+            connect(self._sock, address)
+        except ValueError:
+            if handshake is not None:
+                handshake.stop()
+            raise
+        self._address, self._curve = address, curve
         self._topic = topic.encode()
         self._src = src
         self._seq = 0
@@ -91,6 +105,11 @@ class Producer:
         self.sent = 0
         if kind == "pub":
             self._await_subscription(wait_for_daemon)
+        elif handshake is not None:
+            why = handshake.result(wait_for_daemon, curve)
+            if why is not None:
+                self._sock.close(0)
+                raise NoAnswer(f"no daemon took the connection within {wait_for_daemon:g} s", why)
 
     def _await_subscription(self, timeout: float) -> None:
         deadline = time.monotonic() + timeout
@@ -98,7 +117,8 @@ class Producer:
             left = deadline - time.monotonic()
             if left <= 0:
                 self._sock.close(0)
-                raise TimeoutError(f"no daemon subscribed within {timeout:g} s")
+                why = why_nothing(self._ctx, self._address, zmq.XPUB, self._curve)
+                raise NoAnswer(f"no daemon subscribed within {timeout:g} s", why)
             if self._sock.poll(int(left * 1000) + 1, zmq.POLLIN):
                 message = self._sock.recv()
                 if message[:1] == b"\x01" and self._topic.startswith(message[1:]):
@@ -123,7 +143,8 @@ class Producer:
         try:
             self._sock.send_multipart([self._topic, packed])
         except zmq.Again:  # (only with send_timeout: a daemon that took nothing in time)
-            raise TimeoutError(f"the daemon took no message within {self._send_timeout:g} s") from None
+            why = why_nothing(self._ctx, self._address, self._sock.type, self._curve)
+            raise NoAnswer(f"the daemon took no message within {self._send_timeout:g} s", why) from None
         self.sent += 1
 
     def send(self, event: Mapping[str, Any]) -> None:

@@ -10,7 +10,7 @@ import msgpack
 import zmq
 
 from .keys import CurveKeys
-from .sockets import connect
+from .sockets import connect, why_nothing
 
 
 class ScoreSubscriber:
@@ -37,6 +37,7 @@ class ScoreSubscriber:
         for topic in topics:
             self._sock.setsockopt(zmq.SUBSCRIBE, topic.encode())
         connect(self._sock, address)
+        self._address, self._curve = address, curve
 
     def receive(self, timeout: float | None = None) -> tuple[str, dict[str, Any]]:
         """The next message; TimeoutError when none arrives within `timeout` seconds (at once when
@@ -45,6 +46,12 @@ class ScoreSubscriber:
             raise TimeoutError(f"no score within {timeout:g} s")
         topic, raw = self._sock.recv_multipart()
         return topic.decode(), msgpack.unpackb(raw, raw=False)
+
+    def why_silent(self, seconds: float = 1.0) -> str | None:
+        """Why nothing comes, when the connection is why: a probe connects as this subscriber does
+        for up to `seconds` and says what ZeroMQ's handshake found (nothing listening, a daemon that
+        requires CURVE, a key it refuses). None when the connection works (a quiet daemon)."""
+        return why_nothing(self._ctx, self._address, zmq.SUB, self._curve, seconds)
 
     def await_daemon(self, producer: Any, timeout: float = 10.0) -> None:
         """Return once this subscription has reached the daemon (ZeroMQ's slow joiner): send probe

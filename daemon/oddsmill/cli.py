@@ -686,10 +686,17 @@ def cmd_send(args: argparse.Namespace) -> int:
     t0 = time.monotonic()
     sent = 0
     serve = "oddsmill serve" + (" --ingest-kind pull" if args.kind == "push" else "")
-    nobody = OddsmillError(
-        f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with --ingest"
-        f" {args.to}? --wait gives it longer)"
-    )
+
+    def nobody(e: TimeoutError) -> OddsmillError:
+        """What a probe of the connection found (the client's NoAnswer), or the likeliest causes."""
+        why = getattr(e, "why", None)
+        if why is None:
+            return OddsmillError(
+                f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with"
+                f" --ingest {args.to}? --wait gives it longer)"
+            )
+        return OddsmillError(f"no daemon took the stream at {args.to} within {args.wait:g} s: {_curve_hint(why, args)}")
+
     try:
         producer = Producer(
             args.to,
@@ -703,8 +710,8 @@ def cmd_send(args: argparse.Namespace) -> int:
         )
     except ValueError as e:
         raise UsageError(f"--to: {e}") from None
-    except TimeoutError:
-        raise nobody from None
+    except TimeoutError as e:
+        raise nobody(e) from None
     try:
         with producer as out:
             for _, body, _where in chain([] if first is None else [first], source):
@@ -714,8 +721,8 @@ def cmd_send(args: argparse.Namespace) -> int:
                     ahead = sent / args.rate - (time.monotonic() - t0)
                     if ahead > 0:
                         time.sleep(ahead)
-    except TimeoutError:
-        raise nobody from None
+    except TimeoutError as e:
+        raise nobody(e) from None
     except InputFileError as e:  # (stdin, read as it comes: what came before the bad line is sent)
         before = "the message before it was" if sent == 1 else f"the {sent:,} messages before it were"
         raise InputFileError(e.path, e.line, f"{e.problem}; {before} sent") from None
@@ -743,6 +750,15 @@ def _check_messages(name: str) -> None:
             pass
     finally:
         quiet.removeFilter(silent)
+
+
+def _curve_hint(why: str, args: argparse.Namespace) -> str:
+    """A probe's finding, with the flags that mend it when it is about keys."""
+    if "CURVE keys" in why and not args.curve_secret:
+        return f"{why} (--curve-secret and --curve-server)"
+    if "handshake failed" in why:
+        return f"{why} (--curve-server: the daemon's NAME.key)"
+    return why
 
 
 def _client_curve(args: argparse.Namespace) -> Any:
@@ -807,12 +823,15 @@ def cmd_listen(args: argparse.Namespace) -> int:
                 # stop with nothing (a wrong address, a daemon not running: a subscriber cannot tell
                 # them from a quiet daemon) was silent, and exited 0 with --count unmet
                 wanted = "" if args.count is None else f" of {args.count}"
+                # nothing at all: the connection may be why (a daemon that requires CURVE, a key it
+                # refuses, nothing listening), which ZeroMQ retries without a word
+                why = subscriber.why_silent() if received == 0 else None
                 print(
                     f"oddsmill listen: {received}{wanted} messages from {args.source},"
-                    f" then {args.timeout:g} s of silence",
+                    f" then {args.timeout:g} s of silence" + (f": {_curve_hint(why, args)}" if why else ""),
                     file=sys.stderr,
                 )
-                return 1 if args.count is not None else 0
+                return 1 if args.count is not None or why else 0
             received += 1
             if isinstance(body.get("p"), bytes):
                 body = decode_columns(body)
