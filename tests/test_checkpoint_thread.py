@@ -158,7 +158,8 @@ def test_an_outage_whose_checkpoints_fail_goes_on_without_flapping(
             ("ERROR", f"cannot write the state directory {tmp_path}"),
             (
                 "WARNING",
-                "the journal takes writes again, but a checkpoint cannot be written (No space left on device (injected) (OSError))",
+                "the journal takes writes again, but a checkpoint cannot be written "
+                "(No space left on device (injected) (OSError))",
             ),
         ], lines
         caplog.clear()

@@ -249,15 +249,15 @@ def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ign
     code, _, err = run(["send", str(DEMO), "--to", address, "--wait", "0.3"], capsys)
     assert code == 1
     assert err.strip() == (
-        f"oddsmill: no daemon took the stream at {address} within 0.3 s (is `oddsmill serve` running with"
-        f" --ingest {address}? --wait gives it longer)"
+        f"oddsmill: no daemon took the stream at {address} within 0.3 s: nothing accepts connections there"
+        f" (is `oddsmill serve` running with --ingest {address}?)"
     )
     # with --kind push it waited for ever: a PUSH queues, then waits while nothing takes its messages
     code, _, err = run(["send", str(DEMO), "--to", address, "--wait", "0.3", "--kind", "push"], capsys)
     assert code == 1
     assert err.strip() == (
-        f"oddsmill: no daemon took the stream at {address} within 0.3 s (is `oddsmill serve --ingest-kind pull`"
-        f" running with --ingest {address}? --wait gives it longer)"
+        f"oddsmill: no daemon took the stream at {address} within 0.3 s: nothing accepts connections there"
+        f" (is `oddsmill serve --ingest-kind pull` running with --ingest {address}?)"
     )
 
 

@@ -695,6 +695,8 @@ def cmd_send(args: argparse.Namespace) -> int:
                 f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with"
                 f" --ingest {args.to}? --wait gives it longer)"
             )
+        if why.startswith("nothing accepts"):
+            why = f"{why} (is `{serve}` running with --ingest {args.to}?)"
         return OddsmillError(f"no daemon took the stream at {args.to} within {args.wait:g} s: {_curve_hint(why, args)}")
 
     try:
