@@ -284,6 +284,35 @@ def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
     return public, secret
 
 
+class AllowedClients:
+    """The public keys of `curve_clients` (its *.key files, read at the start), for ZeroMQ's
+    authenticator. A key it refuses is logged, once a key: the refusal was said only at the
+    authenticator's debug level, and the operator of a producer that got nothing through saw
+    nothing in the daemon's log. (A client with no keys at all fails its handshake before any
+    key is asked for: the client says so itself, oddsmill_client.NoAnswer.)"""
+
+    SAID_AT_MOST = 1000  # keys remembered as said: a stream of made-up keys fills no memory
+
+    def __init__(self, directory: str) -> None:
+        import zmq.auth
+
+        self.directory = directory
+        self.keys = set(zmq.auth.load_certificates(directory))
+        self.said: set[bytes] = set()
+
+    def callback(self, domain: str, key: bytes) -> bool:
+        if key in self.keys:
+            return True
+        if key not in self.said and len(self.said) < self.SAID_AT_MOST:
+            self.said.add(key)
+            log.warning(
+                "refused a client whose public key %s is not among those of %s (said once a key)",
+                key.decode("ascii", "replace"),
+                self.directory,
+            )
+        return False
+
+
 def check_bind(name: str, address: str, allow_insecure: bool, curve: bool = False) -> None:
     """PROTOCOL 1: ZeroMQ sockets bind to loopback unless CURVE is on or the operator opts out."""
     parts = urlsplit(address)
@@ -836,7 +865,7 @@ class Server:
                 public, secret = load_curve(s.curve_secret, s.curve_clients)
                 auth = ThreadAuthenticator(ctx, log=logging.getLogger("oddsmill.auth"))
                 auth.start()
-                auth.configure_curve(domain="*", location=s.curve_clients)
+                auth.configure_curve_callback(domain="*", credentials_provider=AllowedClients(s.curve_clients))
                 for sock in (ingest, pub):
                     sock.curve_secretkey = secret
                     sock.curve_publickey = public
