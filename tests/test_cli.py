@@ -222,20 +222,38 @@ def test_the_demo_refuses_a_log_not_of_its_shape_before_starting(  # type: ignor
     assert set(glob.glob(f"{tempfile.gettempdir()}/oddsmill-demo-*")) == before  # and nothing left behind
 
 
-@pytest.mark.parametrize("count,code", [(["--count", "2"], 1), ([], 0)], ids=["short of --count", "no --count"])
-def test_listen_says_how_many_came_before_the_silence(count: list[str], code: int, capsys) -> None:  # type: ignore[no-untyped-def]
-    """Silence ends `listen --timeout`: with nothing published at the address (no daemon there), it
-    exited 0 without a word, --count unmet. Now one line on stderr says what came; the exit code is
-    1 when --count was not reached (PROTOCOL 7: 1, other failure), 0 when none was asked."""
+@pytest.mark.parametrize(
+    "there,count,code",
+    [("quiet", ["--count", "2"], 1), ("quiet", [], 0), ("nothing", [], 1)],
+    ids=["short of --count", "no --count", "nothing there"],
+)
+def test_listen_says_how_many_came_before_the_silence(there: str, count: list[str], code: int, capsys) -> None:  # type: ignore[no-untyped-def]
+    """Silence ends `listen --timeout`: with nothing published at the address, it exited 0 without
+    a word, --count unmet. Now one line on stderr says what came; the exit code is 1 when --count
+    was not reached (PROTOCOL 7: 1, other failure), 0 when none was asked of a quiet daemon, and 1
+    with the reason when nothing came because nothing accepts connections there."""
     import socket
 
-    with socket.socket() as s:  # a port nothing listens on
-        s.bind(("127.0.0.1", 0))
-        address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
-    got, out, err = run(["listen", "--from", address, "--timeout", "0.3", *count], capsys)
+    import zmq
+
+    ctx = zmq.Context.instance()
+    quiet = ctx.socket(zmq.PUB)  # a daemon's scores socket, publishing nothing
+    quiet.setsockopt(zmq.LINGER, 0)
+    quiet.bind("tcp://127.0.0.1:*")
+    address = quiet.getsockopt(zmq.LAST_ENDPOINT).decode()
+    if there == "nothing":
+        quiet.close()
+        with socket.socket() as s:  # a port nothing listens on
+            s.bind(("127.0.0.1", 0))
+            address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
+    try:
+        got, out, err = run(["listen", "--from", address, "--timeout", "0.3", *count], capsys)
+    finally:
+        quiet.close()
     assert got == code and out == ""
     wanted = " of 2" if count else ""
-    assert err == f"oddsmill listen: 0{wanted} messages from {address}, then 0.3 s of silence\n"
+    why = ": nothing accepts connections there" if there == "nothing" else ""
+    assert err == f"oddsmill listen: 0{wanted} messages from {address}, then 0.3 s of silence{why}\n"
 
 
 def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ignore[no-untyped-def]
