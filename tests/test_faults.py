@@ -511,6 +511,35 @@ def test_the_http_port_is_on_loopback_by_default_and_changes_nothing(tmp_path: P
     running.close()
 
 
+def test_a_connection_that_sends_no_request_is_closed_in_time(monkeypatch: pytest.MonkeyPatch) -> None:
+    """http.server waited for ever on a connection that sent no whole request, a thread each: 300
+    idle sockets held 300 threads. Each is now closed after `metrics.IDLE_SECONDS` (30; here 0.5),
+    and the port answers meanwhile."""
+    import socket
+    import urllib.request
+
+    from oddsmill import metrics
+    from prometheus_client import CollectorRegistry
+
+    monkeypatch.setattr(metrics, "IDLE_SECONDS", 0.5)
+    httpd, thread = metrics.serve_http(metrics.Board(CollectorRegistry()), "127.0.0.1", 0)
+    port = httpd.server_address[1]
+    try:
+        idle = socket.create_connection(("127.0.0.1", port), timeout=10)
+        partial = socket.create_connection(("127.0.0.1", port), timeout=10)
+        partial.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\n")  # (the headers never end)
+        with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as answer:
+            assert answer.status == 200
+        t0 = time.monotonic()
+        assert idle.recv(100) == b"" and partial.recv(100) == b""  # closed by the daemon
+        assert time.monotonic() - t0 < 5
+        idle.close()
+        partial.close()
+    finally:
+        httpd.shutdown()
+        httpd.server_close()
+
+
 def test_a_journal_that_lost_its_tail_under_the_checkpoint_continues_in_a_new_segment(
     tmp_path: Path, caplog: pytest.LogCaptureFixture
 ) -> None:

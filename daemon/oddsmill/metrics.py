@@ -428,11 +428,18 @@ def dashboard_page() -> bytes:
     return (resources.files("oddsmill") / "web" / "dashboard.html").read_bytes()
 
 
+# A connection that sends no whole request within this many seconds is closed. http.server waits
+# for ever by default, a thread a connection: a browser's unused preconnection, or a client that
+# opened a socket and stalled, held a thread each until it left (300 of them, 306 threads).
+IDLE_SECONDS = 30.0
+
+
 def serve_http(board: Board, host: str, port: int) -> tuple[ThreadingHTTPServer, threading.Thread]:
     """Start the HTTP endpoints in a daemon thread; returns the server (its port is bound)."""
 
     class Handler(BaseHTTPRequestHandler):
         head = False
+        timeout = IDLE_SECONDS  # (socketserver's StreamRequestHandler sets it on the connection)
 
         def version_string(self) -> str:
             """The Server header: not Python's version, which tells a scanner more."""
