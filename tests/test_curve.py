@@ -42,7 +42,8 @@ def keys(tmp_path: Path) -> dict[str, Path]:
     }
 
 
-def test_only_allowed_clients_feed_or_read_the_daemon(tmp_path: Path, keys: dict[str, Path]) -> None:
+def curve_daemon(tmp_path: Path, keys: dict[str, Path]) -> tuple[RunningServer, CurveKeys, CurveKeys]:
+    """A daemon that requires CURVE and allows alice; alice's and mallory's client keys."""
     settings = ServerSettings(
         state_dir=tmp_path / "state",
         ingest="tcp://127.0.0.1:*",
@@ -51,10 +52,14 @@ def test_only_allowed_clients_feed_or_read_the_daemon(tmp_path: Path, keys: dict
         curve_secret=str(keys["daemon_secret"]),
         curve_clients=str(keys["allowed"]),
     )
-    running = RunningServer(settings, LearnerSettings())
-    server, ctx = running.server, running.ctx
     alice = CurveKeys.load(keys["alice"], keys["daemon_public"])
     mallory = CurveKeys.load(keys["mallory"], keys["daemon_public"])
+    return RunningServer(settings, LearnerSettings()), alice, mallory
+
+
+def test_only_allowed_clients_feed_or_read_the_daemon(tmp_path: Path, keys: dict[str, Path]) -> None:
+    running, alice, mallory = curve_daemon(tmp_path, keys)
+    server, ctx = running.server, running.ctx
     ingest, scores = server.bound["ingest"], server.bound["scores"]
     try:
         # an unknown producer never gets the daemon's subscription, with a wrong key or with none
@@ -134,18 +139,8 @@ def test_a_client_that_gets_nothing_is_told_why(tmp_path: Path, keys: dict[str, 
 
     from tests.test_watching import free_port
 
-    settings = ServerSettings(
-        state_dir=tmp_path / "state",
-        ingest="tcp://127.0.0.1:*",
-        scores="tcp://127.0.0.1:*",
-        http="off",
-        curve_secret=str(keys["daemon_secret"]),
-        curve_clients=str(keys["allowed"]),
-    )
-    running = RunningServer(settings, LearnerSettings())
+    running, alice, mallory = curve_daemon(tmp_path, keys)
     ctx, ingest, scores = running.ctx, running.server.bound["ingest"], running.server.bound["scores"]
-    alice = CurveKeys.load(keys["alice"], keys["daemon_public"])
-    mallory = CurveKeys.load(keys["mallory"], keys["daemon_public"])
     alice_wrong_daemon = CurveKeys.load(keys["alice"], keys["alice"].with_suffix(".key"))
     plain_pull = ctx.socket(zmq.PULL)  # a daemon's ingest of the other kind, without CURVE: no pub producers
     plain_pull.setsockopt(zmq.LINGER, 0)
