@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import struct
 import zlib
 from pathlib import Path
@@ -164,6 +165,44 @@ def test_a_warm_start_whose_checkpoint_cannot_be_written_serves_nothing(  # type
         assert [p.name for p in list_checkpoints(state)] == ["checkpoint-000000028000.omc"]
     finally:
         server.close()
+
+
+def test_a_long_start_says_how_far_it_has_come(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A warm start from a large history, or a long journal replayed at a restart, learned for
+    minutes before "serving" with nothing in the log. A line now comes every `Ticker.EVERY`
+    seconds (10; here every block)."""
+    import zmq
+    from oddsmill import server as server_module
+
+    monkeypatch.setattr(server_module.Ticker, "EVERY", 0.0)
+    settings = ServerSettings(state_dir=tmp_path, http="off")
+    with caplog.at_level("INFO", logger="oddsmill"):
+        first = Server(settings, LearnerSettings(), [str(DEMO)])
+    ticks = [m for m in caplog.messages if m.startswith("warm start: ") and "so far" in m]
+    assert len(ticks) >= 5 and all(
+        re.fullmatch(r"warm start: [\d,]+ events learned so far \(\d+ s\)", m) for m in ticks
+    )
+    learned = [int(m.split()[2].replace(",", "")) for m in ticks]
+    assert learned == sorted(learned) and 0 < learned[0] < learned[-1] <= 28_000, learned
+    ctx: zmq.Context = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind("inproc://long-start")
+    try:
+        for lo in range(0, 9000, 500):
+            first.handle([[b"events", msgpack.packb(b)] for b in bodies(500, seed=lo)[:500]], pub)
+    finally:
+        first.journal.close()  # and then kill -9: the journal after the checkpoint is replayed
+        pub.close(0)
+        ctx.term()
+    caplog.clear()
+    with caplog.at_level("INFO", logger="oddsmill"):
+        again = Server(settings, LearnerSettings())
+    again.close()
+    ticks = [m for m in caplog.messages if m.startswith("replaying the journal: ")]
+    assert len(ticks) >= 2, caplog.messages
+    assert all(re.fullmatch(r"replaying the journal: [\d,]+ records, step [\d,]+ so far \(\d+ s\)", m) for m in ticks)
 
 
 def test_journal_record_bytes() -> None:

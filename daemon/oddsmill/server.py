@@ -284,6 +284,24 @@ def load_curve(secret_file: str, clients_dir: str) -> tuple[bytes, bytes]:
     return public, secret
 
 
+class Ticker:
+    """A line in the log every `EVERY` seconds of a long start: a warm start from a large history,
+    or the replay of a long journal, learned for minutes before `serve` said "serving", with
+    nothing in the log meanwhile."""
+
+    EVERY = 10.0
+
+    def __init__(self, what: str) -> None:
+        self.what = what
+        self.began = self.last = time.monotonic()
+
+    def __call__(self, done: str) -> None:
+        now = time.monotonic()
+        if now - self.last >= self.EVERY:
+            self.last = now
+            log.info("%s: %s so far (%.0f s)", self.what, done, now - self.began)
+
+
 class AllowedClients:
     """The public keys of `curve_clients` (its *.key files, read at the start), for ZeroMQ's
     authenticator. A key it refuses is logged, once a key: the refusal was said only at the
@@ -383,7 +401,8 @@ class Server:
         elif warm_start:
             from .offline import read_items, run_logs
 
-            run_logs(self, read_items(warm_start))
+            ticker = Ticker("warm start")
+            run_logs(self, read_items(warm_start), lambda n: ticker(f"{self.engine.learner.step:,} events learned"))
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
             warmed = True
         self.journal = self._open_journal()
@@ -616,6 +635,7 @@ class Server:
         start_segment = position["segment"] if position else None
         start_offset = int(position["offset"]) if position else 0
         replayed = 0
+        ticker = Ticker("replaying the journal")
         for seg in list_journal(self.settings.state_dir):
             if start_segment is not None and seg.name < start_segment:
                 continue
@@ -649,6 +669,7 @@ class Server:
                 if events >= REPLAY_BLOCK:
                     self.learn(batch)
                     batch, events = [], 0
+                    ticker(f"{replayed:,} records, step {self.engine.learner.step:,}")
             if batch:
                 self.learn(batch)
             self._journal_end = (seg, good)  # where its good records end: no second reading
