@@ -13,7 +13,7 @@ from oddsmill.cli import main
 from oddsmill.engine import Score
 from oddsmill.server import Server, ServerSettings, _score_body
 from oddsmill.settings import LearnerSettings
-from oddsmill.storage import journal_record, list_journal, load_newest, read_journal
+from oddsmill.storage import journal_record, list_journal, load_newest
 
 from tests.conftest import DEMO, RunningServer, loopback
 from tests.test_server import Client, bodies
@@ -157,7 +157,7 @@ def test_a_warm_start_whose_checkpoint_cannot_be_written_serves_nothing(  # type
         "Nothing was served and nothing was kept; make room (or give another --state) and start again"
     )
     assert not any("Scoring goes on" in line for line in err), err  # (the outage's line: nothing is served)
-    assert not list_checkpoints(state) and not [r for p in list_journal(state) for r in read_journal(p)]
+    assert not state.exists()  # (it made the directory: it takes it away, with its lock and empty journal)
     monkeypatch.setattr(oddsmill.server, "write_checkpoint", real)  # room again: the same start warm-starts
     server = Server(ServerSettings(state_dir=state, http="off"), LearnerSettings(), [str(DEMO)])
     try:
@@ -165,6 +165,25 @@ def test_a_warm_start_whose_checkpoint_cannot_be_written_serves_nothing(  # type
         assert [p.name for p in list_checkpoints(state)] == ["checkpoint-000000028000.omc"]
     finally:
         server.close()
+
+
+def test_a_warm_start_from_a_bad_log_leaves_the_directory_as_it_was(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """`serve --warm-start` of a missing log, or of one with a bad line, refused it (exit 2) and left
+    behind the state directory it had made, with a lock file in it. Now a directory it made is
+    taken away, and one that was there (empty) is left empty."""
+    bad = tmp_path / "parcels.jsonl"
+    bad.write_text('{"x": {"route_km": 3.5}, "y": 1}\n{"x": {"route_km": 4.5}, "y": 2}\n')
+    made, there = tmp_path / "made", tmp_path / "there"
+    there.mkdir()
+    for state, log, says in (
+        (made, tmp_path / "missing.jsonl", "missing.jsonl: no such file"),
+        (made, bad, "parcels.jsonl:2: bad_label: y must be 0, 1, true or false, got 2"),
+        (there, bad, "parcels.jsonl:2: bad_label"),
+    ):
+        argv = ["serve", "--state", str(state), "--http", "off", "--ingest", "tcp://127.0.0.1:*"]
+        assert main([*argv, "--scores", "tcp://127.0.0.1:*", "--warm-start", str(log)]) == 2
+        assert says in capsys.readouterr().err
+    assert not made.exists() and list(there.iterdir()) == []
 
 
 def test_a_long_start_says_how_far_it_has_come(

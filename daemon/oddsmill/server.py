@@ -39,7 +39,7 @@ from . import columnar, intake
 from . import kernel as K
 from .encoding import BlockBuilder
 from .engine import ColumnScores, Engine, Rejection, Result, Score
-from .errors import ConfigError, ProtocolError, StateWriteError
+from .errors import ConfigError, OddsmillError, ProtocolError, StateWriteError
 from .fastpath import NOT_SUCH, READ, RunReader, read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
@@ -51,6 +51,7 @@ from .settings import LearnerSettings
 from .storage import (
     JOURNAL_MAGIC,
     KEEP,
+    LOCK_NAME,
     JournalWriter,
     Read,
     checkpoint_position,
@@ -373,6 +374,7 @@ class Server:
         self.settings = settings
         self.race: Race | None = None
         check_ports_free(settings)
+        existed = settings.state_dir.exists()  # (a warm start that fails leaves it as it found it)
         rule = sorted(RACE_RULE & (asked or {}).keys())
         if rule and not settings.candidates and not list_checkpoints(settings.state_dir):
             one = len(rule) == 1
@@ -402,7 +404,11 @@ class Server:
             from .offline import read_items, run_logs
 
             ticker = Ticker("warm start")
-            run_logs(self, read_items(warm_start), lambda n: ticker(f"{self.engine.learner.step:,} events learned"))
+            try:
+                run_logs(self, read_items(warm_start), lambda n: ticker(f"{self.engine.learner.step:,} events learned"))
+            except BaseException:  # a log missing or bad: the new state is not begun
+                self._leave_as_found(existed)
+                raise
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
             warmed = True
         self.journal = self._open_journal()
@@ -477,10 +483,31 @@ class Server:
             if self.outage is not None:
                 reason = self.outage
                 self.close()
+                self._leave_as_found(existed)
                 raise StateWriteError(
                     f"cannot write the warm start's checkpoint to {settings.state_dir}: {reason}. Nothing was "
                     "served and nothing was kept; make room (or give another --state) and start again"
                 )
+
+    def _leave_as_found(self, existed: bool) -> None:
+        """After a warm start that failed (a log missing or bad, its checkpoint not written): take
+        away what this start made in the new state directory (journal segments with no record, the
+        lock file) and the directory itself when it made it: a failed start left a directory
+        holding a lock file, or an empty journal as well."""
+        state_dir = self.settings.state_dir
+        for segment in list_journal(state_dir):
+            try:
+                if next(read_journal(segment), None) is None:
+                    segment.unlink(missing_ok=True)
+            except (OddsmillError, OSError):  # (unreadable: not this start's to take away)
+                pass
+        release_state_dir(state_dir)
+        (state_dir / LOCK_NAME).unlink(missing_ok=True)
+        if not existed:
+            try:
+                state_dir.rmdir()  # (only if empty: anything else in it stays)
+            except OSError:
+                pass
 
     def _refresh(self) -> None:
         now = time.monotonic()
