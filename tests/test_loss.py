@@ -70,3 +70,27 @@ def test_an_overrun_shows_as_lost_events(tmp_path: Path) -> None:
     assert lost > 0, "the burst did not overrun the daemon: nothing to show"
     assert learned + lost == n + 1
     assert running.server.engine.learner.step == learned
+
+
+def test_producers_kept_are_bounded_and_the_longest_silent_forgotten(monkeypatch, caplog) -> None:  # type: ignore[no-untyped-def]
+    """The last number of every producer ever heard was kept, in memory and in every checkpoint: a
+    producer that named itself anew for each message grew both without bound. At most
+    `PRODUCERS_KEPT` are kept; the longest silent is forgotten (its next number starts it afresh,
+    a gap not counted), the log says so once, and a checkpoint keeps the order."""
+    from oddsmill import engine as engine_module
+    from oddsmill.engine import Engine
+    from oddsmill.learner import Learner
+
+    monkeypatch.setattr(engine_module, "PRODUCERS_KEPT", 3)
+    e = Engine(Learner(LearnerSettings()))
+    with caplog.at_level("WARNING", logger="oddsmill"):
+        for src, seq in (("van-1", 0), ("van-2", 0), ("van-3", 0), ("van-1", 1), ("van-4", 0), ("van-5", 0)):
+            assert e.numbered(src, seq)
+    assert list(e.last_seq) == ["van-1", "van-4", "van-5"]  # van-2, then van-3, the longest silent
+    assert len([m for m in caplog.messages if "producers (src)" in m]) == 1
+    assert e.numbered("van-2", 7) and e.counters.lost == 0  # forgotten: a fresh start, no gap counted
+    assert e.numbered("van-4", 3) and e.counters.lost == 2  # kept: its gap is counted
+    from oddsmill.storage import decode_checkpoint, encode_checkpoint
+
+    again = Engine.from_state_dict(decode_checkpoint(encode_checkpoint({"engine": e.state_dict()}))["engine"])
+    assert list(again.last_seq) == list(e.last_seq) == ["van-5", "van-2", "van-4"]

@@ -8,6 +8,7 @@ from sockets, so both learn exactly the same thing from the same messages.
 
 from __future__ import annotations
 
+import logging
 import math
 from array import array
 from collections import OrderedDict
@@ -28,6 +29,8 @@ from .protocol import Columns, Event, Item
 if TYPE_CHECKING:
     from .intake import Intake
     from .quick import Known
+
+log = logging.getLogger("oddsmill")
 
 # A held scoring request: (slots, values, w, logit, clock): the logit is the score published for
 # it, the clock its arrival time (the time-to-live counts in the daemon's own clock). A plain tuple
@@ -123,6 +126,10 @@ class Counters:
 
 DROP, JOIN, HOLD = 0, 1, 2  # what `prepare` did to the pending store, for `follow` to do the same
 DROPPED_KEPT = 10_000  # requests dropped from the pending store whose reason is kept (`Engine.dropped`)
+# Producers (`src`) whose last number is kept: the longest silent beyond it are forgotten (their
+# next number starts them afresh, a gap in it not counted). A producer naming itself anew for each
+# message (a process id, a uuid) grew the map, and every checkpoint, without bound.
+PRODUCERS_KEPT = 100_000
 
 
 class Plan:
@@ -183,7 +190,8 @@ class Engine:
         # follows a race's leader keeps none)
         self.dropped: OrderedDict[Any, str] = OrderedDict()
         self.counters = Counters()
-        self.last_seq: dict[str, int] = {}
+        self.last_seq: dict[str, int] = {}  # by producer, from the longest silent (PRODUCERS_KEPT at most)
+        self.said_producers = False  # whether the log has said producers are forgotten
 
     def process(self, items: list[tuple[float, Item]]) -> list[tuple[int, Result]]:
         """Run items (arrival time, decoded item) as one block; returns (index of the item, score,
@@ -561,7 +569,19 @@ class Engine:
             if seq <= last:
                 return False
             self.counters.lost += seq - last - 1
+        if last is not None:
+            del self.last_seq[src]  # (put back last: the map runs from the longest silent producer)
         self.last_seq[src] = seq
+        if len(self.last_seq) > PRODUCERS_KEPT:
+            del self.last_seq[next(iter(self.last_seq))]
+            if not self.said_producers:
+                self.said_producers = True
+                log.warning(
+                    "more than %s producers (src) have numbered their messages: the longest silent are forgotten "
+                    "(a gap in their numbering is then not counted as lost); a producer names itself anew for "
+                    "each message or process?",
+                    f"{PRODUCERS_KEPT:,}",
+                )
         return True
 
     def in_sequence(self, numbers: list[tuple[str | None, int | None]]) -> bool:
