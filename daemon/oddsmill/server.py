@@ -475,11 +475,7 @@ class Server:
             # Without it nothing is served: an outage would have journaled what came on top of a
             # model only memory held, and a crash then left a journal that a restart learned alone,
             # refusing the warm start (the directory held a model).
-            self.going_on = True  # (the outage's line would say that scoring goes on)
-            try:
-                self.checkpoint()
-            finally:
-                self.going_on = False
+            self._checkpoint_going_on()  # (the outage's line would say that scoring goes on)
             if self.outage is not None:
                 reason = self.outage
                 self.close()
@@ -488,6 +484,15 @@ class Server:
                     f"cannot write the warm start's checkpoint to {settings.state_dir}: {reason}. Nothing was "
                     "served and nothing was kept; make room (or give another --state) and start again"
                 )
+
+    def _checkpoint_going_on(self) -> None:
+        """`checkpoint`, a failure going on with the outage there is (`going_on`): no line and no
+        count of its own (the warm start's checkpoint, and the recovery's)."""
+        self.going_on = True
+        try:
+            self.checkpoint()
+        finally:
+            self.going_on = False
 
     def _leave_as_found(self, existed: bool) -> None:
         """After a warm start that failed (a log missing or bad, its checkpoint not written): take
@@ -1472,11 +1477,7 @@ class Server:
         # The outage ends with a checkpoint written. The journal takes writes before a checkpoint
         # does on a full disk (its segment's blocks are reserved): the log said "writes succeed
         # again" and then the outage's error, every RETRY_SECONDS, for as long as it lasted.
-        self.going_on = True
-        try:
-            self.checkpoint()
-        finally:
-            self.going_on = False
+        self._checkpoint_going_on()
         if self.outage is not None:
             if not self.said_checkpoint_fails:
                 self.said_checkpoint_fails = True
