@@ -408,6 +408,31 @@ def test_pending_requests_expire_by_arrival_time_and_are_counted() -> None:
     assert [type(r).__name__ for _, r in eng.process([(1066.0, it) for it in decode_body({"id": "old", "y": 1})])] == []
 
 
+def test_a_second_outcome_is_told_its_request_was_answered_already(monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """A second outcome for an id (a queue that delivers at least once) got "no scoring request with
+    id ... is held", as a wrong id does. The ids of the last `JOINED_KEPT` outcomes learned are
+    kept (here 2), so it is told, on both paths; a request held again under the id is joined as
+    usual."""
+    from oddsmill import engine
+
+    monkeypatch.setattr(engine, "JOINED_KEPT", 2)
+    eng = Engine(Learner())
+    for i in range(3):
+        eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "x": {"a": 1.0}})])
+        assert eng.process([(float(i), it) for it in decode_body({"id": f"P{i}", "y": 1})]) == []
+    assert list(eng.joined) == ["P1", "P2"]
+    again = "the outcome of the scoring request with id 'P2' was learned already: an outcome is learned once"
+    results = eng.process([(5.0, it) for it in decode_body({"id": "P2", "y": 0})])
+    assert [r.detail for _, r in results] == [again]  # type: ignore[union-attr]
+    (only,) = decode_body({"id": "P2", "y": 0})
+    assert eng.one(6.0, only).detail == again  # type: ignore[union-attr, arg-type]
+    results = eng.process([(7.0, it) for it in decode_body({"id": "P0", "y": 0})])  # beyond the last 2
+    assert [r.detail for _, r in results] == ["no scoring request with id 'P0' is held"]  # type: ignore[union-attr]
+    eng.process([(8.0, it) for it in decode_body({"id": "P2", "x": {"a": 2.0}})])
+    assert "P2" not in eng.joined
+    assert eng.process([(9.0, it) for it in decode_body({"id": "P2", "y": 1})]) == []
+
+
 def test_the_pending_store_is_bounded_by_count_and_counts_evictions() -> None:
     eng = Engine(Learner(), pending_limit=2)
     for i in range(3):

@@ -126,6 +126,7 @@ class Counters:
 
 DROP, JOIN, HOLD = 0, 1, 2  # what `prepare` did to the pending store, for `follow` to do the same
 DROPPED_KEPT = 10_000  # requests dropped from the pending store whose reason is kept (`Engine.dropped`)
+JOINED_KEPT = 10_000  # ids whose outcome was learned, kept so that a second outcome is told so (`Engine.joined`)
 # Producers (`src`) whose last number is kept: the longest silent beyond it are forgotten (their
 # next number starts them afresh, a gap in it not counted). A producer naming itself anew for each
 # message (a process id, a uuid) grew the map, and every checkpoint, without bound.
@@ -189,6 +190,10 @@ class Engine:
         # that an outcome that comes too late is told so (not kept in checkpoints; a candidate that
         # follows a race's leader keeps none)
         self.dropped: OrderedDict[Any, str] = OrderedDict()
+        # the ids of the last JOINED_KEPT outcomes learned (not kept in checkpoints either): a second
+        # outcome for one (a queue that delivers at least once) was told only that no request was
+        # held, as a wrong id is
+        self.joined: OrderedDict[Any, None] = OrderedDict()
         self.counters = Counters()
         self.last_seq: dict[str, int] = {}  # by producer, from the longest silent (PRODUCERS_KEPT at most)
         self.said_producers = False  # whether the log has said producers are forgotten
@@ -225,6 +230,7 @@ class Engine:
             held = self.pending.pop(ev.id, None)
             if held is None:
                 return self._unknown(ev.id)
+            self._joined(ev.id)
             assert ev.y is not None
             y = float(ev.y)
             lr.run_one(held[E_SLOTS], held_values(held), K.OP_LEARN, y, held[E_W])
@@ -366,6 +372,7 @@ class Engine:
                     if held is None:
                         results.append((n, self._unknown(ev.id)))
                         continue
+                    self._joined(ev.id)
                     assert ev.y is not None
                     pos = len(b)
                     b.add(held[E_SLOTS], held_values(held), K.OP_LEARN, float(ev.y), held[E_W])
@@ -603,6 +610,8 @@ class Engine:
         self.pending[ident] = entry
         if self.dropped:
             self.dropped.pop(ident, None)
+        if self.joined:
+            self.joined.pop(ident, None)
         evicted = 0
         while len(self.pending) > self.pending_limit:
             self._dropped(self.pending.popitem(last=False)[0], "evicted")
@@ -628,6 +637,12 @@ class Engine:
         if len(dropped) > DROPPED_KEPT:
             dropped.popitem(last=False)
 
+    def _joined(self, ident: Any) -> None:
+        joined = self.joined
+        joined[ident] = None
+        if len(joined) > JOINED_KEPT:
+            joined.popitem(last=False)
+
     def _unknown(self, ident: Any) -> Rejection:
         """An outcome whose request is not held: said to have come too late when it was dropped."""
         why = self.dropped.get(ident)
@@ -640,6 +655,10 @@ class Engine:
             detail = (
                 f"the scoring request with id {ident!r} was pushed out of the pending store, full at"
                 f" {self.pending_limit:,} requests, before this outcome came"
+            )
+        elif ident in self.joined:
+            detail = (
+                f"the outcome of the scoring request with id {ident!r} was learned already: an outcome is learned once"
             )
         else:
             detail = f"no scoring request with id {ident!r} is held"
