@@ -87,23 +87,30 @@ class Handshake:
         self._monitor.close(0)
 
 
+# What a probe can find (NoAnswer.why), one of these: callers compare with them, not with words.
+KEY_REFUSED = "the daemon refused this client's key: its public key is not among those the daemon allows"
+NEEDS_KEYS = "the daemon requires CURVE keys, and this client has none"
+WRONG_DAEMON_KEY = (
+    "the CURVE handshake failed: the daemon's public key is not the one this client was given, "
+    "or the daemon does not use CURVE"
+)
+OTHER_KIND = (
+    "the socket there does not take this kind of client (a daemon's ingest takes pub producers, "
+    "or push ones with --ingest-kind pull; scores come from its scores address)"
+)
+NOT_ZEROMQ = "something accepts connections there, but it does not answer as ZeroMQ does"
+NOTHING_THERE = "nothing accepts connections there"
+
+
 def _reason(seen: int, curve: Any) -> str | None:
     if seen & zmq.EVENT_HANDSHAKE_SUCCEEDED:
         return None
     if seen & zmq.EVENT_HANDSHAKE_FAILED_AUTH:
-        return "the daemon refused this client's key: its public key is not among those the daemon allows"
+        return KEY_REFUSED
     if seen & _FAILED:
-        if curve is None:
-            return "the daemon requires CURVE keys, and this client has none"
-        return (
-            "the CURVE handshake failed: the daemon's public key is not the one this client was given, "
-            "or the daemon does not use CURVE"
-        )
+        return NEEDS_KEYS if curve is None else WRONG_DAEMON_KEY
     if seen & zmq.EVENT_DISCONNECTED:
-        return (
-            "the socket there does not take this kind of client (a daemon's ingest takes pub producers, "
-            "or push ones with --ingest-kind pull; scores come from its scores address)"
-        )
+        return OTHER_KIND
     if seen & zmq.EVENT_CONNECTED:
-        return "something accepts connections there, but it does not answer as ZeroMQ does"
-    return "nothing accepts connections there"
+        return NOT_ZEROMQ
+    return NOTHING_THERE

@@ -689,13 +689,15 @@ def cmd_send(args: argparse.Namespace) -> int:
 
     def nobody(e: TimeoutError) -> OddsmillError:
         """What a probe of the connection found (the client's NoAnswer), or the likeliest causes."""
+        from oddsmill_client import sockets
+
         why = getattr(e, "why", None)
         if why is None:
             return OddsmillError(
                 f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with"
                 f" --ingest {args.to}? --wait gives it longer)"
             )
-        if why.startswith("nothing accepts"):
+        if why == sockets.NOTHING_THERE:
             why = f"{why} (is `{serve}` running with --ingest {args.to}?)"
         return OddsmillError(f"no daemon took the stream at {args.to} within {args.wait:g} s: {_curve_hint(why, args)}")
 
@@ -756,9 +758,11 @@ def _check_messages(name: str) -> None:
 
 def _curve_hint(why: str, args: argparse.Namespace) -> str:
     """A probe's finding, with the flags that mend it when it is about keys."""
-    if "CURVE keys" in why and not args.curve_secret:
+    from oddsmill_client import sockets
+
+    if why == sockets.NEEDS_KEYS and not args.curve_secret:
         return f"{why} (--curve-secret and --curve-server)"
-    if "handshake failed" in why:
+    if why == sockets.WRONG_DAEMON_KEY:
         return f"{why} (--curve-server: the daemon's NAME.key)"
     return why
 
