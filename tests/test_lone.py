@@ -13,6 +13,7 @@ from typing import Any
 import msgpack
 import numpy as np
 import pytest
+import zmq
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from oddsmill.engine import Engine, Rejection, Score
@@ -37,8 +38,14 @@ class Recorder:
         self.frames.append(bytes(data))
 
 
+def uncopied(blocks: list[list[list[bytes]]]) -> list[list[list[Any]]]:
+    """The blocks with each body as `server.Receiver` hands a large one: a memoryview of a ZeroMQ
+    frame, not a bytes object."""
+    return [[[m[0], *(zmq.Frame(f).buffer for f in m[1:])] for m in block] for block in blocks]
+
+
 def run_server(
-    state: Path, blocks: list[list[list[bytes]]], small_paths: bool, monkeypatch: Any, fsync: str = "interval"
+    state: Path, blocks: list[list[list[Any]]], small_paths: bool, monkeypatch: Any, fsync: str = "interval"
 ) -> Any:
     """Handle the blocks in a Server (no sockets), each at its own fixed arrival time; returns
     (server, frames published, journal bytes)."""
@@ -257,6 +264,37 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     assert fast_journal == full_journal
     same_state(fast.engine, full.engine)
     assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
+    # every body received uncopied (as large ones are): the columnar path reads the memoryviews,
+    # the other paths take bytes (as annotated), and nothing published, journaled or learned differs
+    columnar_views = 0
+    columnar, lone, block = Server._columnar, Server._lone, Server._block
+    given: set[type] = set()  # the types of the bodies the other paths were given
+
+    def columnar_counted(self: Any, messages: Any, *a: Any) -> Any:
+        nonlocal columnar_views
+        done = columnar(self, messages, *a)
+        columnar_views += done and all(type(m[1]) is memoryview for m in messages)
+        return done
+
+    def lone_seen(self: Any, messages: Any, *a: Any) -> Any:
+        given.update(type(f) for m in messages for f in m)
+        return lone(self, messages, *a)
+
+    def block_seen(self: Any, messages: Any, *a: Any) -> Any:
+        given.update(type(f) for m in messages for f in m)
+        return block(self, messages, *a)
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(Server, "_columnar", columnar_counted)
+        mp.setattr(Server, "_lone", lone_seen)
+        mp.setattr(Server, "_block", block_seen)
+        views, views_frames, views_journal = run_server(tmp_path / "views", uncopied(blocks), True, mp)
+    assert columnar_views >= 8, columnar_views
+    assert given == {bytes}, given
+    assert views_frames == full_frames
+    assert views_journal == full_journal
+    same_state(views.engine, full.engine)
+    assert views.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
 
 
 @pytest.mark.parametrize("fsync", ["interval", "block"])
@@ -497,7 +535,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
     real_writev = storage.os.writev
     real_fileno = storage.JournalWriter.fileno
 
-    def run(state: Path, small_paths: bool) -> tuple[Any, list[bytes], bytes]:
+    def run(state: Path, small_paths: bool, views: bool = False) -> tuple[Any, list[bytes], bytes]:
         from oddsmill.server import Server, ServerSettings
 
         with pytest.MonkeyPatch.context() as mp:
@@ -517,7 +555,7 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
 
                 mp.setattr(server, name, counted)
             pub = Recorder()
-            for k, block in enumerate(blocks):
+            for k, block in enumerate(uncopied(blocks) if views else blocks):
                 mp.setattr(time, "time", lambda k=k: 2_000.0 + 3.0 * k)
                 if k in (fail_at, fail_at + 1):
 
@@ -546,6 +584,10 @@ def test_a_write_failure_in_a_small_block_holds_it_as_the_full_path_does(tmp_pat
     try:
         fast, fast_frames, fast_journal = run(tmp_path / "fast", True)
         full, full_frames, full_journal = run(tmp_path / "full", False)
+        if fail_at == 12:  # the columnar blocks' bodies received uncopied (memoryviews) are held too
+            views, views_frames, views_journal = run(tmp_path / "views", True, views=True)
+            assert views_frames == full_frames and views_journal == full_journal
+            same_state(views.engine, full.engine)
     finally:
         os.close(dev_full)
     assert fast_frames == full_frames and len(fast_frames) > 20

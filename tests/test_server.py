@@ -656,6 +656,50 @@ def test_warm_up_leaves_nothing_to_compile_or_load_for_the_loop(tmp_path: Path) 
     assert out.stdout.strip() == "nothing", out.stdout + out.stderr
 
 
+def test_large_bodies_are_received_uncopied_while_they_come() -> None:
+    """server.Receiver over a real socket: each frame as sent, a bytes object except a large body
+    (LARGE_BODY bytes or more) after a large one, which is a memoryview of the frame ZeroMQ holds;
+    the first small body after them is copied again. Every frame of the block comes in order."""
+    from oddsmill.server import LARGE_BODY, Receiver, _as_bytes
+
+    ctx: zmq.Context[Any] = zmq.Context()
+    pull, push = ctx.socket(zmq.PULL), ctx.socket(zmq.PUSH)
+    try:
+        pull.bind("inproc://receiver")
+        push.connect("inproc://receiver")
+        big, small = LARGE_BODY, 200
+        sizes = [small, big, big + 1, 80_000, small, big - 1, big, small, 3 * big, big]
+        sent = [[b"events", bytes([k]) * n] for k, n in enumerate(sizes)]
+        sent.append([b"events", bytes(big), b"a third frame"])
+        for message in sent:
+            push.send_multipart(message)
+        receive = Receiver(pull)
+        got = [receive() for _ in sent]
+        kinds = [[type(f).__name__ for f in frames] for frames in got]
+        assert [k[1] for k in kinds] == [
+            "bytes",  # small
+            "bytes",  # the first large one: copied, and the next is taken uncopied
+            "memoryview",
+            "memoryview",
+            "bytes",  # small: copied, and copies from here on
+            "bytes",
+            "bytes",  # large after a small one
+            "bytes",
+            "bytes",
+            "memoryview",
+            "memoryview",  # (the body of a message of three frames)
+        ]
+        assert all(k[0] == "bytes" for k in kinds) and kinds[-1][2] == "bytes"
+        assert _as_bytes(got) == sent and all(type(f) is bytes for m in _as_bytes(got) for f in m)
+        assert [[bytes(f) for f in m] for m in got] == sent
+        plain = [list(m) for m in sent]
+        assert _as_bytes(plain) is plain  # (nothing to copy: the block itself)
+    finally:
+        pull.close(0)
+        push.close(0)
+        ctx.term()
+
+
 @pytest.mark.parametrize("most,most_bytes", [(4096, 5000), (7, 1 << 20), (3, 2000), (1, 10)])
 def test_a_wake_up_takes_at_most_block_max_messages_and_block_bytes(most: int, most_bytes: int) -> None:
     """The loop's drain (server._drain) over a backlog of messages of mixed sizes (lone events to

@@ -35,7 +35,7 @@ and state to the full path's, byte for byte and bit for bit.
 from __future__ import annotations
 
 import threading
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 from numba import njit
@@ -218,7 +218,7 @@ class ColumnReader:
         self._ys = np.empty(0)
 
     def read(
-        self, raws: list[bytes], shapes: Mapping[tuple[str, ...], tuple[int, ...]]
+        self, raws: Sequence[bytes | memoryview], shapes: Mapping[tuple[str, ...], tuple[int, ...]]
     ) -> tuple[list[Run], list[tuple[str | None, int | None]]] | None:
         """The block's runs and each message's (src, seq), or None when the full path must take
         it. `shapes`: a vocabulary's slots of tuples of names it knows (`Vocabulary.shapes`)."""
@@ -260,7 +260,7 @@ class ColumnReader:
             src = None
             if src_at >= 0:
                 try:
-                    src = raw[src_at:src_end].decode("utf-8")
+                    src = str(raw[src_at:src_end], "utf-8")  # (a memoryview has no decode)
                 except UnicodeDecodeError:  # msgpack refuses it: the full path decides
                     return None
             numbers.append((src, None if seq < 0 else int(seq)))
@@ -277,7 +277,7 @@ class ColumnReader:
         return Run(self.slots, rows, self._ys[start:end], counts)
 
 
-def _slots_of(cols: bytes, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) -> tuple[int, ...] | None:
+def _slots_of(cols: bytes | memoryview, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) -> tuple[int, ...] | None:
     """The slots of a cols array's names (its msgpack bytes), when they are distinct and all known."""
     try:
         names = unpack(cols)

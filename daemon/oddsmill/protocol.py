@@ -135,7 +135,7 @@ def decode_body(body: object) -> list[Item]:
         return [e]
 
 
-def unpack(raw: bytes) -> object:
+def unpack(raw: bytes | memoryview) -> object:
     """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack,
     ("too_large") when it or a part of it is beyond a limit."""
     if len(raw) > MAX_MESSAGE:

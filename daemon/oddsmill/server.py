@@ -22,12 +22,11 @@ import shutil
 import socket
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from functools import partial
 from itertools import repeat
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 from urllib.parse import urlsplit
 
 import msgpack
@@ -52,6 +51,7 @@ from .storage import (
     JOURNAL_MAGIC,
     KEEP,
     LOCK_NAME,
+    Body,
     JournalWriter,
     Read,
     checkpoint_position,
@@ -72,6 +72,7 @@ log = logging.getLogger("oddsmill")
 
 # a columnar message's first key, as the client library and most producers pack it (cols, then rows)
 COLUMNAR_FIRST = (b"\xa4cols", b"\xa4rows")
+LARGE_BODY = 1 << 16  # bodies of this many bytes or more are received uncopied (`Receiver`)
 RACE_RULE = {"race_margin", "race_patience"}  # when a race switches: settings of a race alone
 SINGLE = "none (a single learner)"  # what a state that is no race keeps of a race's settings
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
@@ -449,7 +450,7 @@ class Server:
         # to 120 us in 3 s of the latency bench; 2 young ones now.)
         self.base = self.journal.tell()
         self.base_records = self.records
-        self.unsaved: list[bytes] = []
+        self.unsaved: list[Body] = []
         self.unsaved_at: list[float] = []
         self.outage: str | None = None  # why writes fail, while they do
         self.held: list[tuple[float, bytes]] = []  # arrived during an outage: journal, then learn
@@ -958,7 +959,7 @@ class Server:
             # socket says there are some: a wake-up costs one receive a message, where a poll, then
             # receives until one failed, cost a poll and an exception more (zmq.Again).
             ingest.setsockopt(zmq.RCVTIMEO, POLL_MS)
-            recv = partial(_receive, ingest)
+            recv = Receiver(ingest)
 
             def waiting() -> int:
                 return int(_get(ingest, _EVENTS))
@@ -977,7 +978,7 @@ class Server:
                         now = time.perf_counter()
                 else:
                     try:
-                        frames: list[list[bytes]] = [recv()]
+                        frames: list[list[Body]] = [recv()]
                     except zmq.Again:
                         frames = []
                     if frames:
@@ -1067,14 +1068,14 @@ class Server:
             self.handle(messages, pub, arrival)
         return True
 
-    def _write_failed(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> None:
+    def _write_failed(self, messages: Sequence[Sequence[Body]], pub: zmq.Socket[Any], arrival: float) -> None:
         """The one call's journal write failed (`Known.errno`): nothing of the block was learned;
         the outage begins and the full path holds the block."""
         code = self.known.errno
         self._fail(OSError(code, os.strerror(code)))
-        self._block(messages, pub, arrival, [])
+        self._block(_as_bytes(messages), pub, arrival, [])
 
-    def handle(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float | None = None) -> None:
+    def handle(self, messages: Sequence[Sequence[Body]], pub: zmq.Socket[Any], arrival: float | None = None) -> None:
         """One block: journal, then score and learn, then publish, in arrival order. While the state
         directory cannot be written: score with the model as it stands, and hold the block.
         `arrival`: when it came (default: now)."""
@@ -1086,12 +1087,12 @@ class Server:
             if self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival):
                 return
             if len(messages) < SINGLES_TOGETHER:
-                bodies = self._lone(messages, pub, arrival)
+                bodies = self._lone(_as_bytes(messages), pub, arrival)
                 if not bodies:
                     return
-        self._block(messages, pub, arrival, bodies)
+        self._block(_as_bytes(messages), pub, arrival, bodies)
 
-    def _quick(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> bool:
+    def _quick(self, messages: Sequence[Sequence[Body]], pub: zmq.Socket[Any], arrival: float) -> bool:
         """A block of messages of one numeric training event each (or, once its names are known,
         one scoring request with an integer id), all with the same names in the same order, every
         name known: read in compiled code, journaled, and learned as the rows of one columnar
@@ -1107,6 +1108,8 @@ class Server:
             if len(frames) != 2:
                 return False
             raw = frames[1]
+            if type(raw) is not bytes:  # (a large body, received uncopied: no one event)
+                return False
             head = raw[:3]
             if head[1:] not in EVENT_KEYS or head[:1] not in EVENT_MAPS:
                 return False
@@ -1158,12 +1161,12 @@ class Server:
         self._answer(pub, bodies, arrival)
         return True
 
-    def _columnar(self, messages: list[list[bytes]], pub: zmq.Socket[Any], arrival: float) -> bool:
+    def _columnar(self, messages: Sequence[Sequence[Body]], pub: zmq.Socket[Any], arrival: float) -> bool:
         """A block of plain columnar messages (columnar.py): each read in one compiled call,
         journaled, its runs of the same names learned by `Engine.train_rows` and each answered with
         the body the full path packs. The commonest block of a columnar producer under load. False,
         with nothing done, for any other block."""
-        raws: list[bytes] = []
+        raws: list[Body] = []
         for frames in messages:
             if len(frames) != 2 or frames[1][1:6] not in COLUMNAR_FIRST:
                 return False
@@ -1255,17 +1258,17 @@ class Server:
 
     def _journaled(
         self,
-        messages: list[list[bytes]],
+        messages: Sequence[Sequence[Body]],
         pub: zmq.Socket[Any],
         arrival: float,
-        raws: list[bytes],
+        raws: Sequence[Body],
         unpacked: list[object],
     ) -> bool:
         """Journal a block one of the small paths took. When the write fails, the full path takes
         the block (the outage holds it and scores it with the model as it stands), and False."""
         if self._journal(arrival, raws):
             return True
-        self._block(messages, pub, arrival, unpacked)
+        self._block(_as_bytes(messages), pub, arrival, unpacked)
         return False
 
     def _answer(self, pub: zmq.Socket[Any], scores: list[bytes], arrival: float) -> None:
@@ -1379,7 +1382,7 @@ class Server:
             send(msgpack.packb(_rejection(r)))
 
     # -- writing, and what happens when it fails -------------------------------------------------
-    def _journal(self, arrival: float, raws: list[bytes]) -> bool:
+    def _journal(self, arrival: float, raws: Sequence[Body]) -> bool:
         """Journal a block's messages before anything of it is learned or published; False when
         the write failed and the block is not in the journal."""
         try:
@@ -1390,7 +1393,7 @@ class Server:
         self._journal_kept(arrival, raws, synced)
         return True
 
-    def _journal_kept(self, arrival: float, raws: list[bytes], synced: bool) -> None:
+    def _journal_kept(self, arrival: float, raws: Sequence[Body], synced: bool) -> None:
         """`_journal`'s accounts, once a block's records reached the file (`synced`: and the disk):
         what is safe, the background fsync, the segment's turn."""
         self.records += len(raws)
@@ -1493,7 +1496,7 @@ class Server:
         )
         self._refresh()
 
-    def _persist(self, arrival: float, raws: list[bytes]) -> bool:
+    def _persist(self, arrival: float, raws: Sequence[Body]) -> bool:
         """Journal a block's records: they reach the operating system (and with fsync = "block"
         the disk); True when they were synced. With "interval" the fsync runs in the background
         (`_sync_in_background`): it took 20 ms and more here, every second, with the loop stopped."""
@@ -1557,17 +1560,51 @@ _send = zmq.backend.Socket.send
 _EVENTS, _RCVMORE, _POLLIN = int(zmq.EVENTS), int(zmq.RCVMORE), int(zmq.POLLIN)
 
 
-def _receive(sock: zmq.Socket[Any], flags: int = 0) -> list[bytes]:
-    """Socket.recv_multipart, reading RCVMORE through `_get`."""
-    parts: list[bytes] = [sock.recv(flags)]
-    while _get(sock, _RCVMORE):
-        parts.append(sock.recv(flags))
-    return parts
+class Receiver:
+    """Socket.recv_multipart for the loop, reading RCVMORE through `_get`. A frame comes as a
+    bytes object, except that while large bodies arrive (LARGE_BODY bytes or more: columnar
+    blocks, batches) each comes as a memoryview of the frame ZeroMQ received, not copied.
+
+    A copy of each columnar block's 80 KB into a new bytes object cost the benchmark's columnar
+    load about a fifth of its events a second (DEVELOPERS, twenty-second session). A frame taken
+    uncopied costs a Frame object, about a microsecond more than a copy for a small body, so the
+    receiver copies until a body is large, and again from the first small one on. The paths
+    other than `Server._columnar` take bytes (`_as_bytes`)."""
+
+    def __init__(self, sock: zmq.Socket[Any]) -> None:
+        self.sock = sock
+        self.uncopied = False  # the last body was large: take the next one uncopied
+
+    def __call__(self, flags: int = 0) -> list[Body]:
+        sock = self.sock
+        parts: list[Body] = [sock.recv(flags)]
+        while _get(sock, _RCVMORE):
+            if self.uncopied:
+                frame = sock.recv(flags, copy=False)
+                if len(frame) >= LARGE_BODY:
+                    parts.append(frame.buffer)
+                else:
+                    parts.append(frame.bytes)
+                    self.uncopied = False
+            else:
+                part = sock.recv(flags)
+                if len(part) >= LARGE_BODY:
+                    self.uncopied = True
+                parts.append(part)
+        return parts
+
+
+def _as_bytes(messages: Sequence[Sequence[Body]]) -> list[list[bytes]]:
+    """The block with each frame a bytes object (a copy of each `Receiver`'s memoryview). A block
+    is a list of lists, whatever the annotation says: one of bytes is itself."""
+    if all(type(f) is bytes for frames in messages for f in frames):
+        return cast(list[list[bytes]], messages)
+    return [[f if type(f) is bytes else bytes(f) for f in frames] for frames in messages]
 
 
 def _drain(
-    first: list[bytes], recv: Callable[[int], list[bytes]], waiting: Callable[[], int], most: int, most_bytes: int
-) -> list[list[bytes]]:
+    first: list[Body], recv: Callable[[int], list[Body]], waiting: Callable[[], int], most: int, most_bytes: int
+) -> list[list[Body]]:
     """The block a wake-up takes: the message received, then those already waiting while the block
     holds fewer than `most` messages and `most_bytes` bytes (so the last may cross it)."""
     frames = [first]

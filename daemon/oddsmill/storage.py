@@ -22,7 +22,7 @@ import logging
 import os
 import re
 import struct
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -56,6 +56,7 @@ _RECORD = struct.Struct("<II")
 _ARRIVAL = struct.Struct(">d")  # a msgpack float 64's bytes after its 0xcb
 JOURNAL_RE = re.compile(r"^journal-(\d+)\.omj$")
 MAX_RECORD = 1 << 30  # a length field beyond this is damage, not a record
+Body = bytes | memoryview  # a message's body as received (the daemon takes large ones uncopied)
 
 
 # -- checkpoints ---------------------------------------------------------------------------------
@@ -270,13 +271,13 @@ def journal_record(arrival: float, raw_body: bytes) -> bytes:
     return b"".join(_record_parts(arrival, [raw_body]))
 
 
-def _record_parts(arrival: float, raw_bodies: list[bytes]) -> list[bytes]:
+def _record_parts(arrival: float, raw_bodies: Sequence[Body]) -> list[Body]:
     """The records of bodies that arrived together, as pieces to write one after another (record
     head, payload head, body): the payload head is packed once, and the bodies are not copied (a
     columnar block's body is tens of kilobytes; copying it twice cost more than its CRC)."""
     head = b"\x92\xcb" + _ARRIVAL.pack(arrival)  # [arrival, ...: msgpack.packb(float(arrival))'s bytes
     crc_head = crc32(head)
-    parts: list[bytes] = []
+    parts: list[Body] = []
     for raw in raw_bodies:
         parts += (_RECORD.pack(len(head) + len(raw), crc32(raw, crc_head)), head, raw)
     return parts
@@ -373,7 +374,7 @@ class JournalWriter:
         self._fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
         self._end = os.lseek(self._fd, 0, os.SEEK_END)  # bytes in the file
         self._reserved = reserve > self._end and _reserve(self._fd, reserve)
-        self._parts: list[bytes] = []  # buffered, in order
+        self._parts: list[Body] = []  # buffered, in order
         self._size = 0  # their bytes
         self._pending: Future[int] | None = None  # a background fsync, covering bytes up to:
         self._pending_end = 0
@@ -389,18 +390,18 @@ class JournalWriter:
                 self.abandon()
                 raise
 
-    def _add(self, parts: list[bytes]) -> None:
+    def _add(self, parts: list[Body]) -> None:
         self._parts += parts
         self._size += sum(map(len, parts))
 
-    def append(self, arrival: float, raw_body: bytes) -> None:
+    def append(self, arrival: float, raw_body: Body) -> None:
         self._add(_record_parts(arrival, [raw_body]))
 
-    def append_all(self, arrival: float, raw_bodies: list[bytes]) -> None:
+    def append_all(self, arrival: float, raw_bodies: Sequence[Body]) -> None:
         """`append` each body, in order (a block's messages all arrived at once)."""
         self._add(_record_parts(arrival, raw_bodies))
 
-    def write_all(self, arrival: float, raw_bodies: list[bytes]) -> None:
+    def write_all(self, arrival: float, raw_bodies: Sequence[Body]) -> None:
         """`append_all`, then `flush`: how the daemon journals each block. With nothing buffered
         (the usual case) the records become the buffer as they are, without joining a list or
         counting the buffer again. With the record's head packed by struct, 3.43 to 3.45 against
