@@ -39,9 +39,9 @@ class Recorder:
 
 
 def uncopied(blocks: list[list[list[bytes]]]) -> list[list[list[Any]]]:
-    """The blocks with each body as `server.Receiver` hands a large one: a memoryview of a ZeroMQ
-    frame, not a bytes object."""
-    return [[[m[0], *(zmq.Frame(f).buffer for f in m[1:])] for m in block] for block in blocks]
+    """The blocks with each body as `server.Receiver` hands a large one: a read-only memoryview of
+    a ZeroMQ frame, not a bytes object."""
+    return [[[m[0], *(zmq.Frame(f).buffer.toreadonly() for f in m[1:])] for m in block] for block in blocks]
 
 
 def run_server(

@@ -604,7 +604,7 @@ import sys
 from pathlib import Path
 import msgpack, numpy as np, zmq
 from numba.core.registry import CPUDispatcher
-from oddsmill.server import Server, ServerSettings
+from oddsmill.server import Receiver, Server, ServerSettings
 
 def compiled():
     return {f"{name}.{attr}": len(obj.signatures) for name, mod in list(sys.modules.items())
@@ -637,6 +637,16 @@ work = [
     [one(i) for i in range(20, 23)],  # the names of the last block: learned in compiled code (quick.py)
     [[b"events", msgpack.packb({"x": {"depot": "Eastgate", "stops_before": 2.0}, "y": 0})]],
 ]
+# columnar blocks as the loop receives them (server.Receiver): the second and third uncopied
+pull, push = ctx.socket(zmq.PULL), ctx.socket(zmq.PUSH)
+pull.bind("inproc://warm-ingest")
+push.connect("inproc://warm-ingest")
+for k in range(3):
+    body = {"cols": names, "rows": rows.tobytes(), "y": labels, "src": "depot-2", "seq": k + 1}
+    push.send_multipart([b"events", msgpack.packb(body)])
+receive = Receiver(pull)
+work.append([receive() for _ in range(3)])
+assert sum(type(m[1]) is memoryview for m in work[-1]) == 2
 for block in work:
     server.handle(block, pub)
 grew = sorted(k for k, v in compiled().items() if v != before.get(k, 0))
@@ -690,6 +700,8 @@ def test_large_bodies_are_received_uncopied_while_they_come() -> None:
             "memoryview",  # (the body of a message of three frames)
         ]
         assert all(k[0] == "bytes" for k in kinds) and kinds[-1][2] == "bytes"
+        # read-only, as bytes are: numpy's view of a writable buffer is another type to numba
+        assert all(f.readonly for m in got for f in m if type(f) is memoryview)
         assert _as_bytes(got) == sent and all(type(f) is bytes for m in _as_bytes(got) for f in m)
         assert [[bytes(f) for f in m] for m in got] == sent
         plain = [list(m) for m in sent]

@@ -1563,7 +1563,7 @@ _EVENTS, _RCVMORE, _POLLIN = int(zmq.EVENTS), int(zmq.RCVMORE), int(zmq.POLLIN)
 class Receiver:
     """Socket.recv_multipart for the loop, reading RCVMORE through `_get`. A frame comes as a
     bytes object, except that while large bodies arrive (LARGE_BODY bytes or more: columnar
-    blocks, batches) each comes as a memoryview of the frame ZeroMQ received, not copied.
+    blocks, batches) each comes as a read-only memoryview of the frame ZeroMQ received, not copied.
 
     A copy of each columnar block's 80 KB into a new bytes object cost the benchmark's columnar
     load about a fifth of its events a second (DEVELOPERS, twenty-second session). A frame taken
@@ -1582,7 +1582,9 @@ class Receiver:
             if self.uncopied:
                 frame = sock.recv(flags, copy=False)
                 if len(frame) >= LARGE_BODY:
-                    parts.append(frame.buffer)
+                    # read-only, as a bytes object is: numpy's view of a writable one is an array
+                    # of another type to numba, and the columnar reader compiled again in the loop
+                    parts.append(frame.buffer.toreadonly())
                 else:
                     parts.append(frame.bytes)
                     self.uncopied = False
