@@ -189,7 +189,7 @@ def test_a_failed_background_fsync_is_noticed_and_nothing_accepted_is_lost(
 def test_large_columnar_blocks_received_uncopied_survive_a_failed_fsync(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    """Columnar blocks of 3,000 rows (96 KB: received as memoryviews of ZeroMQ's frames, not
+    """Columnar blocks of 3,000 rows (192 KB: received as memoryviews of ZeroMQ's frames, not
     copied; server.Receiver), numbered, some with a row to score, between lone events (received
     as bytes again). Their bodies are kept until an fsync covers them; one fails, and the recovery
     writes them again. The journal holds every message once, byte for byte, and the state is its

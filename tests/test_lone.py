@@ -266,14 +266,20 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
     assert fast.engine.state_dict()["pending"] == full.engine.state_dict()["pending"]
     # every body received uncopied (as large ones are): the columnar path reads the memoryviews,
     # the other paths take bytes (as annotated), and nothing published, journaled or learned differs
-    columnar_views = 0
-    columnar, lone, block = Server._columnar, Server._lone, Server._block
+    columnar_views = quick_views = 0
+    columnar, quick, lone, block = Server._columnar, Server._quick, Server._lone, Server._block
     given: set[type] = set()  # the types of the bodies the other paths were given
 
     def columnar_counted(self: Any, messages: Any, *a: Any) -> Any:
         nonlocal columnar_views
         done = columnar(self, messages, *a)
         columnar_views += done and all(type(m[1]) is memoryview for m in messages)
+        return done
+
+    def quick_counted(self: Any, messages: Any, *a: Any) -> Any:  # (it reads a copy of each)
+        nonlocal quick_views
+        done = quick(self, messages, *a)
+        quick_views += done and all(type(m[1]) is memoryview for m in messages)
         return done
 
     def lone_seen(self: Any, messages: Any, *a: Any) -> Any:
@@ -286,10 +292,11 @@ def test_a_long_mixed_stream_takes_every_path_and_ends_the_same(tmp_path: Path) 
 
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(Server, "_columnar", columnar_counted)
+        mp.setattr(Server, "_quick", quick_counted)
         mp.setattr(Server, "_lone", lone_seen)
         mp.setattr(Server, "_block", block_seen)
         views, views_frames, views_journal = run_server(tmp_path / "views", uncopied(blocks), True, mp)
-    assert columnar_views >= 8, columnar_views
+    assert columnar_views >= 8 and quick_views >= 10, (columnar_views, quick_views)
     assert given == {bytes}, given
     assert views_frames == full_frames
     assert views_journal == full_journal

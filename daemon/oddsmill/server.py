@@ -72,7 +72,10 @@ log = logging.getLogger("oddsmill")
 
 # a columnar message's first key, as the client library and most producers pack it (cols, then rows)
 COLUMNAR_FIRST = (b"\xa4cols", b"\xa4rows")
-LARGE_BODY = 1 << 16  # bodies of this many bytes or more are received uncopied (`Receiver`)
+# Bodies of this many bytes or more are received uncopied (`Receiver`). Best of seven on inproc, a
+# receive copied against uncopied: 0.59 against 0.76 us at 8,000 bytes, 0.99 against 0.74 at
+# 16,000, 2.69 against 0.78 at 32,000, 7.93 against 0.91 at 80,000.
+LARGE_BODY = 1 << 14
 RACE_RULE = {"race_margin", "race_patience"}  # when a race switches: settings of a race alone
 SINGLE = "none (a single learner)"  # what a state that is no race keeps of a race's settings
 SINGLES_TOGETHER = 4  # one-event messages in a block from which they are read together (fastpath.read_each)
@@ -1108,12 +1111,12 @@ class Server:
             if len(frames) != 2:
                 return False
             raw = frames[1]
-            if type(raw) is not bytes:  # (a large body, received uncopied: no one event)
-                return False
             head = raw[:3]
             if head[1:] not in EVENT_KEYS or head[:1] not in EVENT_MAPS:
                 return False
-            raws.append(raw)
+            # (a large event received uncopied is read as bytes are; a columnar block is declined
+            # above, without a copy)
+            raws.append(raw if type(raw) is bytes else bytes(raw))
         known = self.known
         engine = self.engine
         vocab = engine.learner.vocab
@@ -1565,11 +1568,11 @@ class Receiver:
     bytes object, except that while large bodies arrive (LARGE_BODY bytes or more: columnar
     blocks, batches) each comes as a read-only memoryview of the frame ZeroMQ received, not copied.
 
-    A copy of each columnar block's 80 KB into a new bytes object cost the benchmark's columnar
-    load about a fifth of its events a second (DEVELOPERS, twenty-second session). A frame taken
-    uncopied costs a Frame object, about a microsecond more than a copy for a small body, so the
-    receiver copies until a body is large, and again from the first small one on. The paths
-    other than `Server._columnar` take bytes (`_as_bytes`)."""
+    A copy of each columnar block's 80 KB into a new bytes object took a ninth of the loop's time
+    a message under the benchmark's columnar load (DEVELOPERS, twenty-second session). A frame
+    taken uncopied costs a Frame object, more than a copy of a small body, so the receiver copies
+    until a body is large, and again from the first small one on. The paths other than
+    `Server._columnar` take bytes (`_as_bytes`; `_quick` copies the body it reads)."""
 
     def __init__(self, sock: zmq.Socket[Any]) -> None:
         self.sock = sock
