@@ -12,6 +12,7 @@ import time
 from pathlib import Path
 from typing import Any
 
+import msgpack
 import numpy as np
 import pytest
 import zmq
@@ -78,6 +79,38 @@ def test_scores_are_published_in_order_and_equal_an_offline_replay(tmp_path: Pat
     assert full_rows(state["engine"]["learner"])["slots"].tobytes() == engine.learner.state_dict()["slots"].tobytes()
 
 
+def test_large_batches_with_ids_are_answered_whether_received_copied_or_not(tmp_path: Path) -> None:
+    """Batches of 300 events with string ids (over 16 KiB: received uncopied after the first, as
+    server.Receiver takes large bodies) through a live daemon, with lone events: every event
+    is answered with its own id, in order, as an offline replay of the journal scores it. The
+    full path reads a batch's ids as bytes; it is given bytes only (a memoryview has no decode)."""
+    from oddsmill.server import LARGE_BODY
+
+    running = RunningServer(loopback(tmp_path), LearnerSettings(scale_warmup=200))
+    server = running.server
+    client = Client(running.ctx, server.bound["ingest"], server.bound["scores"])
+    rng = np.random.default_rng(5)
+    names = [f"leg_{j}_km" for j in range(12)]
+    sent: list[dict[str, Any]] = []
+    for k in range(6):
+        xs = [dict(zip(names, rng.normal(size=12).tolist(), strict=True)) for _ in range(300)]
+        events = [{"id": f"P{k}-{i:04d}", "x": x, "y": int(i % 3 == 0)} for i, x in enumerate(xs)]
+        sent.append({"batch": events})
+        if k % 3 == 2:  # (after a small body, the next large one is copied again)
+            sent.append({"id": f"L{k}", "x": {"leg_0_km": 1.5}, "y": 1})
+    assert all(len(msgpack.packb(b)) >= LARGE_BODY for b in sent if "batch" in b)
+    for b in sent:
+        client.send(b)
+    answers = client.receive(len(sent))
+    got = [[e["id"] for e in body["batch"]] if "batch" in body else [body["id"]] for _, body in answers]
+    assert got == [[e["id"] for e in b["batch"]] if "batch" in b else [b["id"]] for b in sent]
+    client.close()
+    running.close()
+    _, scores = replay_journal(tmp_path, LearnerSettings(scale_warmup=200))
+    mine = [e["logit"] for _, body in answers for e in (body["batch"] if "batch" in body else [body])]
+    assert mine == [s.logit for s in scores][-len(mine) :]
+
+
 def test_columnar_blocks_under_load_are_read_in_compiled_code_and_equal_an_offline_replay(tmp_path: Path) -> None:
     """Numbered columnar blocks that wait several to a wake-up, with names the daemon knows, in two
     orders: `Server._columnar` takes the blocks; every message is answered once, in order, and
@@ -113,9 +146,9 @@ def test_columnar_blocks_under_load_are_read_in_compiled_code_and_equal_an_offli
             taken.append(len(messages))
         return done
 
-    def hold(messages: Any, pub: Any) -> None:  # the first wake-up waits until all 80 are sent
+    def hold(messages: Any, pub: Any, **how: Any) -> None:  # the first wake-up waits until all 80 are sent
         held.wait(30)
-        handle(messages, pub)
+        handle(messages, pub, **how)
 
     server._columnar = counted  # type: ignore[method-assign]
     server.handle = hold  # type: ignore[method-assign]
