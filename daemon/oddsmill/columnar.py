@@ -42,7 +42,7 @@ from numba import njit
 
 from .errors import ProtocolError
 from .fastpath import _map_len, _str
-from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, unpack
+from .protocol import MAX_BIN, MAX_ITEMS, MAX_MESSAGE, MAX_STR, VALUE_MAX, VALUE_MIN, Body, unpack
 from .quick import _ID, _LOGIT, _P, _STEP, _TS, _p, _put, _put_be, _put_float, _put_int
 from .vocabulary import same_bytes
 
@@ -218,7 +218,7 @@ class ColumnReader:
         self._ys = np.empty(0)
 
     def read(
-        self, raws: Sequence[bytes | memoryview], shapes: Mapping[tuple[str, ...], tuple[int, ...]]
+        self, raws: Sequence[Body], shapes: Mapping[tuple[str, ...], tuple[int, ...]]
     ) -> tuple[list[Run], list[tuple[str | None, int | None]]] | None:
         """The block's runs and each message's (src, seq), or None when the full path must take
         it. `shapes`: a vocabulary's slots of tuples of names it knows (`Vocabulary.shapes`)."""
@@ -277,7 +277,7 @@ class ColumnReader:
         return Run(self.slots, rows, self._ys[start:end], counts)
 
 
-def _slots_of(cols: bytes | memoryview, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) -> tuple[int, ...] | None:
+def _slots_of(cols: Body, shapes: Mapping[tuple[str, ...], tuple[int, ...]]) -> tuple[int, ...] | None:
     """The slots of a cols array's names (its msgpack bytes), when they are distinct and all known."""
     try:
         names = unpack(cols)

@@ -135,7 +135,12 @@ def decode_body(body: object) -> list[Item]:
         return [e]
 
 
-def unpack(raw: bytes | memoryview) -> object:
+# a message's body as received: large ones are read-only memoryviews of ZeroMQ's frames, not copied
+# (`server.Receiver`); what reads a body takes either
+Body = bytes | memoryview
+
+
+def unpack(raw: Body) -> object:
     """msgpack bytes to a body, with limits; ProtocolError("undecodable") when it is not msgpack,
     ("too_large") when it or a part of it is beyond a limit."""
     if len(raw) > MAX_MESSAGE:

@@ -38,7 +38,7 @@ from zlib_ng.zlib_ng import crc32
 
 from .errors import CheckpointError, ConfigError, JournalError
 from .fastpath import read_batch
-from .protocol import Columns
+from .protocol import Body, Columns
 
 log = logging.getLogger("oddsmill")
 
@@ -56,7 +56,6 @@ _RECORD = struct.Struct("<II")
 _ARRIVAL = struct.Struct(">d")  # a msgpack float 64's bytes after its 0xcb
 JOURNAL_RE = re.compile(r"^journal-(\d+)\.omj$")
 MAX_RECORD = 1 << 30  # a length field beyond this is damage, not a record
-Body = bytes | memoryview  # a message's body as received (the daemon takes large ones uncopied)
 
 
 # -- checkpoints ---------------------------------------------------------------------------------
