@@ -43,7 +43,17 @@ from .fastpath import NOT_SUCH, READ, RunReader, read_batch, read_each
 from .learner import Learner
 from .metrics import Board, Snapshot, serve_http
 from .progressive import ProgressiveMetrics
-from .protocol import TRANSPORT_LIMIT, Columns, Event, Item, decode_body, is_refused_record, refused_record, unpack
+from .protocol import (
+    TRANSPORT_LIMIT,
+    Body,
+    Columns,
+    Event,
+    Item,
+    decode_body,
+    is_refused_record,
+    refused_record,
+    unpack,
+)
 from .quick import WRITE_FAILED, Known
 from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
 from .settings import LearnerSettings
@@ -51,7 +61,6 @@ from .storage import (
     JOURNAL_MAGIC,
     KEEP,
     LOCK_NAME,
-    Body,
     JournalWriter,
     Read,
     checkpoint_position,
@@ -1097,11 +1106,11 @@ class Server:
             arrival = time.time()
         self.taking_in = False
         bodies: list[object] = []
-        if self.race is None and self.outage is None:
-            if self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival):
-                return
+        small_paths = self.race is None and self.outage is None
+        if small_paths and (self._quick(messages, pub, arrival) or self._columnar(messages, pub, arrival)):
+            return
         plain = _as_bytes(messages) if uncopied else cast(list[list[bytes]], messages)
-        if self.race is None and self.outage is None and len(messages) < SINGLES_TOGETHER:
+        if small_paths and len(messages) < SINGLES_TOGETHER:
             bodies = self._lone(plain, pub, arrival)
             if not bodies:
                 return
