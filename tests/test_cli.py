@@ -348,7 +348,16 @@ def test_demo_summary_agrees_with_the_fit(tmp_path: Path, monkeypatch, capsys) -
     code, out, _ = run(["inspect", kept[0], "--json"], capsys)
     with gzip.open(DEMO, "rt") as f:
         outcomes = sum(1 for line in f if '"y"' in line)
-    assert code == 0 and json.loads(out)["step"] == outcomes  # every outcome of the demo's log learned
+    model = json.loads(out)
+    assert code == 0 and model["step"] == outcomes  # every outcome of the demo's log learned
+    with gzip.open(DEMO, "rt") as f:  # the names of the log's features, and nothing else (no probe's)
+        names = {
+            k if not isinstance(v, str) else f"{k}={v}"
+            for line in f
+            for k, v in json.loads(line).get("x", {}).items()
+            if v is not None
+        }
+    assert {c["feature"] for c in model["coefficients"]} <= names
     res, _ = fit_logs([str(DEMO)], LearnerSettings())
     assert f"log-loss {res.log_loss:.4f}" in text
     assert "a week of snow" in text

@@ -55,11 +55,13 @@ class ScoreSubscriber:
 
     def await_daemon(self, producer: Any, timeout: float = 10.0) -> None:
         """Return once this subscription has reached the daemon (ZeroMQ's slow joiner): send probe
-        scoring requests through `producer` (no id, so nothing is held) until one is answered,
-        then drop the answers to the extra probes. TimeoutError if none is answered in time."""
+        scoring requests through `producer` until one is answered, then drop the answers to the
+        extra probes. TimeoutError if none is answered in time. A probe has no id (nothing is
+        held) and no feature (no name joins the model's vocabulary: a named one showed in every
+        `fit` and `inspect` of the demo's model, at 0 with a warning)."""
         deadline = time.monotonic() + timeout
         while True:
-            producer.send({"x": {"probe": 1.0}})
+            producer.send({"x": {}})
             producer.flush()
             try:
                 self.receive(timeout=0.1)
