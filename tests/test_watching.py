@@ -412,3 +412,41 @@ def test_a_report_the_disk_cannot_hold_leaves_the_earlier_one(tmp_path: Path, ca
     assert capsys.readouterr().err.strip() == f"oddsmill: --out {str(out)!r}: cannot write (No space left on device)"
     assert out.read_bytes() == earlier
     assert sorted(p.name for p in tmp_path.iterdir()) == ["few.jsonl", "r.html", "s"]
+
+
+def test_watch_says_why_the_life_chart_is_empty() -> None:
+    """Until the first point of the log-loss history (50 labelled events), the chart's line said
+    "no labelled events yet" even with some: it now tells the two apart."""
+    from oddsmill.engine import Engine
+    from oddsmill.learner import Learner
+    from oddsmill.metrics import Snapshot, status_document
+    from oddsmill.protocol import decode_body
+    from oddsmill.watch import render
+
+    engine = Engine(Learner())
+
+    def life_line(labelled: int) -> str:
+        doc = status_document(Snapshot.of(engine, last_checkpoint=0.0), now=0.0)
+        assert doc["log_loss_count"] == labelled
+        return next(line for line in render(doc, "here").splitlines() if "over the model's life" in line)
+
+    assert life_line(0).endswith(": no labelled events yet")
+    engine.process([(0.0, item) for item in decode_body({"x": {"route_km": 3.0}, "y": 1})])
+    assert life_line(1).endswith(": too few labelled events for a point yet")
+    for i in range(49):
+        engine.process([(0.0, item) for item in decode_body({"x": {"route_km": float(i)}, "y": i % 2})])
+    assert "(" in life_line(50) and "up means worse" in life_line(50)  # the first point: a sparkline follows
+
+
+def test_a_report_of_a_few_labelled_events_says_why_its_chart_is_empty(tmp_path: Path) -> None:
+    """The dashboard's log-loss chart (here in a report, the same page) before its first point."""
+    log = tmp_path / "few.jsonl"
+    log.write_text("".join(json.dumps({"x": {"route_km": float(i)}, "y": i % 2}) + "\n" for i in range(10)))
+    state = tmp_path / "state"
+    assert run_cli("replay", str(log), "--state", str(state))[0] == 0
+    out = tmp_path / "few.html"
+    assert run_cli("report", str(state), "--out", str(out))[0] == 0
+    dom = chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile")
+    chart = dom[dom.index('id="chart-logloss"') :]
+    chart = chart[: chart.index("</svg>")]
+    assert "too few labelled events for a point yet" in chart and "no labelled events yet" not in chart

@@ -70,6 +70,11 @@ def _thin(values: list[float | None], width: int) -> list[float | None]:
     return [values[min(len(values) - 1, int((k + 1) * step) - 1)] for k in range(width)]
 
 
+def _no_points(doc: dict[str, Any]) -> str:
+    """What an empty history means: no labelled event, or too few yet for its first point."""
+    return "too few labelled events for a point yet" if doc.get("log_loss_count") else "no labelled events yet"
+
+
 def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
     """One screen of the figures in `doc` (an /api/status document)."""
     lines = []
@@ -91,8 +96,8 @@ def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
             f"recent log-loss over the model's life ({_f(min(window), 3)} to {_f(max(window), 3)}; up means worse):"
         )
         lines.append(f"  {spark}")
-    else:
-        lines.append("recent log-loss over the model's life: no labelled events yet")
+    else:  # (a point is taken every HISTORY_STRIDE labelled events, progressive.py)
+        lines.append(f"recent log-loss over the model's life: {_no_points(doc)}")
     rates = doc.get("rates") or []
     if rates:
         _, train, score, outcome = rates[-1]
