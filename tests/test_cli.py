@@ -532,6 +532,19 @@ def test_fit_refuses_a_log_of_one_outcome(tmp_path: Path, capsys) -> None:  # ty
     )
 
 
+def test_fit_refuses_logs_without_a_labelled_event(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """An empty log, or scoring requests only, is bad input as a log of one outcome is (exit 2):
+    it exited 1, the code of a failure of the program's own."""
+    empty = tmp_path / "empty.jsonl"
+    empty.write_text("")
+    requests = tmp_path / "requests.jsonl"
+    requests.write_text('{"id": "P1", "x": {"route_km": 3.0}}\n')
+    for log in (empty, requests):
+        code, out, err = run(["fit", str(log)], capsys)
+        assert (code, out) == (2, "")
+        assert err == "oddsmill: no labelled events to fit: a fit needs events with y, of both outcomes\n"
+
+
 @pytest.mark.parametrize("free", [1 << 20, None], ids=["estimated first", "numpy's MemoryError"])
 def test_a_fit_too_large_for_the_memory_says_so(free: int | None, monkeypatch, capsys) -> None:  # type: ignore[no-untyped-def]
     """A log whose dense design matrix does not fit in memory: the fit stopped with numpy's

@@ -37,8 +37,8 @@ class AliasedError(OddsmillError):
 
 
 class NoOptimumError(OddsmillError):
-    """Data on which the objective has no maximum: one outcome only, or (at L2 = 0) outcomes the
-    features separate."""
+    """Data on which the objective has no maximum: no labelled event, one outcome only, or (at
+    L2 = 0) outcomes the features separate."""
 
 
 @dataclass(frozen=True)
@@ -138,8 +138,8 @@ def newton_fit(
 ) -> FitResult:
     """Fit on raw features X (n x d; absent = 0) with standardising scales `scale`."""
     n, d = X.shape
-    if n == 0:
-        raise OddsmillError("no labelled events to fit")
+    if n == 0:  # (bad input as one outcome only is: exit 2, where it was 1)
+        raise NoOptimumError("no labelled events to fit: a fit needs events with y, of both outcomes")
     _both_outcomes(y, w)
     Z = np.hstack([np.ones((n, 1)), X / scale])
     bad = aliased_columns(Z)
