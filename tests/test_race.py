@@ -253,6 +253,10 @@ def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_
         "quick",
         "sluggish",
     } - {server.race.names[server.race.serving]} | {server.race.names[server.race.serving] + " (serving)"}
+    # the strongest features are the serving candidate's (they showed none within the first two
+    # seconds: the ranking of the start, with no features, was kept)
+    serving_names = {c["feature"] for c in server.race.engine.learner.top_coefficients(12)[1]}
+    assert serving_names and {b["data-feature"] for b in page.bars} == serving_names
     from tests.tools import ARTIFACTS
 
     ARTIFACTS.mkdir(parents=True, exist_ok=True)

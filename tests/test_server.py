@@ -776,3 +776,31 @@ def test_a_wake_up_takes_at_most_block_max_messages_and_block_bytes(most: int, m
         if k < len(blocks) - 1:  # it ended at a bound, not for want of messages
             assert len(block) == most or sum(sizes) >= most_bytes
     assert len(blocks) > 1 and (most == 1 or max(map(len, blocks)) > 1)
+
+
+def test_the_strongest_features_show_at_once_and_follow_the_serving_engine(tmp_path: Path) -> None:
+    """The ranking of coefficients is kept for RANKING_SECONDS; a fresh daemon's first ranking
+    (no features yet) was kept too, so its dashboard said "no features learned yet" beside a count
+    of features, and after a race's switch it ranked the candidate that served before."""
+    from oddsmill.metrics import TOP_COEFFICIENTS
+
+    from tests.conftest import handled_once
+
+    def names(top: list[dict[str, Any]]) -> list[str]:
+        return [c["feature"] for c in top]
+
+    bodies = [{"x": {"route_km": float(i % 7), "stops_before": float(i % 3)}, "y": i % 2} for i in range(40)]
+    server = handled_once(tmp_path / "s", bodies)
+    server._refresh()
+    shown = server.board.snapshot
+    intercept, top = server.engine.learner.top_coefficients(TOP_COEFFICIENTS)
+    assert set(names(top)) == {"route_km", "stops_before"}
+    assert names(shown.coefficients) == names(top) and shown.intercept == intercept
+    # another engine serves, as `_serve` makes the race's serving candidate the server's engine
+    other = Engine(Learner())
+    other.process(
+        [(0.0, it) for b in bodies for it in decode_body({"x": {"weight_kg": b["x"]["route_km"]}, "y": b["y"]})]
+    )
+    server.engine = other
+    server._refresh()
+    assert names(server.board.snapshot.coefficients) == ["weight_kg"]

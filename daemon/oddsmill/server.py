@@ -476,6 +476,7 @@ class Server:
         self.learned_in_outage = 0  # held messages journaled and learned by this outage's recoveries
         self.board = Board(CollectorRegistry())
         self.last_ranking = self.last_rate = -1e9
+        self.ranked: Engine | None = None  # whose coefficients the board's snapshot ranks
         self.said_full = False  # whether the log has said the vocabulary is full
         self.reader = RunReader()  # blocks of numeric training events, read in compiled code
         self.known = Known()  # and the names of the last such block, learned in compiled code
@@ -530,10 +531,19 @@ class Server:
     def _refresh(self) -> None:
         now = time.monotonic()
         top = None
-        if now - self.last_ranking < RANKING_SECONDS:
-            top = (self.board.snapshot.intercept, self.board.snapshot.coefficients)
+        shown = self.board.snapshot
+        # the last ranking stands for RANKING_SECONDS, unless it is of another engine (a race's
+        # serving candidate changed) or it had no features and the model has some now: a fresh
+        # daemon's dashboard said "no features learned yet" beside its count of features
+        if (
+            now - self.last_ranking < RANKING_SECONDS
+            and self.ranked is self.engine
+            and (shown.coefficients or not self.engine.learner.n_features)
+        ):
+            top = (shown.intercept, shown.coefficients)
         else:
             self.last_ranking = now
+            self.ranked = self.engine
         snapshot = Snapshot.of(
             self.engine,
             self.last_checkpoint,
