@@ -450,3 +450,23 @@ def test_a_report_of_a_few_labelled_events_says_why_its_chart_is_empty(tmp_path:
     chart = dom[dom.index('id="chart-logloss"') :]
     chart = chart[: chart.index("</svg>")]
     assert "too few labelled events for a point yet" in chart and "no labelled events yet" not in chart
+
+
+def test_the_rates_chart_of_one_second_has_no_time_to_come(tmp_path: Path) -> None:
+    """A daemon's first second gives the events/s chart one sample: the axis ran from before it to
+    after now ("-0.2 seconds ago"). One point now sits at the axis' right end."""
+    import re
+
+    from oddsmill.engine import Engine
+    from oddsmill.learner import Learner
+    from oddsmill.report import report_document, write_html
+
+    doc = report_document(Engine(Learner()), created=1000.0, source="a test")
+    doc["rates"] = [[999.3, 5800.0, 0.0, 0.0]]  # (time, train/s, score/s, outcome/s), 0.7 s before the figures
+    out = tmp_path / "rates.html"
+    write_html(doc, out)
+    dom = chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile")
+    chart = dom[dom.index('id="chart-rates"') :]
+    chart = chart[: chart.index("</svg>")]
+    ticks = [float(t) for t in re.findall(r'text-anchor="middle">(-?[0-9.]+)</text>', chart)]
+    assert ticks and min(ticks) >= 0.0, ticks
