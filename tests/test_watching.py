@@ -450,6 +450,14 @@ def test_a_report_of_a_few_labelled_events_says_why_its_chart_is_empty(tmp_path:
     chart = dom[dom.index('id="chart-logloss"') :]
     chart = chart[: chart.index("</svg>")]
     assert "too few labelled events for a point yet" in chart and "no labelled events yet" not in chart
+    # when the checkpoint was written, in the form and zone of the page's own tile for it (it was the
+    # browser's local time as day/month/year: 05/12/2026, a date a reader elsewhere takes for 12 May)
+    import datetime
+    import re
+
+    written = float(re.search(r'"written": ([0-9.]+)', out.read_text()).group(1))
+    when = datetime.datetime.fromtimestamp(written, datetime.UTC).strftime("%Y-%m-%d %H:%M:%S")
+    assert f"checkpoint written {when} UTC</" in dom
 
 
 def test_the_rates_chart_of_one_second_has_no_time_to_come(tmp_path: Path) -> None:
