@@ -138,7 +138,7 @@ def newton_fit(
 ) -> FitResult:
     """Fit on raw features X (n x d; absent = 0) with standardising scales `scale`."""
     n, d = X.shape
-    if n == 0:  # (bad input as one outcome only is: exit 2, where it was 1)
+    if n == 0:  # bad input, as one outcome only is (exit 2)
         raise NoOptimumError("no labelled events to fit: a fit needs events with y, of both outcomes")
     _both_outcomes(y, w)
     Z = np.hstack([np.ones((n, 1)), X / scale])
