@@ -478,3 +478,35 @@ def test_the_rates_chart_of_one_second_has_no_time_to_come(tmp_path: Path) -> No
     chart = chart[: chart.index("</svg>")]
     ticks = [float(t) for t in re.findall(r'text-anchor="middle">(-?[0-9.]+)</text>', chart)]
     assert ticks and min(ticks) >= 0.0, ticks
+
+
+def test_watch_shows_a_race() -> None:
+    """`watch` showed a race's serving candidate's figures and nothing of the race: which
+    candidates there are, how each does, which one serves, and the last switch, as the
+    dashboard's race panel shows them."""
+    from oddsmill.metrics import Snapshot, status_document
+    from oddsmill.race import Race
+    from oddsmill.watch import render
+
+    from tests.test_race import SPEEDS, blocks, drifting
+
+    race = Race(SPEEDS, window=1000, patience=500)
+    for block in blocks(drifting(6_000, change=3_000, seed=5), 200):
+        race.process(block)
+    assert race.switches
+    doc = status_document(Snapshot.of(race.engine, last_checkpoint=0.0, race=race), now=0.0)
+    lines = render(doc, "here").splitlines()
+    at = lines.index("race of 3 candidates   recent log-loss   since start   (* serves)")
+    rows = [line.split() for line in lines[at + 1 : at + 4]]
+    shown = next(c for c in doc["candidates"] if c["serving"])
+    assert shown["name"] == race.names[race.serving]
+    assert [r for r in rows if r[0] == "*"] == [
+        ["*", shown["name"], f"{shown['log_loss_window']:.4f}", f"{shown['log_loss']:.4f}"]
+    ]
+    windows = [float(r[-2]) for r in rows]
+    assert windows == sorted(windows) and {r[-3] for r in rows} == set(race.names)
+    last = race.switches[-1]
+    assert lines[at + 4] == (
+        f"{len(race.switches)} switch{'es' if len(race.switches) > 1 else ''}; last at labelled event "
+        f"{last['at']:,}: {last['from']} -> {last['to']}"
+    )

@@ -132,7 +132,31 @@ def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
             bar = "█" * max(1, round(abs(c["effect"]) / most * 20))
             sign = "+" if c["effect"] >= 0 else "-"
             lines.append(f"  {c['feature'][:28]:<28} {sign}{abs(c['effect']):.2f}  {bar}")
+    lines += _race(doc)
     return "\n".join(line[:width] for line in lines) + "\n"
+
+
+def _race(doc: dict[str, Any]) -> list[str]:
+    """A race's candidates, the best recent log-loss first (* the one whose scores are
+    published), and its last switch: the dashboard's race panel in lines."""
+    candidates = doc.get("candidates") or []
+    if not candidates:
+        return []
+    lines = ["", f"race of {len(candidates)} candidates   recent log-loss   since start   (* serves)"]
+    ranked = sorted(candidates, key=lambda c: (c["log_loss_window"] is None, c["log_loss_window"] or 0.0))
+    for c in ranked:
+        mark = "*" if c["serving"] else " "
+        lines.append(f"  {mark} {c['name'][:30]:<30} {_f(c['log_loss_window']):>15} {_f(c['log_loss']):>13}")
+    switches = doc.get("switches") or []
+    if switches:
+        last = switches[-1]
+        lines.append(
+            f"{len(switches)} switch{'es' if len(switches) > 1 else ''}; last at labelled event "
+            f"{_n(last['at'])}: {last['from']} -> {last['to']}"
+        )
+    else:
+        lines.append("no switch yet")
+    return lines
 
 
 def fetch(http: str, timeout: float = 5.0) -> dict[str, Any]:
