@@ -278,3 +278,33 @@ def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_
     assert resumed.race is not None and resumed.race.serving == server.race.serving
     for a, b in zip(resumed.race.engines, server.race.engines, strict=True):
         assert a.learner.state_dict()["slots"].tobytes() == b.learner.state_dict()["slots"].tobytes()
+
+
+def test_inspect_shows_a_race_in_its_checkpoint(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """`inspect` of a racing daemon's state: each candidate's figures, the serving one marked, and
+    how many switches ("1 switches" before)."""
+    import msgpack
+    import zmq
+    from oddsmill.cli import main
+    from oddsmill.server import Server, ServerSettings
+
+    server = Server(
+        ServerSettings(state_dir=tmp_path / "s", http="off", candidates=tuple(SPEEDS), race_patience=500, window=1000),
+        LearnerSettings(),
+    )
+    ctx: zmq.Context[Any] = zmq.Context()
+    pub = ctx.socket(zmq.PUB)
+    pub.bind(f"inproc://inspect-race-{id(server)}")
+    bodies = drifting(6_000, change=3_000, seed=5)
+    for lo in range(0, len(bodies), 200):
+        server.handle([[b"events", msgpack.packb({"batch": bodies[lo : lo + 200]})]], pub)
+    assert server.race is not None and len(server.race.switches) == 1
+    assert server.checkpoint() is not None
+    server.close()
+    pub.close(0)
+    ctx.term()
+    assert main(["inspect", str(tmp_path / "s")]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert "race of 3 candidates (1 switch); the model below serves" in out
+    serving = [line.split()[0] for line in out if line.endswith("<- serves")]
+    assert serving == [server.race.names[server.race.serving]]

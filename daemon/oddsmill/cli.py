@@ -506,7 +506,8 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     if full:
         print(full)
     if race is not None:
-        print(f"\nrace of {len(race.names)} candidates ({len(race.switches)} switches); the model below serves")
+        n = len(race.switches)
+        print(f"\nrace of {len(race.names)} candidates ({n} switch{'' if n == 1 else 'es'}); the model below serves")
         print(f"  {'candidate':<28}{'log-loss':>10}{'recent':>10}")
         for row in doc["candidates"]:
             mark = "  <- serves" if row["serving"] else ""
