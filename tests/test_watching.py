@@ -447,8 +447,7 @@ def test_a_report_of_a_few_labelled_events_says_why_its_chart_is_empty(tmp_path:
     out = tmp_path / "few.html"
     assert run_cli("report", str(state), "--out", str(out))[0] == 0
     dom = chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile")
-    chart = dom[dom.index('id="chart-logloss"') :]
-    chart = chart[: chart.index("</svg>")]
+    chart = _chart(dom, "chart-logloss")
     assert "too few labelled events for a point yet" in chart and "no labelled events yet" not in chart
     # when the checkpoint was written, in the form and zone of the page's own tile for it (it was the
     # browser's local time as day/month/year: 05/12/2026, a date a reader elsewhere takes for 12 May)
@@ -474,8 +473,7 @@ def test_the_rates_chart_of_one_second_has_no_time_to_come(tmp_path: Path) -> No
     out = tmp_path / "rates.html"
     write_html(doc, out)
     dom = chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile")
-    chart = dom[dom.index('id="chart-rates"') :]
-    chart = chart[: chart.index("</svg>")]
+    chart = _chart(dom, "chart-rates")
     ticks = [float(t) for t in re.findall(r'text-anchor="middle">(-?[0-9.]+)</text>', chart)]
     assert ticks and min(ticks) >= 0.0, ticks
 
@@ -510,3 +508,9 @@ def test_watch_shows_a_race() -> None:
         f"{len(race.switches)} switch{'es' if len(race.switches) > 1 else ''}; last at labelled event "
         f"{last['at']:,}: {last['from']} -> {last['to']}"
     )
+
+
+def _chart(dom: str, ident: str) -> str:
+    """The markup of the page's chart `ident` (its svg element), from a dumped DOM."""
+    chart = dom[dom.index(f'id="{ident}"') :]
+    return chart[: chart.index("</svg>")]

@@ -506,8 +506,9 @@ def cmd_inspect(args: argparse.Namespace) -> int:
     if full:
         print(full)
     if race is not None:
-        n = len(race.switches)
-        print(f"\nrace of {len(race.names)} candidates ({n} switch{'' if n == 1 else 'es'}); the model below serves")
+        from .watch import switches
+
+        print(f"\nrace of {len(race.names)} candidates ({switches(len(race.switches))}); the model below serves")
         print(f"  {'candidate':<28}{'log-loss':>10}{'recent':>10}")
         for row in doc["candidates"]:
             mark = "  <- serves" if row["serving"] else ""

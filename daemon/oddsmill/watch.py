@@ -136,6 +136,11 @@ def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
     return "\n".join(line[:width] for line in lines) + "\n"
 
 
+def switches(n: int) -> str:
+    """ "1 switch", "2 switches": a race's count of them, as `watch` and `inspect` say it."""
+    return f"{n} switch{'' if n == 1 else 'es'}"
+
+
 def _race(doc: dict[str, Any]) -> list[str]:
     """A race's candidates, the best recent log-loss first (* the one whose scores are
     published), and its last switch: the dashboard's race panel in lines."""
@@ -147,13 +152,10 @@ def _race(doc: dict[str, Any]) -> list[str]:
     for c in ranked:
         mark = "*" if c["serving"] else " "
         lines.append(f"  {mark} {c['name'][:30]:<30} {_f(c['log_loss_window']):>15} {_f(c['log_loss']):>13}")
-    switches = doc.get("switches") or []
-    if switches:
-        last = switches[-1]
-        lines.append(
-            f"{len(switches)} switch{'es' if len(switches) > 1 else ''}; last at labelled event "
-            f"{_n(last['at'])}: {last['from']} -> {last['to']}"
-        )
+    said = doc.get("switches") or []
+    if said:
+        last = said[-1]
+        lines.append(f"{switches(len(said))}; last at labelled event {_n(last['at'])}: {last['from']} -> {last['to']}")
     else:
         lines.append("no switch yet")
     return lines
