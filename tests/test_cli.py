@@ -185,12 +185,39 @@ def test_usage_errors_exit_2_with_one_line(argv: list[str], needle: str, capsys)
     assert len(err.strip().splitlines()) == 1
 
 
-def test_an_empty_log_replays_to_a_model_with_no_log_loss_to_show(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
-    """No labelled events: replay and inspect say so in words (they printed "log-loss nan")."""
+@pytest.mark.parametrize("candidates", [[], ["--candidates", "auto"]])
+def test_a_replay_that_learns_nothing_is_refused_and_writes_no_state(
+    tmp_path: Path, capsys, candidates: list[str]
+) -> None:  # type: ignore[no-untyped-def]
+    """An empty log, or one of scoring requests only, is refused (exit 2, the file named) and leaves
+    no state: a checkpoint of nothing would be served from as if it were warm. An empty directory
+    given as the state is let go of, so the next replay can take it."""
     (tmp_path / "empty.jsonl").write_text("")
-    code, out, err = run(["replay", str(tmp_path / "empty.jsonl"), "--state", str(tmp_path / "s")], capsys)
-    assert code == 0, err
-    assert "no labelled events: no progressive log-loss" in out and "nan" not in out
+    (tmp_path / "scores.jsonl").write_text('{"x": {"distance_km": 3.0}}\n{"id": "p2", "x": {}}\n')
+    (tmp_path / "given").mkdir()
+    for log, messages in (("empty.jsonl", 0), ("scores.jsonl", 2)):
+        for state in ("s", "given"):
+            argv = ["replay", str(tmp_path / log), "--state", str(tmp_path / state), *candidates]
+            code, out, err = run(argv, capsys)
+            assert code == 2, (out, err)
+            assert f"{tmp_path / log}: no labelled event to learn from in {messages} message(s)" in err
+            assert "no state was written" in err and out == ""
+            assert not (tmp_path / "s").exists()
+            assert [p.name for p in (tmp_path / "given").iterdir()] in ([], ["lock"])
+    code, out, err = run(["replay", str(DEMO), "--state", str(tmp_path / "given"), *candidates], capsys)
+    assert code == 0 and "checkpoint" in out, err
+
+
+def test_inspect_of_a_model_with_no_labelled_events_says_so(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    """No labelled events (a daemon's first checkpoint, before any outcome): inspect says so in words
+    (it printed "log-loss nan")."""
+    from oddsmill.cli import checkpoint_state
+    from oddsmill.offline import new_engine
+    from oddsmill.settings import LearnerSettings
+    from oddsmill.storage import write_checkpoint
+
+    engine, _ = new_engine(LearnerSettings(), 1, False)
+    write_checkpoint(tmp_path / "s", 0, checkpoint_state(engine))
     code, out, err = run(["inspect", str(tmp_path / "s")], capsys)
     assert code == 0, err
     assert "no labelled events yet: no progressive log-loss" in out and "nan" not in out

@@ -167,18 +167,33 @@ def test_a_warm_start_whose_checkpoint_cannot_be_written_serves_nothing(  # type
         server.close()
 
 
-def test_a_warm_start_from_a_bad_log_leaves_the_directory_as_it_was(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+def test_a_warm_start_from_a_bad_log_leaves_the_directory_as_it_was(
+    tmp_path: Path, capsys, monkeypatch: pytest.MonkeyPatch
+) -> None:  # type: ignore[no-untyped-def]
     """`serve --warm-start` of a missing log, or of one with a bad line, refused it (exit 2) and left
     behind the state directory it had made, with a lock file in it. Now a directory it made is
-    taken away, and one that was there (empty) is left empty."""
+    taken away, and one that was there (empty) is left empty. A log of no labelled event (empty, or
+    scoring requests only) warm-started a state of nothing, "learned 0 events", and served it; it is
+    refused the same way now."""
     bad = tmp_path / "parcels.jsonl"
     bad.write_text('{"x": {"route_km": 3.5}, "y": 1}\n{"x": {"route_km": 4.5}, "y": 2}\n')
+    empty, scores = tmp_path / "empty.jsonl", tmp_path / "scores.jsonl"
+    empty.write_text("")
+    scores.write_text('{"id": "p1", "x": {"route_km": 3.5}}\n')
     made, there = tmp_path / "made", tmp_path / "there"
     there.mkdir()
+
+    def serve_not(self: Server, stop: object) -> None:  # a start that is not refused fails here, not hangs
+        self.close()
+        raise AssertionError("served a state the warm start should have refused")
+
+    monkeypatch.setattr(Server, "serve", serve_not)
     for state, log, says in (
         (made, tmp_path / "missing.jsonl", "missing.jsonl: no such file"),
         (made, bad, "parcels.jsonl:2: bad_label: y must be 0, 1, true or false, got 2"),
         (there, bad, "parcels.jsonl:2: bad_label"),
+        (made, empty, "empty.jsonl: no labelled event to learn from in 0 message(s)"),
+        (there, scores, "scores.jsonl: no labelled event to learn from in 1 message(s)"),
     ):
         argv = ["serve", "--state", str(state), "--http", "off", "--ingest", "tcp://127.0.0.1:*"]
         assert main([*argv, "--scores", "tcp://127.0.0.1:*", "--warm-start", str(log)]) == 2

@@ -197,6 +197,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         return replay_race(args, candidates, window)
     engine, tail = new_engine(settings, args.epochs, given, window=window)
     report = replay(engine, args.logs, args.epochs, tail)
+    refuse_nothing_learned(args.logs, state, engine, report.events)
     hold_state_dir(state)
     path = save_replay(state, engine.learner.step, checkpoint_state(engine))
     m = engine.metrics
@@ -207,10 +208,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         f"{report.epochs} epoch(s), {report.seconds:.1f} s "
         f"({engine.learner.step / max(report.seconds, 1e-9):,.0f} events/s){compiled}"
     )
-    if m.count:
-        print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
-    else:
-        print("no labelled events: no progressive log-loss")
+    print(f"progressive log-loss {m.log_loss:.5f}; last {min(m.count, m.window):,} events {m.log_loss_window:.5f}")
     if rej:
         print(f"rejected {rej:,}: " + ", ".join(f"{k} {v:,}" for k, v in sorted(engine.counters.rejected.items())))
     full = engine.learner.vocab.full_note()
@@ -218,6 +216,17 @@ def cmd_replay(args: argparse.Namespace) -> int:
         print(full)
     print(f"checkpoint {path}")
     return 0
+
+
+def refuse_nothing_learned(logs: list[str], state: Path, engine: Any, messages: int) -> None:
+    """nothing_learned's error, and the state directory let go of, when a replay learned no event."""
+    from .offline import nothing_learned
+    from .storage import release_state_dir
+
+    error = nothing_learned(logs, engine, messages)
+    if error is not None:
+        release_state_dir(state)
+        raise error
 
 
 def refuse_a_state(state: Path) -> None:
@@ -271,7 +280,8 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
     if args.epochs != 1:
         raise UsageError("--candidates races over one pass of the logs: leave out --epochs")
     race = Race(candidates, window)
-    run_logs(race, read_items(args.logs))
+    messages = run_logs(race, read_items(args.logs))
+    refuse_nothing_learned(args.logs, Path(args.state), race.engine, messages)
     state = checkpoint_state(race.engine)
     state["race"] = race.state_dict(compact=True)
     hold_state_dir(Path(args.state))

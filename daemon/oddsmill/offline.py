@@ -129,6 +129,28 @@ def run_logs(
     return count
 
 
+def nothing_learned(logs: list[str], engine: Engine, messages: int) -> InputFileError | None:
+    """The error of logs that taught `engine` no event (None when they taught it one), for the
+    commands that begin a state from logs (`replay`, `serve --warm-start`), which then write no
+    state: a checkpoint of nothing, served from, would start as cold as no checkpoint while seeming
+    warm, and logs without a labelled event are most often the wrong files (the scores' log, or the
+    wrong day's)."""
+    if engine.learner.step:
+        return None
+    rejected = engine.counters.rejected
+    why = (
+        f"; {sum(rejected.values()):,} rejected: " + ", ".join(f"{k} {v:,}" for k, v in sorted(rejected.items()))
+        if rejected
+        else ""
+    )
+    return InputFileError(
+        " ".join(logs),
+        None,
+        f"no labelled event to learn from in {messages:,} message(s){why}. A state begins from events "
+        "with y; no state was written",
+    )
+
+
 class Progress:
     """A one-line progress display on a terminal; silent otherwise."""
 

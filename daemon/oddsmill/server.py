@@ -414,12 +414,17 @@ class Server:
                 f"{self.engine.learner.step:,}",
             )
         elif warm_start:
-            from .offline import read_items, run_logs
+            from .offline import nothing_learned, read_items, run_logs
 
             ticker = Ticker("warm start")
             try:
-                run_logs(self, read_items(warm_start), lambda n: ticker(f"{self.engine.learner.step:,} events learned"))
-            except BaseException:  # a log missing or bad: the new state is not begun
+                messages = run_logs(
+                    self, read_items(warm_start), lambda n: ticker(f"{self.engine.learner.step:,} events learned")
+                )
+                error = nothing_learned(warm_start, self.engine, messages)
+                if error is not None:
+                    raise error
+            except BaseException:  # a log missing, bad or of no labelled event: the new state is not begun
                 self._leave_as_found(existed)
                 raise
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
