@@ -39,6 +39,30 @@ def test_replay_then_inspect_json_has_the_protocol_shape(tmp_path: Path, capsys)
     assert code == 0 and "odds ratio" in out
 
 
+def test_inspect_gives_when_the_checkpoint_was_written_in_utc(
+    tmp_path: Path, capsys, monkeypatch: pytest.MonkeyPatch
+) -> None:  # type: ignore[no-untyped-def]
+    """inspect gave the checkpoint's time in the machine's zone without naming it (a report gives
+    it in UTC); it says UTC now, whatever the zone."""
+    import datetime
+    import time
+
+    from oddsmill.cli import load_state
+
+    assert run(["replay", str(DEMO), "--state", str(tmp_path / "s")], capsys)[0] == 0
+    created = load_state(str(tmp_path / "s"))[1]
+    monkeypatch.setenv("TZ", "America/Santiago")
+    time.tzset()
+    try:
+        code, out, err = run(["inspect", str(tmp_path / "s")], capsys)
+    finally:
+        monkeypatch.delenv("TZ")
+        time.tzset()
+    assert code == 0, err
+    when = datetime.datetime.fromtimestamp(created, datetime.UTC).strftime("%Y-%m-%d %H:%M:%S")
+    assert f"checkpoint written {when} UTC" in out.splitlines()
+
+
 def test_fit_json_shape_and_against(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
     run(["replay", str(DEMO), "--state", str(tmp_path / "s"), "--epochs", "3"], capsys)
     _, out, _ = run(["inspect", str(tmp_path / "s"), "--json"], capsys)

@@ -366,6 +366,40 @@ def test_report_renders_a_checkpoint_self_contained_with_a_png(tmp_path: Path) -
     (ARTIFACTS / "report-charts.png").write_bytes(png.read_bytes())
 
 
+def test_the_png_gives_its_time_in_utc_and_says_why_its_chart_is_empty(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The PNG's title gave the checkpoint's time in the machine's zone without naming it, where
+    the page and `inspect` give UTC; and its log-loss chart said "no labelled events" with 1 to 49
+    of them (the history takes a point every 50). Both read off the figure as it is drawn."""
+    import datetime
+
+    import matplotlib.axes
+    import matplotlib.figure
+    from oddsmill.cli import load_state
+    from oddsmill.report import report_document, write_png
+
+    said: list[str] = []
+    real_title, real_text = matplotlib.figure.Figure.suptitle, matplotlib.axes.Axes.text
+    monkeypatch.setattr(matplotlib.figure.Figure, "suptitle", lambda f, t, **k: said.append(t) or real_title(f, t, **k))
+    monkeypatch.setattr(
+        matplotlib.axes.Axes, "text", lambda a, x, y, t, **k: said.append(t) or real_text(a, x, y, t, **k)
+    )
+    monkeypatch.setenv("TZ", "Asia/Tokyo")  # (nine hours from UTC, no summer time)
+    time.tzset()
+    try:
+        log = tmp_path / "ten.jsonl"
+        log.write_text("".join(f'{{"x": {{"route_km": {i}}}, "y": {i % 2}}}\n' for i in range(10)))
+        assert run_cli("replay", str(log), "--state", str(tmp_path / "s"))[0] == 0
+        engine, created, race, _ = load_state(str(tmp_path / "s"))
+        write_png(report_document(engine, created, "s", race), tmp_path / "r.png")
+    finally:
+        monkeypatch.delenv("TZ")
+        time.tzset()
+    when = datetime.datetime.fromtimestamp(created, datetime.UTC).strftime("%Y-%m-%d %H:%M")
+    assert said == ["too few labelled events for a point yet", f"oddsmill model at step 10 (checkpoint of {when} UTC)"]
+
+
 def test_report_refuses_a_bad_destination_and_a_missing_state(tmp_path: Path) -> None:
     assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "r.html"))[0] == 2  # no checkpoint
     assert run_cli("report", str(tmp_path), "--out", str(tmp_path / "r.pdf"))[0] == 2

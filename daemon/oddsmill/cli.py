@@ -454,7 +454,7 @@ def _checkpoint_line(target: Path, created: float, position: dict[str, Any] | No
 
     from .storage import list_journal
 
-    when = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(created)) if created else "at an unknown time"
+    when = time.strftime("%Y-%m-%d %H:%M:%S UTC", time.gmtime(created)) if created else "at an unknown time"
     line = f"checkpoint written {when}"
     if not target.is_dir() or position is None:
         return line

@@ -18,6 +18,7 @@ from typing import Any
 from .engine import Engine
 from .errors import UsageError
 from .metrics import Snapshot, dashboard_page, status_document
+from .watch import no_points
 
 MARKER = b'<script>\n"use strict";'
 
@@ -71,7 +72,7 @@ def write_png(doc: dict[str, Any], out: Path) -> None:
         a.plot(x, [h[2] for h in hist], "--", marker="s", markevery=max(1, len(x) // 12), label="recent window")
         a.legend()
     else:
-        a.text(0.5, 0.5, "no labelled events", ha="center", transform=a.transAxes)
+        a.text(0.5, 0.5, no_points(doc), ha="center", transform=a.transAxes)
     a.set_xlabel("labelled events")
     a.set_ylabel("log-loss (nats)")
     a.set_title("Log-loss as the model learned")
@@ -103,7 +104,7 @@ def write_png(doc: dict[str, Any], out: Path) -> None:
     b.set_title("Reliability of the recent window")
     b.legend(loc="upper left")
     b.grid(alpha=0.3)
-    written = time.strftime("%Y-%m-%d %H:%M", time.localtime(doc["report"]["written"]))
+    written = time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime(doc["report"]["written"]))
     fig.suptitle(f"oddsmill model at step {doc['step']:,} (checkpoint of {written})")
     fig.tight_layout()
     try:

@@ -70,7 +70,7 @@ def _thin(values: list[float | None], width: int) -> list[float | None]:
     return [values[min(len(values) - 1, int((k + 1) * step) - 1)] for k in range(width)]
 
 
-def _no_points(doc: dict[str, Any]) -> str:
+def no_points(doc: dict[str, Any]) -> str:
     """What an empty history means: no labelled event, or too few yet for its first point."""
     return "too few labelled events for a point yet" if doc.get("log_loss_count") else "no labelled events yet"
 
@@ -97,7 +97,7 @@ def render(doc: dict[str, Any], where: str, width: int = 100) -> str:
         )
         lines.append(f"  {spark}")
     else:  # (a point is taken every HISTORY_STRIDE labelled events, progressive.py)
-        lines.append(f"recent log-loss over the model's life: {_no_points(doc)}")
+        lines.append(f"recent log-loss over the model's life: {no_points(doc)}")
     rates = doc.get("rates") or []
     if rates:
         _, train, score, outcome = rates[-1]
