@@ -14,6 +14,9 @@ import zmq
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "replay_data" / "parcels.jsonl.gz"
 TIMEOUT_MS = 10_000
+# The handshake's scoring request: no features, answered from the intercept, as the product's own
+# (ScoreSubscriber.await_daemon). A feature in it would be a name in every model a test leaves.
+PROBE: dict[str, Any] = {"x": {}}
 
 
 def phishing() -> list[tuple[dict[str, float], int]]:
@@ -136,7 +139,7 @@ class Client:
         deadline = time.monotonic() + TIMEOUT_MS / 1000
         self.probes_answered = 0  # scores the daemon published for probes (and counted as such)
         while time.monotonic() < deadline:
-            self.send({"x": {"probe": 1.0}})
+            self.send(PROBE)
             if self.sub.poll(100):
                 self.sub.recv_multipart()
                 self.probes_answered += 1

@@ -18,7 +18,7 @@ from oddsmill.metrics import REASONS
 from oddsmill.protocol import MAX_MESSAGE, MAX_STR, decode_body
 from oddsmill.settings import LearnerSettings
 
-from tests.conftest import Client, RunningServer, loopback, sparse_stream
+from tests.conftest import PROBE, Client, RunningServer, loopback, sparse_stream
 from tests.tools import names_in
 
 
@@ -112,7 +112,7 @@ def test_malformed_messages_are_counted_and_change_nothing(tmp_path: Path) -> No
 
     # the model equals an offline run on the probes and the valid events alone, bit for bit
     offline = Engine(Learner(learner))
-    offline.process([(0.0, item) for item in decode_body({"x": {"probe": 1.0}})] * probes[1])
+    offline.process([(0.0, item) for item in decode_body(PROBE)] * probes[1])
     for body in valid:
         offline.process([(0.0, item) for item in decode_body(body)])
     mine, theirs = server.engine.learner.state_dict(), offline.learner.state_dict()

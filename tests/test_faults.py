@@ -24,7 +24,7 @@ from oddsmill.server import ServerSettings
 from oddsmill.settings import LearnerSettings
 from oddsmill.storage import list_journal, load_newest, read_journal
 
-from tests.conftest import Client, RunningServer, loopback
+from tests.conftest import PROBE, Client, RunningServer, loopback
 from tests.test_server import bodies, replay_journal
 from tests.tools import full_rows, one_call_statuses
 
@@ -156,7 +156,7 @@ def test_a_failed_fsync_pauses_learning_and_nothing_accepted_is_lost(
     import msgpack
 
     records = finish_and_check_the_journal(running, client, after, sent, learner)
-    assert all(msgpack.unpackb(r) == {"x": {"probe": 1.0}} for r in records[: -len(sent)])  # the handshake's
+    assert all(msgpack.unpackb(r) == PROBE for r in records[: -len(sent)])  # the handshake's
     assert server.engine.learner.step == step_before + len(during) + len(after)
 
 
