@@ -27,6 +27,7 @@ class Page(HTMLParser):
         self.bars: list[dict[str, str]] = []
         self.bin_counts: list[tuple[float, float, str]] = []  # (x, y, text) of the counts beside the bins
         self._count_at: tuple[float, float] | None = None
+        self.calibration_key: tuple[float, float] | None = None  # where "perfect calibration" is written
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         a = {k: v or "" for k, v in attrs}
@@ -42,6 +43,8 @@ class Page(HTMLParser):
             self.bars.append(a)
         if "bin-count" in a.get("class", "").split():
             self._count_at = (float(a["x"]), float(a["y"]))
+        if "calibration-key" in a.get("class", "").split():
+            self.calibration_key = (float(a["x"]), float(a["y"]))
 
     def handle_data(self, data: str) -> None:
         if self._count_at is not None:
@@ -74,6 +77,12 @@ def counts_apart(page: Page, counts: list[int]) -> int:
         assert not any(cross(box, q) for q in boxes[:i]), f"the count {labels[i][2]} crosses another"
         # (its own circle ends 10 units before it, left of the box: crossing none is the test)
         assert not any(cross(box, c) for c in circles), f"the count {labels[i][2]} crosses a circle"
+    # the diagonal's key ("perfect", then "calibration" a row below it) crosses no circle and no
+    # count: it was written on the diagonal, where a calibrated model's circles and their counts lie
+    assert page.calibration_key is not None
+    x, y = page.calibration_key
+    key = (x, y - 12, x + 7 * len("calibration"), y + 15)
+    assert not any(cross(key, q) for q in [*boxes, *circles]), "the key crosses a circle or a count"
     return len(counts) - len(labels)
 
 

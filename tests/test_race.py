@@ -4,6 +4,7 @@ abrupt change the race moves to a faster-adapting candidate."""
 
 from __future__ import annotations
 
+import json
 import math
 import time
 from pathlib import Path
@@ -222,7 +223,7 @@ def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_
     from oddsmill.server import Server
 
     from tests.conftest import Client, RunningServer, loopback
-    from tests.test_dashboard import Page
+    from tests.test_dashboard import Page, counts_apart
     from tests.tools import chromium
 
     settings = loopback(tmp_path, http="127.0.0.1:0", candidates=tuple(SPEEDS), race_patience=500, window=1000)
@@ -257,6 +258,10 @@ def test_a_racing_daemon_publishes_the_serving_candidate_and_shows_the_race(tmp_
     # seconds: the ranking of the start, with no features, was kept)
     serving_names = {c["feature"] for c in server.race.engine.learner.top_coefficients(12)[1]}
     assert serving_names and {b["data-feature"] for b in page.bars} == serving_names
+    # a calibrated model's circles lie on the diagonal: its key and the counts cross none of them
+    with urllib.request.urlopen(f"http://{http}/api/status", timeout=5) as r:
+        bins = json.loads(r.read())["calibration_bins"]
+    counts_apart(page, [b["count"] for b in bins if b["count"]])
     from tests.tools import ARTIFACTS
 
     ARTIFACTS.mkdir(parents=True, exist_ok=True)
