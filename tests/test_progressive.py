@@ -1,4 +1,4 @@
-"""Progressive metrics against scikit-learn's log_loss and brier_score_loss."""
+"""Progressive metrics against scikit-learn's log_loss, brier_score_loss and calibration_curve."""
 
 from __future__ import annotations
 
@@ -37,6 +37,35 @@ def test_calibration_error_is_zero_for_exact_probabilities_in_the_limit() -> Non
     m2 = ProgressiveMetrics(window=200_000)
     m2.update(z + 1.0, y)  # scores shifted: miscalibrated
     assert m2.calibration_error_window > 0.1
+
+
+def test_reliability_bins_and_calibration_error_match_scikit_learns_calibration_curve() -> None:
+    # Source: scikit-learn's sklearn.calibration.calibration_curve (strategy "uniform", 10 bins)
+    # for each band's mean predicted probability and observed rate, numpy's histogram for the
+    # counts; the expected calibration error is then the count-weighted mean of |observed -
+    # predicted| over the bands (its usual definition: Naeini, Cooper and Hauskrecht, AAAI 2015).
+    from sklearn.calibration import calibration_curve
+
+    rng = np.random.default_rng(7)
+    z = rng.normal(-0.5, 1.8, 12_000)
+    y = (rng.random(z.size) < sigmoid(0.8 * z + 0.3)).astype(float)  # miscalibrated on purpose
+    m = ProgressiveMetrics(window=5000)
+    for lo in range(0, z.size, 777):
+        m.update(z[lo : lo + 777], y[lo : lo + 777])
+    p, yw = sigmoid(z[-5000:]), y[-5000:]
+    edges = np.linspace(0.0, 1.0, 11)
+    assert not np.isin(p, edges).any()  # (no score on a band's edge, where conventions differ)
+    observed, predicted = calibration_curve(yw, p, n_bins=10, strategy="uniform")
+    counts = np.histogram(p, bins=edges)[0]
+    bins = m.calibration_bins()
+    assert [b["count"] for b in bins] == counts.tolist()
+    used = [b for b in bins if b["count"]]
+    assert len(used) == len(observed) >= 8
+    assert [b["observed_rate"] for b in used] == pytest.approx(observed, rel=1e-12, abs=1e-15)
+    assert [b["mean_predicted"] for b in used] == pytest.approx(predicted, rel=1e-12)
+    expected_error = float(np.sum(counts[counts > 0] / 5000 * np.abs(observed - predicted)))
+    assert m.calibration_error_window == pytest.approx(expected_error, rel=1e-12)
+    assert expected_error > 0.02  # (the miscalibration shows)
 
 
 def test_history_points_fall_at_exact_counts_whatever_the_blocks() -> None:
