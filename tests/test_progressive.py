@@ -43,7 +43,8 @@ def test_reliability_bins_and_calibration_error_match_scikit_learns_calibration_
     # Source: scikit-learn's sklearn.calibration.calibration_curve (strategy "uniform", 10 bins)
     # for each band's mean predicted probability and observed rate, numpy's histogram for the
     # counts; the expected calibration error is then the count-weighted mean of |observed -
-    # predicted| over the bands (its usual definition: Naeini, Cooper and Hauskrecht, AAAI 2015).
+    # predicted| over the bands (its usual definition; cited from memory: Naeini, Cooper and
+    # Hauskrecht, AAAI 2015).
     from sklearn.calibration import calibration_curve
 
     rng = np.random.default_rng(7)
