@@ -104,6 +104,54 @@ def test_adagrad_matches_river_step_for_step(phishing_data) -> None:  # type: ig
     assert worst < 1e-12
 
 
+@pytest.mark.parametrize(
+    ("ours", "theirs", "weighted"),
+    [
+        (
+            dict(schedule="constant", eta0=0.05, average_start=0),
+            dict(learning_rate="constant", eta0=0.05, average=True),
+            False,
+        ),
+        # invscaling's eta0 / t^c, t from 1, is the power schedule at a = 1 / eta0; averaging from
+        # the 100th event seen (scikit-learn's average=100) is from step 99, steps counting from 0
+        (
+            dict(schedule="power", eta0=0.5, decay=2.0, power=0.5, average_start=99),
+            dict(learning_rate="invscaling", eta0=0.5, power_t=0.5, average=100),
+            True,
+        ),
+    ],
+    ids=["constant", "power-weighted"],
+)
+def test_averaged_weights_match_scikit_learns_averaged_sgd(phishing_data, ours, theirs, weighted: bool) -> None:  # type: ignore[no-untyped-def]
+    # Source: scikit-learn's SGDClassifier(loss="log_loss", penalty="l2", average=...), one pass in
+    # order (shuffle off), on river's bundled Phishing data, with sample weights in one case. Its
+    # step shrinks the weights by (1 - eta alpha) and adds -eta w dloss x: PROTOCOL 5's update with
+    # lambda = alpha. Its averaged coef_ and intercept_ are the Polyak-Ruppert average of PROTOCOL 5.
+    import warnings
+
+    from sklearn.exceptions import ConvergenceWarning
+    from sklearn.linear_model import SGDClassifier
+
+    names = list(phishing_data[0][0])
+    X = np.array([[x[k] for k in names] for x, _ in phishing_data])
+    y = np.array([int(t) for _, t in phishing_data])
+    w = np.random.default_rng(3).uniform(0.2, 3.0, y.size) if weighted else np.ones(y.size)
+    mine = Learner(LearnerSettings(**ours, l2=1e-3, average=True, scaling="none"))
+    for (x, t), wi in zip(phishing_data, w, strict=True):
+        mine.learn_one(x, t, float(wi))
+    sk = SGDClassifier(loss="log_loss", penalty="l2", alpha=1e-3, shuffle=False, max_iter=1, tol=None, **theirs)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)  # (one pass is what is asked for)
+        sk.fit(X, y, sample_weight=w if weighted else None)
+    c = mine.coefficients()
+    assert max(abs(c.as_dict()[k] - v) for k, v in zip(names, sk.coef_[0], strict=True)) < 1e-12
+    assert abs(c.intercept - sk.intercept_[0]) < 1e-12
+    last = Learner(LearnerSettings(**ours, l2=1e-3, average=False, scaling="none"))
+    for (x, t), wi in zip(phishing_data, w, strict=True):
+        last.learn_one(x, t, float(wi))
+    assert abs(last.coefficients().intercept - c.intercept) > 1e-3  # (the average is not the last iterate)
+
+
 SETTINGS = [
     dict(schedule="constant", eta0=0.1, l2=1e-2),
     dict(schedule="inverse-time", eta0=0.3, l2=1e-2),
