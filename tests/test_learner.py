@@ -1,4 +1,4 @@
-"""The online learner against river, the dense oracle, and its own exactness promises."""
+"""The online learner against river, scikit-learn's averaged SGD, the dense oracle, and its own exactness promises."""
 
 from __future__ import annotations
 
