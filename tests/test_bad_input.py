@@ -12,7 +12,9 @@ from pathlib import Path
 from typing import Any
 
 import msgpack
-from oddsmill.engine import Engine
+import numpy as np
+from oddsmill.encoding import NAME_MAX_BYTES
+from oddsmill.engine import ColumnScores, Engine, Rejection, Score
 from oddsmill.learner import Learner
 from oddsmill.metrics import REASONS
 from oddsmill.protocol import MAX_MESSAGE, MAX_STR, decode_body
@@ -61,6 +63,8 @@ def malformed(reason: str, rnd: random.Random, k: int) -> list[bytes]:
     if reason == "too_large":
         if k < 2:  # a body beyond the message limit, refused before decoding
             return [b"events", msgpack.packb({"x": {"note": "z" * 10}, "pad": b"\0" * (MAX_MESSAGE + 10)})]
+        if k % 2:  # a new feature name beyond its limit (a free text sent as a category)
+            return one({"x": dict(x, note=f"left at door {k} " + "z" * NAME_MAX_BYTES), "y": 1})
         return one({"x": {"note": "z" * (MAX_STR + 1)}, "y": 1})  # a string beyond its limit
     if reason == "duplicate":
         return one(
@@ -120,3 +124,41 @@ def test_malformed_messages_are_counted_and_change_nothing(tmp_path: Path) -> No
     assert mine["scalars"].tobytes() == theirs["scalars"].tobytes()
     assert mine["slots"].tobytes() == theirs["slots"].tobytes()
     assert server.engine.metrics.sum == offline.metrics.sum
+
+
+def test_a_new_feature_name_past_its_limit_is_refused_and_adds_no_name() -> None:
+    """A string feature made a name of its own a value, however long: a free text sent as a
+    category (a delivery note, a document) kept every value for the model's life. A new name of
+    more than NAME_MAX_BYTES of UTF-8 now refuses its event (too_large), with no name of it added;
+    one at the limit is taken, and so is a long name the vocabulary has already (a state from before
+    the limit), on every path: single events and columnar blocks."""
+    engine = Engine(Learner(LearnerSettings()))
+
+    def send(body: dict[str, Any]) -> list[Any]:
+        return [r for _, r in engine.process([(0.0, item) for item in decode_body(body)])]
+
+    at_limit = "é" * ((NAME_MAX_BYTES - len("note=")) // 2)  # two bytes a character
+    over = at_limit + "é"
+    assert len(f"note={at_limit}".encode()) <= NAME_MAX_BYTES < len(f"note={over}".encode())
+    (refused,) = send({"id": "P1", "x": {"route_km": 3.0, "note": over}, "y": 1})
+    assert isinstance(refused, Rejection) and refused.reason == "too_large" and refused.id == "P1"
+    assert f"is {len(f'note={over}'.encode()):,} bytes of UTF-8; a new name may have at most {NAME_MAX_BYTES:,}" in (
+        refused.detail
+    )
+    assert len(engine.learner.vocab) == 0 and engine.learner.step == 0  # not route_km either
+    (taken,) = send({"x": {"route_km": 3.0, "note": at_limit}, "y": 1})
+    assert isinstance(taken, Score) and engine.learner.vocab.names == ["route_km", f"note={at_limit}"]
+
+    # a columnar block whose new column name is too long: each row refused, as sent one by one
+    long_col = "depot_" + "x" * NAME_MAX_BYTES
+    rows = np.array([[1.0, 2.0], [3.0, 4.0], [5.0, 6.0]])
+    block = {"cols": ["route_km", long_col], "rows": rows.tobytes(), "y": [0, 1, 1]}
+    answers = send(block)
+    assert [(type(r), r.reason) for r in answers] == [(Rejection, "too_large")] * 3
+    assert engine.learner.step == 1 and len(engine.learner.vocab) == 2
+
+    # known already (a state from before the limit): taken, by both paths
+    engine.learner.vocab.slots([long_col, f"note={over}"], grow=True)
+    assert isinstance(send({"x": {"route_km": 1.0, "note": over}, "y": 0})[0], Score)
+    (learned,) = send(block)
+    assert isinstance(learned, ColumnScores) and engine.learner.step == 5

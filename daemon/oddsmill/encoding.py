@@ -5,7 +5,10 @@ A number v under name k is the numeric feature k with value v; a string s is the
 is an error, and so is one out of the learner's range (`protocol.in_range`). The vocabulary
 (vocabulary.py) is append-only: a name keeps its slot for the life of the state. When it holds
 `max_features` names, names not seen before are ignored (they add nothing to the logit and are not
-learned) and counted in `Vocabulary.ignored`, so a runaway producer cannot exhaust memory.
+learned) and counted in `Vocabulary.ignored`, so a runaway producer cannot exhaust memory. A new
+name longer than NAME_MAX_BYTES of UTF-8 rejects its event (too_large): a name is kept for the
+life of the state, and one that long is a document or a free text sent as a category, each value
+of which would be a name of its own.
 
 >>> v = Vocabulary(max_features=10)
 >>> encode_features({"route_km": 12.5, "depot": "harbour", "fragile": True, "note": None}, v)
@@ -27,6 +30,7 @@ from .protocol import OUT_OF_RANGE, VALUE_MAX, VALUE_MIN, in_range
 from .vocabulary import Vocabulary
 
 SHAPES_KEPT = 4096  # sets of feature names whose slots are remembered
+NAME_MAX_BYTES = 1024  # of a new name, "key" or "key=value", in UTF-8 (a character is at most 4)
 FLOATS = {float}
 
 
@@ -34,7 +38,7 @@ def encode_features(
     x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
 ) -> tuple[Sequence[int], list[float], list[int]]:
     """Slots and values of the features of `x` (a map of str to number, str, bool or nil), and the
-    slots this call created for numeric features. Raises ProtocolError (bad_features or non_finite)
+    slots this call created for numeric features. Raises ProtocolError (bad_features, non_finite or too_large)
     and then adds no name: new names get their slots only once the whole event has been read. One
     pass, exact-type fast paths: this is the per-event Python work of the daemon."""
     if type(x) is dict:
@@ -112,6 +116,8 @@ def encode_features(
         if len(set(names)) != len(names):
             raise ProtocolError("bad_features", "two features encode to the same name", event_id)
     created: list[int] = []
+    if new and grow:
+        _refuse_long_names(new, vocab, event_id)
     if new:  # names not among the recently used: looked up (and added, in order) together
         before = len(vocab)
         for (pos, _, is_num), j in zip(new, vocab.slots([name for _, name, _ in new], grow), strict=True):
@@ -130,6 +136,28 @@ def encode_features(
             vocab.shapes.clear()
         vocab.shapes[tuple(x)] = tuple(slots)
     return slots, values, created
+
+
+def too_long(name: str) -> bool:
+    """Whether `name` is longer than NAME_MAX_BYTES in UTF-8."""
+    return len(name) > NAME_MAX_BYTES // 4 and len(name.encode()) > NAME_MAX_BYTES
+
+
+def _refuse_long_names(new: list[tuple[int, str, bool]], vocab: Vocabulary, event_id: object) -> None:
+    """ProtocolError (too_large) when a name the vocabulary does not know is too long to add."""
+    long = [name for _, name, _ in new if too_long(name)]
+    if not long:
+        return
+    unknown = [name for name, j in zip(long, vocab.slots(long, grow=False), strict=True) if j < 0]
+    if unknown:
+        name = unknown[0]
+        raise ProtocolError(
+            "too_large",
+            f"the feature name {name[:40]!r}... is {len(name.encode()):,} bytes of UTF-8; a new name may have "
+            f"at most {NAME_MAX_BYTES:,} (a name is kept for the model's life: send a long text as a shorter "
+            "category or as numbers)",
+            event_id,
+        )
 
 
 @dataclass

@@ -19,7 +19,7 @@ from typing import TYPE_CHECKING, Any, Final
 import numpy as np
 
 from . import kernel as K
-from .encoding import Block, BlockBuilder, Rows
+from .encoding import Block, BlockBuilder, Rows, too_long
 from .errors import ProtocolError
 from .fastpath import READ
 from .learner import Learner
@@ -526,12 +526,15 @@ class Engine:
     # -- columnar blocks, whole ---------------------------------------------------------------
     def _plain(self, item: Columns) -> bool:
         """Whether a columnar block can be encoded whole, with the same result as row by row: no row
-        is a scoring request to hold (an id without a label), and the vocabulary has room for every
-        new name. (The decoder has refused blocks with a name twice or a value not finite.)"""
+        is a scoring request to hold (an id without a label), the vocabulary has room for every
+        new name, and no new name is too long (each row is then refused). (The decoder has refused
+        blocks with a name twice or a value not finite.)"""
         cols = item.cols
         if item.ids is not None and bool(np.isnan(item.y).any()):
             return False
         vocab = self.learner.vocab
+        if any(map(too_long, cols)) and vocab.count_new([c for c in cols if too_long(c)]):
+            return False
         return len(vocab) + vocab.count_new(list(cols)) <= vocab.max_features
 
     def _add_columns(self, n: int, arrival: float, item: Columns, plan: Plan) -> None:
