@@ -38,9 +38,9 @@ def encode_features(
     x: object, vocab: Vocabulary, grow: bool = True, event_id: object = None
 ) -> tuple[Sequence[int], list[float], list[int]]:
     """Slots and values of the features of `x` (a map of str to number, str, bool or nil), and the
-    slots this call created for numeric features. Raises ProtocolError (bad_features, non_finite or too_large)
-    and then adds no name: new names get their slots only once the whole event has been read. One
-    pass, exact-type fast paths: this is the per-event Python work of the daemon."""
+    slots this call created for numeric features. Raises ProtocolError (bad_features, non_finite or
+    too_large) and then adds no name: new names get their slots only once the whole event has been
+    read. One pass, exact-type fast paths: this is the per-event Python work of the daemon."""
     if type(x) is dict:
         keys = tuple(x)
         known = vocab.shapes.get(keys)
