@@ -533,7 +533,8 @@ class Engine:
         if item.ids is not None and bool(np.isnan(item.y).any()):
             return False
         vocab = self.learner.vocab
-        if any(map(too_long, cols)) and vocab.count_new([c for c in cols if too_long(c)]):
+        long = [c for c in cols if too_long(c)]
+        if long and vocab.count_new(long):
             return False
         return len(vocab) + vocab.count_new(list(cols)) <= vocab.max_features
 
