@@ -2,8 +2,14 @@
 
 from __future__ import annotations
 
+import gzip
+import os
 import re
+import signal
 import struct
+import subprocess
+import sys
+import time
 import zlib
 from pathlib import Path
 
@@ -625,25 +631,22 @@ def test_serve_refuses_a_race_other_than_the_states_and_changes_nothing(  # type
         assert server.engine.learner.step == 28_000
 
 
-def test_ctrl_c_while_serve_compiles_stops_it_without_a_traceback(tmp_path: Path) -> None:
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])
+def test_a_stop_signal_while_serve_compiles_stops_it_in_one_line(tmp_path: Path, signum: int) -> None:
     """The first start compiles numba's code for about two minutes. Ctrl-C then raised
     KeyboardInterrupt wherever the interpreter was, and when that was a callback of numba's
     compiler it came out as a page of traceback (a RuntimeError, "no compiled object yet": one of
-    three interrupts at 10, 25 and 40 s here). While numba compiles, an interrupt now stops the
-    process at once, saying so in one line, with 130 as the shell expects of an interrupt (every
-    command: `serve` is the one tried here). (The traceback depends on where the
-    interrupt lands, so this test cannot provoke it each time; the line fails it without the
-    handler. A cache directory of its own, empty, makes this start compile.)"""
-    import os
-    import signal
-    import subprocess
-    import sys
-    import time
-
+    three interrupts at 10, 25 and 40 s here); SIGTERM ended the process without a word, and left
+    the new state directory holding only its lock file. Either now stops the start at once, saying
+    so in one line, with 128 + the signal's number as the shell expects, and takes the directory
+    it made away. (The traceback depends on where the interrupt lands, so this test cannot provoke
+    it each time; the line fails it without the handler. A cache directory of its own, empty,
+    makes this start compile. Other commands stop on Ctrl-C with "interrupted while compiling".)"""
     env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "numba-cache")}
+    state = tmp_path / "s"
     proc = subprocess.Popen(
         [sys.executable, "-c", "import sys; from oddsmill.cli import main; sys.exit(main(sys.argv[1:]))",
-         "serve", "--state", str(tmp_path / "s"), "--http", "off",
+         "serve", "--state", str(state), "--http", "off",
          "--ingest", "tcp://127.0.0.1:*", "--scores", "tcp://127.0.0.1:*"],
         stderr=subprocess.PIPE, text=True, env=env,
     )  # fmt: skip
@@ -652,11 +655,54 @@ def test_ctrl_c_while_serve_compiles_stops_it_without_a_traceback(tmp_path: Path
         first = proc.stderr.readline()
         assert "compiling the learner's code" in first, first
         time.sleep(8)  # well inside the compiling
-        assert proc.poll() is None
-        proc.send_signal(signal.SIGINT)
+        assert proc.poll() is None and (state / "lock").exists()
+        proc.send_signal(signum)
         rest = proc.stderr.read()
-        assert proc.wait(30) == 130
+        assert proc.wait(30) == 128 + signum
     finally:
         proc.kill()
     assert "Traceback" not in rest and "Error" not in rest, rest
-    assert rest.strip().splitlines()[-1] == "oddsmill: interrupted while compiling: stopped"
+    assert rest.strip().splitlines()[-1] == (
+        f"oddsmill: signal {signum} while starting, before serving anything: stopped; "
+        f"the new state directory {state} is taken away"
+    )
+    assert not state.exists()
+
+
+@pytest.mark.parametrize("given", ["new", "empty"])
+def test_sigterm_during_a_warm_start_stops_it_and_takes_away_what_it_made(tmp_path: Path, given: str) -> None:
+    """SIGTERM while a warm start learns its logs (the history of a busy stream can take minutes)
+    ended the process without a word and left a new state directory holding only its lock file.
+    It now stops at once, says so, and leaves the directory as it found it: gone when the start
+    made it, empty when it was given empty. The log is a named pipe, so that the signal is sure
+    to come while the warm start reads it."""
+    log = tmp_path / "history.jsonl"
+    os.mkfifo(log)
+    state = tmp_path / "s"
+    if given == "empty":
+        state.mkdir()
+    with gzip.open(DEMO, "rt") as f:
+        lines = [next(f) for _ in range(200)]
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "oddsmill.cli", "serve", "--state", str(state), "--warm-start", str(log),
+         "--http", "off", "--ingest", "tcp://127.0.0.1:*", "--scores", "tcp://127.0.0.1:*"],
+        stderr=subprocess.PIPE, text=True,
+    )  # fmt: skip
+    try:
+        with open(log, "w") as w:  # (open returns once the daemon has opened the log to read it)
+            w.writelines(lines)
+            w.flush()
+            assert os.listdir(state) == ["lock"]
+            proc.send_signal(signal.SIGTERM)
+            assert proc.wait(30) == 128 + signal.SIGTERM
+    finally:
+        proc.kill()
+    assert proc.stderr is not None
+    said = proc.stderr.read()
+    if given == "new":
+        assert said.endswith(f"stopped; the new state directory {state} is taken away\n"), said
+        assert not state.exists()
+    else:
+        assert said.endswith(f"stopped; what {state} holds is whole, and the next start resumes from it\n"), said
+        assert os.listdir(state) == []
+    assert "Traceback" not in said

@@ -94,7 +94,9 @@ def _say_when_compiling() -> None:
                     self.timer = threading.Timer(SAY_AFTER, self.say)
                     self.timer.daemon = True
                     self.timer.start()
-                if threading.current_thread() is threading.main_thread():
+                # (a handler that raises nothing, `serve`'s, is safe there and is kept)
+                main = threading.current_thread() is threading.main_thread()
+                if main and not getattr(signal.getsignal(signal.SIGINT), "safe_while_compiling", False):
                     self.handler = signal.signal(signal.SIGINT, _interrupted_compiling)
 
         def on_end(self, ev: Any) -> None:

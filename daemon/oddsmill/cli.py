@@ -635,7 +635,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
     import threading
 
     from .learner import give_back_large_frees, keep_freed_heap
-    from .server import Server
+    from .server import Server, stop_starting
 
     settings, learner, warm, asked = serve_settings(args)
     if args.print_config:
@@ -643,15 +643,21 @@ def cmd_serve(args: argparse.Namespace) -> int:
         return 0
     give_back_large_frees()  # before the state is loaded: its arrays then leave no free heap behind
     keep_freed_heap()  # and the heap's free top kept for the allocations that follow
-    server = Server(settings, learner, warm, asked)
     stop = threading.Event()
+    made = not settings.state_dir.exists()
+    serving = False
 
     def on_signal(signum: int, _frame: object) -> None:
+        if not serving:  # compiling, learning the journal again, or a warm start
+            stop_starting(signum, settings.state_dir, made)
         log.info("signal %d: checkpointing and stopping", signum)
         stop.set()
 
+    on_signal.safe_while_compiling = True  # type: ignore[attr-defined]  # (it raises nothing: __init__.py)
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
+    server = Server(settings, learner, warm, asked)
+    serving = True  # (a signal from here on is answered by serve's checkpoint)
     # What exists now (the modules, numba's compiled code, the state just loaded, the pending
     # store's dict) lives as long as the process: out of the garbage collector's sight, a full
     # collection no longer walks it with the loop stopped. Measured with a million requests held:

@@ -370,6 +370,45 @@ def check_bind(name: str, address: str, allow_insecure: bool, curve: bool = Fals
     log.warning("%s binds to %s without authentication or encryption (--allow-insecure-bind)", name, address)
 
 
+def leave_as_found(state_dir: Path, existed: bool) -> None:
+    """Take away what a start that did not serve made in the state directory (journal segments
+    with no record, the lock file) and the directory itself when it made it: a failed start left a
+    directory holding a lock file, or an empty journal as well."""
+    for segment in list_journal(state_dir):
+        try:
+            if next(read_journal(segment), None) is None:
+                segment.unlink(missing_ok=True)
+        except (OddsmillError, OSError):  # (unreadable: not this start's to take away)
+            pass
+    release_state_dir(state_dir)
+    (state_dir / LOCK_NAME).unlink(missing_ok=True)
+    if not existed:
+        try:
+            state_dir.rmdir()  # (only if empty: anything else in it stays)
+        except OSError:
+            pass
+
+
+def stop_starting(signum: int, state_dir: Path, made: bool) -> None:
+    """A stop signal (SIGTERM, or Ctrl-C's SIGINT) while `serve` starts, before it serves: while
+    numba compiles (the first start's two minutes), the journal after the checkpoint is learned
+    again, or a warm start learns its logs. The process stops at once, as a kill would stop it
+    (every file oddsmill writes is whole after one: a checkpoint is renamed into place, a torn
+    journal record is cut at the next start), after saying so. In a state directory with no
+    checkpoint yet, what this start made is taken away (`leave_as_found`). Before, SIGTERM ended
+    such a start without a word and left a new directory holding only its lock file; Ctrl-C did
+    so too."""
+    if not list_checkpoints(state_dir):  # (a journal's records stay: only empty segments go)
+        leave_as_found(state_dir, existed=not made)
+    if made and not state_dir.exists():
+        left = f"the new state directory {state_dir} is taken away"
+    else:
+        left = f"what {state_dir} holds is whole, and the next start resumes from it"
+    log.info("signal %d while starting, before serving anything: stopped; %s", signum, left)
+    logging.shutdown()
+    os._exit(128 + signum)
+
+
 class Server:
     def __init__(
         self,
@@ -425,7 +464,7 @@ class Server:
                 if error is not None:
                     raise error
             except BaseException:  # a log missing, bad or of no labelled event: the new state is not begun
-                self._leave_as_found(existed)
+                leave_as_found(settings.state_dir, existed)
                 raise
             log.info("warm start: learned %s events from %s", f"{self.engine.learner.step:,}", ", ".join(warm_start))
             warmed = True
@@ -498,7 +537,7 @@ class Server:
             if self.outage is not None:
                 reason = self.outage
                 self.close()
-                self._leave_as_found(existed)
+                leave_as_found(settings.state_dir, existed)
                 raise StateWriteError(
                     f"cannot write the warm start's checkpoint to {settings.state_dir}: {reason}. Nothing was "
                     "served and nothing was kept; make room (or give another --state) and start again"
@@ -512,26 +551,6 @@ class Server:
             self.checkpoint()
         finally:
             self.going_on = False
-
-    def _leave_as_found(self, existed: bool) -> None:
-        """After a warm start that failed (a log missing or bad, its checkpoint not written): take
-        away what this start made in the new state directory (journal segments with no record, the
-        lock file) and the directory itself when it made it: a failed start left a directory
-        holding a lock file, or an empty journal as well."""
-        state_dir = self.settings.state_dir
-        for segment in list_journal(state_dir):
-            try:
-                if next(read_journal(segment), None) is None:
-                    segment.unlink(missing_ok=True)
-            except (OddsmillError, OSError):  # (unreadable: not this start's to take away)
-                pass
-        release_state_dir(state_dir)
-        (state_dir / LOCK_NAME).unlink(missing_ok=True)
-        if not existed:
-            try:
-                state_dir.rmdir()  # (only if empty: anything else in it stays)
-            except OSError:
-                pass
 
     def _refresh(self) -> None:
         now = time.monotonic()
