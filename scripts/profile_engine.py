@@ -5,7 +5,7 @@ through. Figures are per event, best of a few rounds; ratios in one run are what
     python scripts/profile_engine.py [--blocks N] [--rounds R] [--json]
 
 Shapes: columnar blocks of 500 rows by 20 numeric columns; batches of 500 events with 20 named
-numeric features each; a race of nine candidates (`auto`) on the columnar blocks; and the journal
+numeric features each; the auto race's candidates on the columnar blocks; and the journal
 path (msgpack bytes decoded, then processed) for batches and for columnar blocks.
 """
 
@@ -104,12 +104,12 @@ def main() -> None:
         "kernel_us": per_event(kernel_only, blocks, a.rounds),
         "cols_us": per_event(engine, cols, a.rounds),
         "batch_us": per_event(engine, batches, a.rounds),
-        "race9_cols_us": per_event(race, cols, max(1, a.rounds - 1)),
+        "race_cols_us": per_event(race, cols, max(1, a.rounds - 1)),
         "journal_cols_us": per_event(lambda: replay(Engine(Learner())), cols_raw, a.rounds),
         "journal_batch_us": per_event(lambda: replay(Engine(Learner())), batch_raw, a.rounds),
         "decode_batch_us": per_event(lambda: lambda raw: decode_body(unpack(raw)), batch_raw, a.rounds),
     }
-    fig["race9_over_single"] = fig["cols_us"] / fig["race9_cols_us"]
+    fig["race_over_single"] = fig["cols_us"] / fig["race_cols_us"]
     if a.json:
         print(json.dumps(fig, indent=2))
         return

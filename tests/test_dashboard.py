@@ -28,6 +28,8 @@ class Page(HTMLParser):
         self.bin_counts: list[tuple[float, float, str]] = []  # (x, y, text) of the counts beside the bins
         self._count_at: tuple[float, float] | None = None
         self.calibration_key: tuple[float, float] | None = None  # where "perfect calibration" is written
+        self.end_labels: list[tuple[float, float, str]] = []  # (x, y, text) of the lines' end labels
+        self._end_at: tuple[float, float] | None = None
 
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         a = {k: v or "" for k, v in attrs}
@@ -45,11 +47,16 @@ class Page(HTMLParser):
             self._count_at = (float(a["x"]), float(a["y"]))
         if "calibration-key" in a.get("class", "").split():
             self.calibration_key = (float(a["x"]), float(a["y"]))
+        if "end-label" in a.get("class", "").split():
+            self._end_at = (float(a["x"]), float(a["y"]))
 
     def handle_data(self, data: str) -> None:
         if self._count_at is not None:
             self.bin_counts.append((*self._count_at, data))
             self._count_at = None
+        if self._end_at is not None:
+            self.end_labels.append((*self._end_at, data))
+            self._end_at = None
 
 
 def counts_apart(page: Page, counts: list[int]) -> int:

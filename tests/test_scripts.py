@@ -81,4 +81,4 @@ def test_profile_engine_reports_each_shape() -> None:
     done = script("profile_engine.py", "--blocks", "4", "--rounds", "1", "--json")
     assert done.returncode == 0, done.stderr
     result = json.loads(done.stdout)
-    assert result["race9_over_single"] > 0
+    assert result["race_over_single"] > 0

@@ -706,3 +706,46 @@ def test_sigterm_during_a_warm_start_stops_it_and_takes_away_what_it_made(tmp_pa
         assert said.endswith(f"stopped; what {state} holds is whole, and the next start resumes from it\n"), said
         assert os.listdir(state) == []
     assert "Traceback" not in said
+
+
+def test_a_race_begun_with_the_auto_grid_of_nine_resumes_under_candidates_auto(
+    tmp_path: Path, capsys, caplog, monkeypatch
+) -> None:  # type: ignore[no-untyped-def]
+    """The auto grid races averaging too since the twenty-fifth session: twelve candidates, the
+    nine before first. A state whose race began with those nine, restarted by a unit file that
+    says `--candidates auto`, would have been refused as holding other candidates; it resumes its
+    nine and says so. Nine around other settings are refused as before."""
+    import logging
+
+    import oddsmill.server
+    from oddsmill.race import auto_candidates
+
+    served: list[Server] = []
+
+    def serve_not(self: Server, stop: object) -> None:
+        served.append(self)
+        self.close()
+
+    monkeypatch.setattr(oddsmill.server.Server, "serve", serve_not)
+    monkeypatch.setattr("signal.signal", lambda *a: None)
+    monkeypatch.setattr("gc.freeze", lambda: None)
+    nine = auto_candidates(LearnerSettings())[:9]
+    cfg = tmp_path / "nine.toml"
+    cfg.write_text(
+        "\n".join(f'[candidates."{c.name}"]\neta0 = {c.settings.eta0!r}\nl2 = {c.settings.l2!r}\n' for c in nine)
+    )
+    state = tmp_path / "old"
+    assert main(["replay", str(DEMO), "--state", str(state), "--config", str(cfg)]) == 0
+    argv = ["serve", "--state", str(state), "--http", "off", "--ingest", "tcp://127.0.0.1:*"]
+    argv += ["--scores", "tcp://127.0.0.1:*", "--candidates", "auto"]
+    with caplog.at_level(logging.INFO, logger="oddsmill"):
+        assert main(argv) == 0, capsys.readouterr().err
+    server = served.pop()
+    assert server.race is not None and server.race.names == [c.name for c in nine]
+    assert server.engine.learner.step == 28_000
+    assert f"the race in {state} was begun with the auto grid of nine candidates" in caplog.text
+    capsys.readouterr()
+    assert main([*argv, "--eta0", "0.25"]) == 2  # the grid around another rate: not the nine it holds
+    err = capsys.readouterr().err
+    assert "keeps the settings it was created with" in err and "candidates = ['eta0=0.5,l2=0.0001'," in err
+    assert not served

@@ -528,7 +528,7 @@ def test_watch_shows_a_race() -> None:
     assert race.switches
     doc = status_document(Snapshot.of(race.engine, last_checkpoint=0.0, race=race), now=0.0)
     lines = render(doc, "here").splitlines()
-    at = lines.index("race of 3 candidates   recent log-loss   since start   (* serves)")
+    at = lines.index(f"{'race of 3 candidates':<35}recent log-loss   since start   (* serves)")
     rows = [line.split() for line in lines[at + 1 : at + 4]]
     shown = next(c for c in doc["candidates"] if c["serving"])
     assert shown["name"] == race.names[race.serving]
@@ -548,3 +548,37 @@ def _chart(dom: str, ident: str) -> str:
     """The markup of the page's chart `ident` (its svg element), from a dumped DOM."""
     chart = dom[dom.index(f'id="{ident}"') :]
     return chart[: chart.index("</svg>")]
+
+
+def test_the_race_chart_keeps_every_candidates_label_inside_it(tmp_path: Path) -> None:
+    """The race chart's lines end in a label each (name, recent log-loss). They were only pushed
+    down, away from each other: the twelve candidates of the auto grid, ending close together on
+    the demo's log, wrote half their labels below the chart's foot, where the svg cut them off
+    (the serving one's among them), in a panel a third of the page wide. The panel is as wide as
+    the page now, and the labels stay inside the chart, 13 units apart, each within its width (a
+    character about 6.5 units wide at the page's 11 units)."""
+    require("chromium")
+    import gzip
+
+    from oddsmill.protocol import decode_body
+    from oddsmill.race import Race, auto_candidates
+    from oddsmill.report import report_document, write_html
+    from oddsmill.settings import LearnerSettings
+
+    race = Race(auto_candidates(LearnerSettings()))
+    with gzip.open(DEMO, "rt") as f:
+        bodies = [json.loads(line) for line in f][:20_000]
+    for lo in range(0, len(bodies), 500):
+        race.process([(0.0, item) for body in bodies[lo : lo + 500] for item in decode_body(body)])
+    out = tmp_path / "race.html"
+    write_html(report_document(race.engine, created=1000.0, source="a test", race=race), out)
+    page = Page()
+    page.feed(chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile"))
+    width, height = 1000, 280  # the race chart's viewBox
+    labels = [label for label in page.end_labels if label[2].startswith("eta0=")]
+    assert len(labels) == 12, page.end_labels
+    assert sum("(serving)" in text for _, _, text in labels) == 1
+    ys = sorted(y for _, y, _ in labels)
+    assert 12 <= ys[0] and ys[-1] <= height - 4, ys
+    assert all(b - a >= 13 for a, b in zip(ys, ys[1:], strict=False)), ys
+    assert all(x + 6.5 * len(text) <= width for x, _, text in labels), labels

@@ -46,8 +46,18 @@ SILENCE_MS = 60_000  # a run fails when no score comes for this long (the first 
 # Rounds of throughput runs behind each ratio, which is the median of the rounds' own: the floor's
 # columnar rate moved from 4.1 M to 7.2 M events/s between six runs of the bench (2026-12-03), and
 # one pair of runs said more about the minute than about the code. The first round runs every
-# kind; the others the floor, the peer and oddsmill (and for columnar blocks a race of nine).
+# kind; the others the floor, the peer and oddsmill (and for columnar blocks the auto race).
 ROUNDS = 3
+
+
+def raced() -> int:
+    """The auto race's count of candidates (nine before run 48, twelve since its averaging axis)."""
+    from .race import auto_candidates
+    from .settings import LearnerSettings
+
+    return len(auto_candidates(LearnerSettings()))
+
+
 # Rounds of latency runs (the floor, then oddsmill), pooled. The median of one round moves by a
 # third from round to round on this shared machine (0.25 to 0.33 ms for the floor in one run);
 # two rounds left the ratio moving from 1.15 to 1.44 between runs of the same code.
@@ -263,7 +273,7 @@ class Running:
             cmd = [*(serve or SERVE), "--state", self.state.name, "--ingest", self.ingest]
             cmd += ["--ingest-kind", ingest_kind, "--scores", self.scores, "--http", "off"]
             cmd += ["--scores-hwm", "100000000"]
-            if kind == "race":  # nine candidates on the same stream, one serving
+            if kind == "race":  # the auto grid's candidates on the same stream, one serving
                 cmd += ["--candidates", "auto"]
             stream = "stderr"
         self.proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -445,12 +455,12 @@ def run(events: int, rate: float, seconds: float, shapes: list[str], out: Any) -
                 rates[kind] = done["events_per_s"]
                 label = kind.replace("_", " ") + (f", round {k + 1}" if k else "")
                 print(f"  {shape:<6} {label:<18} {rates[kind]:>12,.0f} events/s", file=out, flush=True)
-            if shape == "cols":  # a race of nine candidates: the I/O and encoding shared, the kernel run nine times
+            if shape == "cols":  # the auto race: the I/O and encoding shared, the kernel run once a candidate
                 race = throughput("race", shape, n)
                 row.setdefault("race", race)
                 rates["race"] = race["events_per_s"]
                 print(
-                    f"  {shape:<6} {'race of 9':<18} {rates['race']:>12,.0f} events/s"
+                    f"  {shape:<6} {f'race of {raced()}':<18} {rates['race']:>12,.0f} events/s"
                     f" ({rates['race'] / rates['oddsmill']:.2f}x the single learner's beside it)",
                     file=out,
                     flush=True,
@@ -523,7 +533,7 @@ def report(result: dict[str, Any], out: Any) -> None:
     cols = result["throughput"].get("cols")
     if cols is not None:
         print(
-            f"  race of nine candidates (--candidates auto), columnar: {cols['race_to_oddsmill']:.2f}x a single"
+            f"  race of {raced()} candidates (--candidates auto), columnar: {cols['race_to_oddsmill']:.2f}x a single"
             f" learner (median of {len(cols['rounds'])} rounds:"
             f" {', '.join(format(r['race'] / r['oddsmill'], '.2f') for r in cols['rounds'])})",
             file=out,

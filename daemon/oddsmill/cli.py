@@ -136,6 +136,18 @@ def learner_values(args: argparse.Namespace) -> tuple[dict[str, Any], int | None
     return values, window
 
 
+def print_candidates(rows: list[dict[str, Any]], indent: str) -> None:
+    """A race's candidates (`Race.table()`'s rows) in columns: log-loss since the start, recent
+    (windowed) log-loss, and "<- serves" beside the serving one. The names' column is as wide as
+    the longest name (up to 64 characters); at a fixed 28 the figures of a longer name, as the auto
+    grid's "eta0=0.125,l2=0.0001,no-average", stood out of their columns."""
+    width = max(28, *(len(row["candidate"]) + 2 for row in rows))
+    print(f"{indent}{'candidate':<{width}}{'log-loss':>10}{'recent':>10}")
+    for row in rows:
+        mark = "  <- serves" if row["serving"] else ""
+        print(f"{indent}{row['candidate']:<{width}}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}{mark}")
+
+
 def candidates_of(args: argparse.Namespace, base: Any) -> list[Any]:
     """The race's candidates: `--candidates auto` (a grid around the learner settings), or the
     `[candidates.NAME]` tables of --config (learner settings over the [learner] table); [] if none."""
@@ -289,10 +301,7 @@ def replay_race(args: argparse.Namespace, candidates: list[Any], window: int) ->
     if args.json:
         print(json.dumps({"candidates": race.table(), "switches": race.switches}, indent=2))
         return 0
-    print(f"{'candidate':<28}{'log-loss':>10}{'recent':>10}  serving")
-    for row in sorted(race.table(), key=lambda r: r["log_loss_window"]):
-        mark = "<- serves" if row["serving"] else ""
-        print(f"{row['candidate']:<28}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}  {mark}")
+    print_candidates(sorted(race.table(), key=lambda r: r["log_loss_window"]), "")
     for sw in race.switches:
         print(
             f"switch at labelled event {sw['at']:,}: {sw['from']} -> {sw['to']} "
@@ -519,10 +528,7 @@ def cmd_inspect(args: argparse.Namespace) -> int:
         from .watch import switches
 
         print(f"\nrace of {len(race.names)} candidates ({switches(len(race.switches))}); the model below serves")
-        print(f"  {'candidate':<28}{'log-loss':>10}{'recent':>10}")
-        for row in doc["candidates"]:
-            mark = "  <- serves" if row["serving"] else ""
-            print(f"  {row['candidate']:<28}{row['log_loss']:>10.5f}{row['log_loss_window']:>10.5f}{mark}")
+        print_candidates(doc["candidates"], "  ")
     print(f"\n{'feature':<32}{'coef (raw units)':>18}{'odds ratio':>12}")
     print(f"{'(intercept)':<32}{doc['intercept']['coef']:>#18.5g}")
     for r in doc["coefficients"]:

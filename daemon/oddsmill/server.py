@@ -55,7 +55,7 @@ from .protocol import (
     unpack,
 )
 from .quick import WRITE_FAILED, Known
-from .race import MARGIN, PATIENCE, Candidate, Race, check_candidates
+from .race import MARGIN, PATIENCE, Candidate, Race, begun_with_earlier_auto, check_candidates
 from .settings import LearnerSettings
 from .storage import (
     JOURNAL_MAGIC,
@@ -668,7 +668,15 @@ class Server:
         else:
             kept.update({"race_margin": race.margin, "race_patience": race.patience})
             wanted.update(rule)
-            if candidates and [c.name for c in candidates] != race.names:
+            held = [Candidate(n, e.learner.settings) for n, e in zip(race.names, race.engines, strict=True)]
+            if candidates and begun_with_earlier_auto(candidates, held):
+                log.info(
+                    "the race in %s was begun with the auto grid of nine candidates, before the grid raced "
+                    "averaging too, and keeps them (a new state races all %d)",
+                    self.settings.state_dir,
+                    len(candidates),
+                )
+            elif candidates and [c.name for c in candidates] != race.names:
                 kept["candidates"], wanted["candidates"] = list(race.names), [c.name for c in candidates]
             elif candidates:
                 for c, e in zip(candidates, race.engines, strict=True):

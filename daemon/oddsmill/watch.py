@@ -147,11 +147,13 @@ def _race(doc: dict[str, Any]) -> list[str]:
     candidates = doc.get("candidates") or []
     if not candidates:
         return []
-    lines = ["", f"race of {len(candidates)} candidates   recent log-loss   since start   (* serves)"]
+    head = f"race of {len(candidates)} candidates"
+    width = max(30, *(len(c["name"]) for c in candidates))  # (a name is at most 64 characters)
+    lines = ["", f"{head:<{width + 5}}recent log-loss   since start   (* serves)"]  # (over their columns)
     ranked = sorted(candidates, key=lambda c: (c["log_loss_window"] is None, c["log_loss_window"] or 0.0))
     for c in ranked:
         mark = "*" if c["serving"] else " "
-        lines.append(f"  {mark} {c['name'][:30]:<30} {_f(c['log_loss_window']):>15} {_f(c['log_loss']):>13}")
+        lines.append(f"  {mark} {c['name']:<{width}} {_f(c['log_loss_window']):>15} {_f(c['log_loss']):>13}")
     said = doc.get("switches") or []
     if said:
         last = said[-1]
