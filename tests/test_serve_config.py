@@ -749,3 +749,31 @@ def test_a_race_begun_with_the_auto_grid_of_nine_resumes_under_candidates_auto(
     err = capsys.readouterr().err
     assert "keeps the settings it was created with" in err and "candidates = ['eta0=0.5,l2=0.0001'," in err
     assert not served
+
+
+def test_a_stop_while_starting_keeps_a_state_that_holds_what_was_learned(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """`stop_starting` takes away only what holds nothing learned. A state directory with journal
+    records and no checkpoint yet (a daemon killed before its first, now learning its journal
+    again when the signal comes) keeps every file; a new one with only its lock file and an
+    empty segment is taken away. (`os._exit` and `logging.shutdown` stubbed: the test's process
+    goes on.)"""
+    from oddsmill.server import stop_starting
+    from oddsmill.storage import LOCK_NAME, JournalWriter
+
+    exits: list[int] = []
+    monkeypatch.setattr("os._exit", exits.append)
+    monkeypatch.setattr("logging.shutdown", lambda: None)
+    kept, empty = tmp_path / "kept", tmp_path / "empty"
+    for state in (kept, empty):
+        state.mkdir()
+        (state / LOCK_NAME).write_text("1\n")
+    with JournalWriter(kept / "journal-000000000000.omj") as j:
+        j.append(1.0, msgpack.packb({"x": {"route_km": 3.0}, "y": 1}))
+        j.sync()
+    JournalWriter(empty / "journal-000000000000.omj").close()
+    before = {p.name: p.read_bytes() for p in kept.iterdir()}
+    stop_starting(signal.SIGTERM, kept, made=False)
+    assert {p.name: p.read_bytes() for p in kept.iterdir()} == before
+    stop_starting(signal.SIGTERM, empty, made=True)
+    assert not empty.exists()
+    assert exits == [143, 143]

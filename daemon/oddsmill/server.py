@@ -370,16 +370,21 @@ def check_bind(name: str, address: str, allow_insecure: bool, curve: bool = Fals
     log.warning("%s binds to %s without authentication or encryption (--allow-insecure-bind)", name, address)
 
 
+def _holds_a_record(segment: Path) -> bool:
+    """Whether a journal segment holds a record (or cannot be read: not a start's to take away)."""
+    try:
+        return next(read_journal(segment), None) is not None
+    except (OddsmillError, OSError):
+        return True
+
+
 def leave_as_found(state_dir: Path, existed: bool) -> None:
     """Take away what a start that did not serve made in the state directory (journal segments
     with no record, the lock file) and the directory itself when it made it: a failed start left a
     directory holding a lock file, or an empty journal as well."""
     for segment in list_journal(state_dir):
-        try:
-            if next(read_journal(segment), None) is None:
-                segment.unlink(missing_ok=True)
-        except (OddsmillError, OSError):  # (unreadable: not this start's to take away)
-            pass
+        if not _holds_a_record(segment):
+            segment.unlink(missing_ok=True)
     release_state_dir(state_dir)
     (state_dir / LOCK_NAME).unlink(missing_ok=True)
     if not existed:
@@ -394,12 +399,12 @@ def stop_starting(signum: int, state_dir: Path, made: bool) -> None:
     numba compiles (the first start's two minutes), the journal after the checkpoint is learned
     again, or a warm start learns its logs. The process stops at once, as a kill would stop it
     (every file oddsmill writes is whole after one: a checkpoint is renamed into place, a torn
-    journal record is cut at the next start), after saying so. In a state directory with no
-    checkpoint yet, what this start made is taken away (`leave_as_found`). Before, SIGTERM ended
-    such a start without a word and left a new directory holding only its lock file; Ctrl-C did
-    so too."""
-    if not list_checkpoints(state_dir):  # (a journal's records stay: only empty segments go)
-        leave_as_found(state_dir, existed=not made)
+    journal record is cut at the next start), after saying so. In a state directory with neither a
+    checkpoint nor a journal record, what this start made is taken away (`leave_as_found`).
+    Before, SIGTERM ended such a start without a word and left a new directory holding only its
+    lock file; Ctrl-C did so too."""
+    if not list_checkpoints(state_dir) and not any(_holds_a_record(seg) for seg in list_journal(state_dir)):
+        leave_as_found(state_dir, existed=not made)  # (nothing learned there: a state holding some is left whole)
     if made and not state_dir.exists():
         left = f"the new state directory {state_dir} is taken away"
     else:
