@@ -23,6 +23,7 @@ class Page(HTMLParser):
         self.body: dict[str, str] = {}
         self.figures: dict[str, str] = {}
         self.series: dict[str, int] = {}
+        self.styles: dict[str, str] = {}  # a series' colour and pattern, "colour.pattern"
         self.bins: list[dict[str, str]] = []
         self.bars: list[dict[str, str]] = []
         self.bin_counts: list[tuple[float, float, str]] = []  # (x, y, text) of the counts beside the bins
@@ -39,6 +40,7 @@ class Page(HTMLParser):
             self.figures[a["data-figure"]] = a.get("data-value", "")
         if "data-series" in a:
             self.series[a["data-series"]] = int(a["data-n"])
+            self.styles[a["data-series"]] = a.get("data-style", "")
         if "bin" in a.get("class", "").split():
             self.bins.append(a)
         if "bar" in a.get("class", "").split():

@@ -556,7 +556,8 @@ def test_the_race_chart_keeps_every_candidates_label_inside_it(tmp_path: Path) -
     the demo's log, wrote half their labels below the chart's foot, where the svg cut them off
     (the serving one's among them), in a panel a third of the page wide. The panel is as wide as
     the page now, and the labels stay inside the chart, 13 units apart, each within its width (a
-    character about 6.5 units wide at the page's 11 units)."""
+    character about 6.5 units wide at the page's 11 units). Four lines shared each of the three
+    styles; each has its own now."""
     require("chromium")
     import gzip
 
@@ -582,3 +583,25 @@ def test_the_race_chart_keeps_every_candidates_label_inside_it(tmp_path: Path) -
     assert 12 <= ys[0] and ys[-1] <= height - 4, ys
     assert all(b - a >= 13 for a, b in zip(ys, ys[1:], strict=False)), ys
     assert all(x + 6.5 * len(text) <= width for x, _, text in labels), labels
+    # and each line is drawn in a style of its own (three colours by four patterns): with a pattern
+    # for each colour, lines 0, 3, 6 and 9 were alike
+    styles = [style for name, style in page.styles.items() if name.startswith("eta0=")]
+    assert len(styles) == 12 and len(set(styles)) == 12, page.styles
+
+
+def test_the_rates_chart_of_an_idle_daemon_labels_each_tick_once(tmp_path: Path) -> None:
+    """An idle daemon's events/s are all 0: the axis runs from 0 to 1 in steps of 0.2, and its
+    ticks, written without decimals, read 0, 0, 0, 1, 1, 1 (seen on a restarted daemon's page)."""
+    import re
+
+    from oddsmill.engine import Engine
+    from oddsmill.learner import Learner
+    from oddsmill.report import report_document, write_html
+
+    doc = report_document(Engine(Learner()), created=1000.0, source="a test")
+    doc["rates"] = [[990.0 + k, 0.0, 0.0, 0.0] for k in range(10)]  # (time, train/s, score/s, outcome/s)
+    out = tmp_path / "idle.html"
+    write_html(doc, out)
+    chart = _chart(chromium(out.as_uri(), "--dump-dom", user_data=tmp_path / "profile"), "chart-rates")
+    ticks = re.findall(r'text-anchor="end">([^<]+)</text>', chart)
+    assert len(ticks) >= 3 and len(set(ticks)) == len(ticks), ticks
