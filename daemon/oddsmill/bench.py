@@ -48,16 +48,6 @@ SILENCE_MS = 60_000  # a run fails when no score comes for this long (the first 
 # one pair of runs said more about the minute than about the code. The first round runs every
 # kind; the others the floor, the peer and oddsmill (and for columnar blocks the auto race).
 ROUNDS = 3
-
-
-def raced() -> int:
-    """The auto race's count of candidates (nine before run 48, twelve since its averaging axis)."""
-    from .race import auto_candidates
-    from .settings import LearnerSettings
-
-    return len(auto_candidates(LearnerSettings()))
-
-
 # Rounds of latency runs (the floor, then oddsmill), pooled. The median of one round moves by a
 # third from round to round on this shared machine (0.25 to 0.33 ms for the floor in one run);
 # two rounds left the ratio moving from 1.15 to 1.44 between runs of the same code.
@@ -225,6 +215,14 @@ print("done", flush=True)
 pub.close(linger=-1)
 ctx.term()
 """
+
+
+def raced() -> int:
+    """The auto race's count of candidates (nine before run 48, twelve since its averaging axis)."""
+    from .race import auto_candidates
+    from .settings import LearnerSettings
+
+    return len(auto_candidates(LearnerSettings()))
 
 
 def free_port() -> int:
