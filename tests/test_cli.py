@@ -309,7 +309,8 @@ def test_listen_says_how_many_came_before_the_silence(there: str, count: list[st
 
 def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ignore[no-untyped-def]
     """No daemon subscribed at the address within --wait: one line naming the address, exit 1 (it
-    was a TimeoutError's traceback after 10 s)."""
+    was a TimeoutError's traceback after 10 s). The line says that a daemon's first start listens
+    only once it has compiled: a `send` begun beside it gave up saying nothing accepted connections."""
     import socket
 
     with socket.socket() as s:  # a port nothing listens on
@@ -319,14 +320,16 @@ def test_send_without_a_daemon_says_so_and_exits_1(capsys) -> None:  # type: ign
     assert code == 1
     assert err.strip() == (
         f"oddsmill: no daemon took the stream at {address} within 0.3 s: nothing accepts connections there"
-        f" (is `oddsmill serve` running with --ingest {address}?)"
+        f" (is `oddsmill serve` running with --ingest {address}? Its first start after an install compiles for up"
+        " to two minutes before it listens; --wait gives it longer)"
     )
     # with --kind push it waited for ever: a PUSH queues, then waits while nothing takes its messages
     code, _, err = run(["send", str(DEMO), "--to", address, "--wait", "0.3", "--kind", "push"], capsys)
     assert code == 1
     assert err.strip() == (
         f"oddsmill: no daemon took the stream at {address} within 0.3 s: nothing accepts connections there"
-        f" (is `oddsmill serve --ingest-kind pull` running with --ingest {address}?)"
+        f" (is `oddsmill serve --ingest-kind pull` running with --ingest {address}? Its first start after an"
+        " install compiles for up to two minutes before it listens; --wait gives it longer)"
     )
 
 

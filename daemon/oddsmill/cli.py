@@ -721,8 +721,11 @@ def cmd_send(args: argparse.Namespace) -> int:
                 f"no daemon took the stream at {args.to} within {args.wait:g} s (is `{serve}` running with"
                 f" --ingest {args.to}? --wait gives it longer)"
             )
-        if why == sockets.NOTHING_THERE:
-            why = f"{why} (is `{serve}` running with --ingest {args.to}?)"
+        if why == sockets.NOTHING_THERE:  # (a daemon's first start listens once it has compiled)
+            why = (
+                f"{why} (is `{serve}` running with --ingest {args.to}? Its first start after an install compiles"
+                " for up to two minutes before it listens; --wait gives it longer)"
+            )
         return OddsmillError(f"no daemon took the stream at {args.to} within {args.wait:g} s: {_curve_hint(why, args)}")
 
     try:
